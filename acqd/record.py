@@ -1,0 +1,122 @@
+"""The record: one step response with everything needed to interpret it years later.
+
+A record is plain data (dataclasses + numpy arrays) so that the step test can build it, the store can
+persist it, the comparator can read it and replay can serve it, without any of them importing another.
+Units are SI throughout; every channel carries its unit.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import zlib
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import __version__
+
+EDGES = ("rising", "falling")
+LOADS = ("high_z", "matched")  # generator load setting: high impedance or a 50 ohm ("matched") load
+
+
+@dataclass(frozen=True)
+class Channel:
+    """One sampled waveform: ``samples[k]`` is the value at ``timebase.times()[k]``.
+
+    ``source`` says where it came from: a scope input ("CH1"), or a math expression over other channels
+    ("(CH1-CH2)/10"), so nobody has to guess later whether a current was measured or inferred.
+    """
+
+    name: str
+    unit: str
+    samples: np.ndarray
+    source: str = ""
+
+
+@dataclass(frozen=True)
+class TimeBase:
+    """The time axis, stored as three numbers instead of an array: t = 0 is the trigger (the stimulus edge)."""
+
+    sample_interval_s: float
+    pretrigger_samples: int
+    n_samples: int
+
+    def times(self) -> np.ndarray:
+        """Sample instants in seconds; the first ``pretrigger_samples`` are negative (the baseline)."""
+        return (np.arange(self.n_samples) - self.pretrigger_samples) * self.sample_interval_s
+
+
+@dataclass(frozen=True)
+class Stimulus:
+    """The stimulus as applied by the generator (levels are what the generator was *set* to show).
+
+    ``load`` is the generator's load setting: with ``matched`` the generator assumes a 50 ohm load and
+    its open-circuit voltage is twice the set level, as on a real bench. ``source_resistance_ohm`` is its
+    output resistance, which is part of the circuit the DUT sees.
+    """
+
+    shape: str
+    low_v: float
+    high_v: float
+    frequency_hz: float
+    edge: str
+    load: str = "high_z"
+    source_resistance_ohm: float = 50.0
+    edge_time_s: float = 0.0
+
+    @property
+    def open_circuit_scale(self) -> float:
+        """Ratio of the generator's open-circuit voltage to its set level (2 with a matched-load setting)."""
+        return 2.0 if self.load == "matched" else 1.0
+
+    def levels_emf(self) -> tuple[float, float]:
+        """(before, after) open-circuit voltage around the captured edge."""
+        lo, hi = self.low_v * self.open_circuit_scale, self.high_v * self.open_circuit_scale
+        return (lo, hi) if self.edge == "rising" else (hi, lo)
+
+
+@dataclass
+class Record:
+    """One acquisition. ``index`` is assigned by the store; ``analysis`` holds the comparator's result."""
+
+    channels: list[Channel]
+    timebase: TimeBase
+    stimulus: Stimulus
+    identities: dict[str, str] = field(default_factory=dict)
+    settings: dict[str, Any] = field(default_factory=dict)
+    dut: dict[str, Any] = field(default_factory=dict)
+    utc: str = ""
+    monotonic_s: float = 0.0
+    profile_text: str = ""
+    profile_sha256: str = ""
+    acqd_version: str = __version__
+    averages: int = 1
+    analysis: dict[str, Any] | None = None
+    index: int | None = None
+
+    def channel(self, name: str) -> Channel:
+        """The channel called ``name``; a KeyError lists the names that exist."""
+        for ch in self.channels:
+            if ch.name == name:
+                return ch
+        raise KeyError(f"no channel {name!r}; channels are {[c.name for c in self.channels]}")
+
+    @property
+    def channel_names(self) -> list[str]:
+        return [c.name for c in self.channels]
+
+    def checksum(self) -> int:
+        """CRC-32 over every channel's samples as float64 little-endian, in channel order.
+
+        float64 so that the checksum does not depend on the dtype a store chooses, as long as it is lossless.
+        """
+        crc = 0
+        for ch in self.channels:
+            crc = zlib.crc32(np.ascontiguousarray(ch.samples, dtype="<f8").tobytes(), crc)
+        return crc
+
+
+def profile_hash(text: str) -> str:
+    """SHA-256 of the profile text, so a record says exactly which profile produced it."""
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()

@@ -92,18 +92,20 @@ def discretise(model: StateSpace, dt: float, hold: str = "foh") -> Discrete:
     return Discrete(e[:n, :n], g1 - g2, g2, dt)
 
 
-def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray) -> np.ndarray:
+def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray | None = None) -> np.ndarray:
     """States at every sample for the input samples ``u`` (shape (N,) or (N, m)), starting at ``x0``.
+
+    ``u_left`` gives the input's left limits at the samples where it jumps (a zero-time edge on a sample
+    instant): interval k is then driven from ``u[k]`` to ``u_left[k+1]``. Without it the input is continuous.
 
     The recursion runs in modal coordinates, one first-order IIR filter per eigenvalue through
     ``scipy.signal.lfilter`` (a C loop), so a million samples take milliseconds. When Ad is defective or its
     eigenvectors are ill-conditioned (a critically damped circuit), it falls back to the plain recursion.
     """
-    u = np.asarray(u, dtype=float)
-    if u.ndim == 1:
-        u = u[:, None]
+    u = _as_columns(u)
+    ends = u if u_left is None else _as_columns(u_left)
     n_samples = u.shape[0]
-    drive = u[:-1] @ disc.B0.T + u[1:] @ disc.B1.T  # (N-1, n): what enters between k and k+1
+    drive = u[:-1] @ disc.B0.T + ends[1:] @ disc.B1.T  # (N-1, n): what enters between k and k+1
     x0 = np.asarray(x0, dtype=float)
     eigvals, vecs = np.linalg.eig(disc.Ad)
     if np.linalg.cond(vecs) < 1e8:
@@ -125,12 +127,15 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray) -> np.ndarray:
     return x
 
 
+def _as_columns(u: np.ndarray) -> np.ndarray:
+    u = np.asarray(u, dtype=float)
+    return u[:, None] if u.ndim == 1 else u
+
+
 def simulate(model: StateSpace, u: np.ndarray, dt: float, x0: np.ndarray | None = None,
              hold: str = "foh") -> tuple[np.ndarray, np.ndarray]:
     """Sampled states and outputs for input samples ``u`` at interval ``dt``: returns (x, y)."""
-    u2 = np.asarray(u, dtype=float)
-    if u2.ndim == 1:
-        u2 = u2[:, None]
+    u2 = _as_columns(u)
     if x0 is None:
         x0 = np.zeros(len(model.states))
     x = propagate(discretise(model, dt, hold), u2, x0)

@@ -1,0 +1,151 @@
+"""Validated reading of TOML tables: every error names the file, the line where it can be found, the key
+and what is allowed, and an unknown key (a typo) is an error rather than silently ignored.
+
+Why a helper of our own instead of a schema library: messages must read like a bench engineer's checklist
+("profiles/night.toml line 12: [stimulus] high_v: must be at most 5 V (limits.max_level_v)"), and the
+set of types is small.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import re
+import tomllib
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+from .errors import ConfigError
+
+
+def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
+    """(parsed table, original text); unreadable or malformed files give one ConfigError line."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(str(path), "", "file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(str(path), "", f"cannot be read ({exc.__class__.__name__}: {exc})") from None
+    try:
+        return tomllib.loads(text), text
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(str(path), "", f"not valid TOML: {exc}") from None
+
+
+class Table:
+    """One TOML table being validated; call ``done()`` last so leftover (unknown) keys are reported."""
+
+    def __init__(self, data: Mapping[str, Any], source: str, path: str = "", text: str = "") -> None:
+        if not isinstance(data, Mapping):
+            raise ConfigError(source, path or "(top level)", f"must be a table, not {_kind(data)}")
+        self.data, self.source, self.path, self.text = data, source, path, text
+        self._seen: set[str] = set()
+
+    # -- locating -------------------------------------------------------------------------------
+    def where(self, key: str) -> tuple[str, str]:
+        """(source with line number where findable, dotted field name)."""
+        field = f"{self.path}.{key}" if self.path else key
+        line = _line_of(self.text, self.path, key) if self.text else None
+        return (f"{self.source} line {line}" if line else self.source), field
+
+    def error(self, key: str, problem: str) -> ConfigError:
+        source, field = self.where(key)
+        return ConfigError(source, field, problem)
+
+    # -- typed getters --------------------------------------------------------------------------
+    def has(self, key: str) -> bool:
+        return key in self.data
+
+    def raw(self, key: str, default: Any = ...) -> Any:
+        self._seen.add(key)
+        if key in self.data:
+            return self.data[key]
+        if default is ...:
+            typo = difflib.get_close_matches(key, [k for k in self.data if isinstance(k, str)], n=1)
+            if typo:
+                raise self.error(typo[0], f"unknown key; did you mean {key!r} (required)?")
+            raise self.error(key, "missing (required)")
+        return default
+
+    def number(self, key: str, default: Any = ..., *, min: float | None = None, max: float | None = None,
+               positive: bool = False, unit: str = "") -> float:
+        value = self.raw(key, default)
+        if value is None:
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise self.error(key, f"must be a finite number{_unit(unit)}, not {value!r}")
+        if positive and value <= 0:
+            raise self.error(key, f"must be greater than 0{_unit(unit)}, not {value!r}")
+        if min is not None and value < min:
+            raise self.error(key, f"must be at least {min:g}{_unit(unit)}, not {value!r}")
+        if max is not None and value > max:
+            raise self.error(key, f"must be at most {max:g}{_unit(unit)}, not {value!r}")
+        return float(value)
+
+    def integer(self, key: str, default: Any = ..., *, min: int | None = None, max: int | None = None) -> int:
+        value = self.raw(key, default)
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise self.error(key, f"must be a whole number, not {value!r}")
+        if (min is not None and value < min) or (max is not None and value > max):
+            span = f"from {min} to {max}" if max is not None else f"at least {min}"
+            raise self.error(key, f"must be {span}, not {value}")
+        return value
+
+    def boolean(self, key: str, default: Any = ...) -> bool:
+        value = self.raw(key, default)
+        if not isinstance(value, bool):
+            raise self.error(key, f"must be true or false, not {value!r}")
+        return value
+
+    def string(self, key: str, default: Any = ..., *, choices: Iterable[str] | None = None) -> str:
+        value = self.raw(key, default)
+        if value is None:
+            return value
+        if not isinstance(value, str) or not value.strip():
+            raise self.error(key, f"must be a non-empty string, not {value!r}")
+        if choices is not None and value not in (allowed := list(choices)):
+            raise self.error(key, f"must be one of {', '.join(allowed)}, not {value!r}")
+        return value
+
+    def table(self, key: str, default: Any = ...) -> Table:
+        value = self.raw(key, default)
+        path = f"{self.path}.{key}" if self.path else key
+        if value is None:
+            value = {}
+        if not isinstance(value, Mapping):
+            raise self.error(key, f"must be a table, not {_kind(value)}")
+        return Table(value, self.source, path, self.text)
+
+    def done(self) -> None:
+        """Reject keys nobody asked for: a typo must not silently fall back to a default."""
+        unknown = [k for k in self.data if k not in self._seen]
+        if unknown:
+            allowed = ", ".join(sorted(self._seen)) or "(none)"
+            raise self.error(unknown[0], f"unknown key; allowed here: {allowed}")
+
+
+def _unit(unit: str) -> str:
+    return f" ({unit})" if unit else ""
+
+
+def _kind(value: Any) -> str:
+    return {dict: "a table", list: "a list", str: "a string", bool: "a boolean",
+            int: "a number", float: "a number"}.get(type(value), type(value).__name__)
+
+
+def _line_of(text: str, table_path: str, key: str) -> int | None:
+    """1-based line of ``key = ...`` inside ``[table_path]`` (or of the table header), best effort."""
+    header = re.compile(r"^\s*\[\[?\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
+    key_line = re.compile(rf"^\s*\"?{re.escape(key)}\"?\s*=")
+    current = ""
+    for number, line in enumerate(text.splitlines(), start=1):
+        if m := header.match(line):
+            current = m.group(1).replace('"', "").replace(" ", "")
+            if current == (f"{table_path}.{key}" if table_path else key):
+                return number
+            continue
+        if current == table_path and key_line.match(line):
+            return number
+    return None

@@ -1,0 +1,287 @@
+"""The bench profile: one TOML file saying what to connect, what to apply, what to capture and where to
+store it. ``load_profile`` turns it into frozen plans, or one ConfigError line naming file, line and key.
+
+Every check that can be made without touching an instrument is made here, so a bad profile never sends a
+command or creates a file.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .config import Table, load_toml
+from .record import EDGES, LOADS, Stimulus
+
+SHAPES = ("square", "pulse")
+BENCH_KINDS = ("simulated", "visa")
+COUPLINGS = ("dc", "ac")
+
+
+@dataclass(frozen=True)
+class InstrumentPlan:
+    """One instrument: its driver file (name or path) and, on a real bench, its VISA resource."""
+
+    role: str
+    driver: str
+    resource: str | None
+    timeout_s: float
+    backend: str
+
+
+@dataclass(frozen=True)
+class BenchPlan:
+    kind: str
+    generator: InstrumentPlan
+    scope: InstrumentPlan
+    simulated: dict[str, Any] | None  # the [bench.simulated] table, validated by the simulated bench
+
+
+@dataclass(frozen=True)
+class StimulusPlan:
+    shape: str
+    low_v: float
+    high_v: float
+    frequency_hz: float
+    edges: tuple[str, ...]
+    load: str
+
+    def stimulus(self, edge: str) -> Stimulus:
+        return Stimulus(self.shape, self.low_v, self.high_v, self.frequency_hz, edge, self.load)
+
+
+@dataclass(frozen=True)
+class ChannelPlan:
+    """A scope input: ``input`` is the instrument's name (CH1), ``name`` what the record calls it."""
+
+    input: str
+    name: str
+    range_v: float
+    offset_v: float
+    coupling: str
+
+
+@dataclass(frozen=True)
+class MathChannel:
+    """A linear combination of captured channels: (Σ coefficient·channel + offset) / divide_by."""
+
+    name: str
+    unit: str
+    terms: dict[str, float]
+    divide_by: float = 1.0
+    offset: float = 0.0
+
+    def evaluate(self, channels: dict[str, np.ndarray]) -> np.ndarray:
+        total = sum(coef * channels[name] for name, coef in self.terms.items())
+        return (total + self.offset) / self.divide_by
+
+    @property
+    def source(self) -> str:
+        """The formula as text, stored with the record so nobody must guess how a current was inferred."""
+        terms = " ".join(f"{'+' if c >= 0 else '-'} {abs(c):g}*{n}" for n, c in self.terms.items()).lstrip("+ ")
+        offset = f" + {self.offset:g}" if self.offset else ""
+        return f"({terms}{offset}) / {self.divide_by:g}"
+
+
+@dataclass(frozen=True)
+class AcquisitionPlan:
+    window_s: float
+    pretrigger_share: float
+    samples: int
+    averages: int
+    channels: tuple[ChannelPlan, ...]
+    trigger_level_v: float | None
+    timeout_s: float | None
+
+
+@dataclass(frozen=True)
+class Limits:
+    """The profile's own output limits (the DUT's ratings); drivers carry the instrument's."""
+
+    max_level_v: float
+    max_frequency_hz: float
+
+
+@dataclass(frozen=True)
+class OutputPlan:
+    file: Path
+    fsync: bool
+    rotate_records: int
+
+
+@dataclass(frozen=True)
+class Profile:
+    path: Path
+    text: str
+    name: str
+    bench: BenchPlan
+    stimulus: StimulusPlan
+    acquisition: AcquisitionPlan
+    math: tuple[MathChannel, ...]
+    dut: dict[str, Any]
+    limits: Limits
+    output: OutputPlan
+    campaign: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def sha256(self) -> str:
+        return hashlib.sha256(self.text.encode("utf-8")).hexdigest()
+
+    @property
+    def source(self) -> str:
+        return str(self.path)
+
+
+def load_profile(path: str | Path) -> Profile:
+    """Read and validate a profile; any problem is one ConfigError naming file, line, key and what is allowed."""
+    path = Path(path)
+    data, text = load_toml(path)
+    top = Table(data, str(path), "", text)
+    name = top.table("profile", {}).string("name", path.stem)
+    _done_profile_table(top)
+    limits = _limits(top.table("limits"))
+    bench = _bench(top.table("bench"))
+    stimulus = _stimulus(top.table("stimulus"), limits)
+    acquisition = _acquisition(top.table("acquisition"))
+    math = _math(top.table("math", {}), acquisition)
+    dut = dict(top.raw("dut", {}))
+    output = _output(top.table("output", {}), path)
+    campaign = dict(top.raw("campaign", {}))
+    top.done()
+    return Profile(path, text, name, bench, stimulus, acquisition, math, dut, limits, output, campaign)
+
+
+def _done_profile_table(top: Table) -> None:
+    info = top.table("profile", {})
+    info.string("name", None)
+    info.string("description", None)
+    info.done()
+
+
+def _limits(t: Table) -> Limits:
+    limits = Limits(max_level_v=t.number("max_level_v", positive=True, unit="V"),
+                    max_frequency_hz=t.number("max_frequency_hz", positive=True, unit="Hz"))
+    t.done()
+    return limits
+
+
+def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
+    driver = t.string("driver")
+    resource = t.string("resource", None)
+    if kind == "visa" and resource is None:
+        raise t.error("resource", "missing (required on a visa bench), e.g. 'TCPIP0::192.0.2.10::5025::SOCKET'")
+    if kind == "simulated" and resource is not None:
+        raise t.error("resource", "not allowed on the simulated bench (it picks its own ports)")
+    plan = InstrumentPlan(role, driver, resource, t.number("timeout_s", 5.0, positive=True, unit="s"),
+                          t.string("backend", "@py"))
+    t.done()
+    return plan
+
+
+def _bench(t: Table) -> BenchPlan:
+    kind = t.string("kind", choices=BENCH_KINDS)
+    generator = _instrument(t.table("generator"), "generator", kind)
+    scope = _instrument(t.table("scope"), "scope", kind)
+    simulated = t.raw("simulated", None)
+    if kind == "simulated" and simulated is None:
+        simulated = {}
+    if kind == "visa" and simulated is not None:
+        raise t.error("simulated", "only allowed when kind = 'simulated'")
+    if simulated is not None:
+        t.table("simulated")  # type check only; the simulated bench validates its own keys
+    t.done()
+    return BenchPlan(kind, generator, scope, simulated)
+
+
+def _stimulus(t: Table, limits: Limits) -> StimulusPlan:
+    shape = t.string("shape", "square", choices=SHAPES)
+    if t.has("amplitude_vpp") or t.has("offset_v"):
+        if t.has("low_v") or t.has("high_v"):
+            raise t.error("amplitude_vpp", "give either low_v/high_v or amplitude_vpp/offset_v, not both")
+        amplitude = t.number("amplitude_vpp", positive=True, unit="V peak-to-peak")
+        offset = t.number("offset_v", 0.0, unit="V")
+        low, high = offset - amplitude / 2, offset + amplitude / 2
+        level_key = "amplitude_vpp"
+    else:
+        low, high = t.number("low_v", unit="V"), t.number("high_v", unit="V")
+        if high <= low:
+            raise t.error("high_v", f"must be above low_v ({low:g} V), not {high:g} V")
+        level_key = "high_v" if abs(high) >= abs(low) else "low_v"
+    if max(abs(low), abs(high)) > limits.max_level_v:
+        raise t.error(level_key, f"puts a level at {max(abs(low), abs(high)):g} V, over the profile's "
+                                 f"limit limits.max_level_v = {limits.max_level_v:g} V; nothing was sent")
+    frequency = t.number("frequency_hz", positive=True, unit="Hz", max=limits.max_frequency_hz)
+    edge = t.string("edge", "rising", choices=(*EDGES, "both"))
+    plan = StimulusPlan(shape, low, high, frequency, EDGES if edge == "both" else (edge,),
+                        t.string("load", "high_z", choices=LOADS))
+    t.done()
+    return plan
+
+
+def _acquisition(t: Table) -> AcquisitionPlan:
+    window = t.number("window_s", positive=True, unit="s")
+    share = t.number("pretrigger_share", 0.2, min=0.0, max=0.9)
+    samples = t.integer("samples", min=16, max=10_000_000)
+    averages = t.integer("averages", 1, min=1, max=10_000)
+    channels_table = t.table("channels")
+    channels = []
+    for key in list(channels_table.data):
+        channels.append(_channel(channels_table.table(key), key))
+    channels_table.done()
+    if not channels:
+        raise t.error("channels", "at least one channel is needed, e.g. [acquisition.channels.CH1]")
+    names = [c.name for c in channels]
+    if len(set(names)) != len(names):
+        raise t.error("channels", f"channel names must be unique, got {names}")
+    plan = AcquisitionPlan(window, share, samples, averages, tuple(channels),
+                           t.number("trigger_level_v", None, unit="V"),
+                           t.number("timeout_s", None, positive=True, unit="s"))
+    t.done()
+    return plan
+
+
+def _channel(t: Table, scope_input: str) -> ChannelPlan:
+    plan = ChannelPlan(scope_input, t.string("name", scope_input),
+                       t.number("range_v", positive=True, unit="V, half the span around offset_v"),
+                       t.number("offset_v", 0.0, unit="V"), t.string("coupling", "dc", choices=COUPLINGS))
+    t.done()
+    return plan
+
+
+def _math(t: Table, acquisition: AcquisitionPlan) -> tuple[MathChannel, ...]:
+    captured = [c.name for c in acquisition.channels]
+    channels = []
+    for name in list(t.data):
+        m = t.table(name)
+        terms_table = m.table("terms")
+        terms = {}
+        for term in list(terms_table.data):
+            if term not in captured:
+                raise terms_table.error(term, f"not a captured channel; channels are {', '.join(captured)}")
+            terms[term] = terms_table.number(term)
+        terms_table.done()
+        if not terms:
+            raise m.error("terms", "needs at least one channel, e.g. terms = { v_src = 1.0, v_rl = -1.0 }")
+        if name in captured:
+            raise t.error(name, "a math channel cannot reuse a captured channel's name")
+        channels.append(MathChannel(name, m.string("unit", "V"), terms,
+                                    m.number("divide_by", 1.0), m.number("offset", 0.0)))
+        if channels[-1].divide_by == 0:
+            raise m.error("divide_by", "must not be 0")
+        m.done()
+    t.done()
+    return tuple(channels)
+
+
+def _output(t: Table, profile_path: Path) -> OutputPlan:
+    file = Path(t.string("file", f"data/{profile_path.stem}.h5"))
+    if file.suffix != ".h5":
+        raise t.error("file", f"must end in .h5, not {file.name!r}")
+    plan = OutputPlan(file, t.boolean("fsync", True), t.integer("rotate_records", 1000, min=1))
+    t.done()
+    return plan
+

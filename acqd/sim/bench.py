@@ -1,0 +1,198 @@
+"""The simulated bench: a generator driving a DUT plant, probed by two scopes, each a SCPI server on TCP.
+
+Wiring: the generator's open-circuit voltage (EMF, behind its 50 Ω) is the plant's input; scope channels
+CH1..CH4 see the probes the profile names (a model output or the difference of two); both scopes'
+EXTernal trigger sees the stimulus at the generator terminal. The plant is asked for "now" at every
+capture (``plant_source``), so a drifting plant can replace the fixed one without touching the scopes.
+
+Profile table ``[bench.simulated]`` (every key optional; the defaults are a realistic, noisy bench with a
+demo DUT of our own):
+
+realtime      bool   false: captures complete at once; true: after the time a real scope would take
+seed          int    seeds noise, jitter and free-run phase (each scope draws its own stream)
+noise_v_rms   ≥ 0    gaussian noise at each ADC input, volts rms
+bandwidth_hz  ≥ 0    scope front-end single-pole bandwidth; 0 switches it off
+jitter_s      ≥ 0    rms trigger jitter
+quantise      bool   8-bit ADC over each channel's span
+clip          bool   clip at the span's edges (only visible with quantise off)
+edge_time_s   ≥ 0    generator 10-90 % edge time (a linear ramp of edge_time_s / 0.8)
+command_log   path   append every program message the generator receives (monotonic time, text)
+dut           table  the DUT model, as acqd.models.build_model reads it; its source resistance must be
+                     the generator's 50 Ω for the physics to match the bench
+probes        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from types import MappingProxyType
+from typing import Any
+
+import numpy as np
+
+from ..config import Table
+from ..errors import ConfigError
+from ..models import StateSpace, build_model
+from .frontend import FrontEndSettings
+from .generator import Generator
+from .plant import Plant, Probe
+from .scope import N_CHANNELS, DigitizerScope
+from .server import InstrumentServer, LoopThread, SCPIInstrument
+from .viewscope import ViewScope
+
+TABLE = "bench.simulated"
+# The demo DUT: a lightly damped series RLC (ζ ≈ 0.17 with the generator's 50 Ω, rings near 10.6 kHz).
+DEMO_DUT: Mapping[str, Any] = MappingProxyType({"model": "series_rlc", "r_ohm": 27.0, "l_h": 3.3e-3,
+                                                "c_f": 68e-9})
+# CH1 the generator terminal, CH2 the capacitor, CH3 across the series resistor (floating: a difference).
+DEMO_PROBES: Mapping[str, str] = MappingProxyType({"CH1": "v_src", "CH2": "v_c", "CH3": "v_src - v_rl"})
+
+
+@dataclass(frozen=True)
+class SimBenchConfig:
+    """A validated ``[bench.simulated]`` table; the defaults are the demo bench."""
+
+    realtime: bool = False
+    seed: int = 20240611
+    noise_v_rms: float = 2e-3
+    bandwidth_hz: float = 100e6
+    jitter_s: float = 1e-9
+    quantise: bool = True
+    clip: bool = True
+    edge_time_s: float = 20e-9
+    command_log: str | None = None
+    dut: Mapping[str, Any] = field(default_factory=lambda: dict(DEMO_DUT))
+    probes: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_PROBES))
+    source: str = "demo bench"
+    model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
+
+    def __post_init__(self) -> None:
+        """Build the DUT model now, so a bad ``dut`` or probe fails when the profile is read."""
+        object.__setattr__(self, "model", build_model(self.dut, f"{self.source} [{TABLE}.dut]"))
+        _check_probes(self.probes, self.model, self.source)
+
+    @classmethod
+    def from_mapping(cls, mapping: Mapping[str, Any], source: str, text: str = "") -> SimBenchConfig:
+        """Validate the table; any problem is one ConfigError naming the file, key and what is allowed."""
+        table = Table(mapping, source, TABLE, text)
+        d = cls()
+        values = dict(
+            realtime=table.boolean("realtime", d.realtime),
+            seed=table.integer("seed", d.seed, min=0),
+            noise_v_rms=table.number("noise_v_rms", d.noise_v_rms, min=0, unit="V rms"),
+            bandwidth_hz=table.number("bandwidth_hz", d.bandwidth_hz, min=0, unit="Hz; 0 = off"),
+            jitter_s=table.number("jitter_s", d.jitter_s, min=0, unit="s rms"),
+            quantise=table.boolean("quantise", d.quantise),
+            clip=table.boolean("clip", d.clip),
+            edge_time_s=table.number("edge_time_s", d.edge_time_s, min=0, unit="s, 10-90 %"),
+            command_log=table.string("command_log", None),
+            dut=dict(table.table("dut", dict(DEMO_DUT)).data),
+            probes=dict(table.table("probes", dict(DEMO_PROBES)).data),
+        )
+        table.done()
+        return cls(**values, source=source)
+
+    def front_end(self) -> FrontEndSettings:
+        return FrontEndSettings(bandwidth_hz=self.bandwidth_hz, noise_v_rms=self.noise_v_rms,
+                                jitter_s=self.jitter_s, quantise=self.quantise, clip=self.clip)
+
+    def parsed_probes(self) -> dict[int, Probe]:
+        return {int(name[2:]): Probe.parse(text) for name, text in self.probes.items()}
+
+
+def _check_probes(probes: Mapping[str, Any], model: StateSpace, source: str) -> None:
+    allowed_channels = [f"CH{n}" for n in range(1, N_CHANNELS + 1)]
+    for name, text in probes.items():
+        field_name = f"{TABLE}.probes.{name}"
+        if name not in allowed_channels:
+            raise ConfigError(source, field_name, f"not a scope channel; allowed: {', '.join(allowed_channels)}")
+        try:
+            probe = Probe.parse(text) if isinstance(text, str) else None
+        except ValueError:
+            probe = None
+        nodes = [probe.plus, probe.minus] if probe else []
+        if probe is None or any(n is not None and n not in model.outputs for n in nodes):
+            raise ConfigError(source, field_name, f"{text!r} is not a probe of this DUT; write an output or "
+                                                  f"'a - b' of outputs: {', '.join(model.outputs)}")
+
+
+class SimBench:
+    """Three SCPI servers (``gen``, ``scope`` = DIG, ``viewscope``) on one event loop.
+
+    Use ``start()``/``stop()`` (or ``with``) to run them in a background thread, or ``astart()``/
+    ``astop()`` from a running event loop (the ``acqd sim`` foreground).
+    """
+
+    def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
+        self.config = config or SimBenchConfig()
+        self.host = host
+        self.realtime = self.config.realtime
+        self.front_end = self.config.front_end()
+        self.probes = self.config.parsed_probes()
+        self._plant = Plant(self.config.model)
+        self.plant_source: Callable[[], Plant] = lambda: self._plant
+        self.generator: Generator | None = None
+        self.scope: DigitizerScope | None = None
+        self.viewscope: ViewScope | None = None
+        self._servers: dict[str, InstrumentServer] = {}
+        self._thread: LoopThread | None = None
+
+    def plant_now(self) -> Plant:
+        """The plant as it is at this moment (replace ``plant_source`` to make it drift)."""
+        return self.plant_source()
+
+    @property
+    def resources(self) -> dict[str, str]:
+        """VISA resource strings: ``{"gen": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ..., "viewscope": ...}``."""
+        return {name: server.resource for name, server in self._servers.items()}
+
+    @property
+    def instruments(self) -> dict[str, SCPIInstrument]:
+        return {name: server.instrument for name, server in self._servers.items()}
+
+    async def astart(self) -> None:
+        """Create the instruments (their asyncio state belongs to this loop) and start listening."""
+        scope_seed, view_seed = np.random.SeedSequence(self.config.seed).spawn(2)
+        self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
+        self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
+        self.viewscope = ViewScope(self, np.random.default_rng(view_seed))
+        try:
+            for name, instrument in (("gen", self.generator), ("scope", self.scope), ("viewscope", self.viewscope)):
+                server = InstrumentServer(instrument, self.host)
+                self._servers[name] = server
+                await server.start()
+        except OSError:
+            await self.astop()
+            raise
+
+    async def astop(self) -> None:
+        for server in self._servers.values():
+            await server.stop()
+
+    def start(self) -> SimBench:
+        self._thread = LoopThread()
+        self._thread.start()
+        try:
+            self._thread.run(self.astart())
+        except BaseException:
+            self._thread.stop()
+            self._thread = None
+            raise
+        return self
+
+    def stop(self) -> None:
+        if self._thread is not None:
+            self._thread.run(self.astop())
+            self._thread.stop()
+            self._thread = None
+
+    def call(self, func: Callable[..., Any], *args: Any) -> Any:
+        """Run ``func(*args)`` in the bench's loop thread (to touch instrument state from a test)."""
+        return self._thread.call(func, *args)
+
+    def __enter__(self) -> SimBench:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()

@@ -1,0 +1,141 @@
+"""Recovery of a live segment left behind by a writer that died, and the probe readers run first.
+
+The risky part - opening a file that a killed process left half-written - runs in a child process
+(``main`` below), because a damaged HDF5 file can crash the process that opens it. The
+child opens the ``.part`` with ``swmr=True`` (the writer's SWMR mode makes this work without clearing the
+superblock's status flags, which needs ``h5clear`` that may not be installed), keeps the verified prefix
+of records - each row, blob and sample chunk checked against its CRC-32 - and writes it into a fresh file.
+
+Why a fresh copy instead of repairing in place: a file still marked as open by a SWMR writer is refused by
+plain readers (h5dump, h5py without ``swmr``), and clearing that mark means editing the superblock by
+hand. The copy is a normal closed file, is bounded by the rotation size, and only happens after a crash.
+
+The parent then renames the copy into place and either deletes the ``.part`` - when all it lost was the
+one record whose ``append()`` had not returned - or keeps it as ``.damaged`` when anything more failed
+verification or the file could not be opened at all. Nothing acknowledged is ever deleted silently; every
+action is returned as a note (and logged on the ``acqd.store`` logger).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+from ..errors import AcqdError
+from . import faults
+from .naming import CREATING, DAMAGED, LIVE, RECOVERING, Segment, StorePaths, replace_durably, sync_directory
+from .schema import encode
+from .segment import SegmentView, SegmentWriter, create_segment
+
+log = logging.getLogger("acqd.store")
+CHILD_TIMEOUT_S = 600.0
+_CHILD = "import sys; from acqd.store.recovery import main; sys.exit(main(sys.argv[1:]))"
+
+
+def _run_child(*args: str) -> tuple[dict | None, str]:
+    """Run this module in a child process; (its JSON report, "") or (None, why it failed)."""
+    env = {k: v for k, v in os.environ.items() if k != faults.ENV}
+    try:
+        proc = subprocess.run(
+            [sys.executable, "-c", _CHILD, *args], capture_output=True, text=True, env=env, timeout=CHILD_TIMEOUT_S
+        )
+    except subprocess.TimeoutExpired:
+        return None, f"opening it did not finish within {CHILD_TIMEOUT_S:.0f} s"
+    if proc.returncode == 0:
+        return json.loads(proc.stdout), ""
+    if proc.returncode < 0:
+        return None, f"the process opening it died of signal {-proc.returncode}"
+    lines = proc.stderr.strip().splitlines()
+    return None, lines[-1] if lines else f"exit status {proc.returncode}"
+
+
+def probe(path: Path) -> str:
+    """Why ``path`` (a live segment) cannot be opened safely, or "" if it can; readers ask before opening it."""
+    report, why = _run_child("probe", str(path))
+    return "" if report is not None else why
+
+
+def recover_store(paths: StorePaths) -> list[str]:
+    """Finish every segment a dead writer left unfinished; returns one note per action taken."""
+    notes = []
+    segments = paths.segments()
+    finished = {s.number for s in segments if s.state == ""}
+    for seg in segments:
+        if seg.state in (CREATING, RECOVERING):
+            seg.path.unlink()
+            kind = "a new segment that never held a record" if seg.state == CREATING else "an interrupted recovery copy"
+            notes.append(f"{seg.path}: removed {kind}")
+    for seg in segments:
+        if seg.state == LIVE and seg.number in finished:
+            seg.path.unlink()
+            notes.append(f"{seg.path}: removed; its records were already recovered into {paths.finished(seg.number)}")
+        elif seg.state == LIVE:
+            notes.append(_recover_segment(paths, seg))
+    if notes:
+        sync_directory(paths.directory)
+    for note in notes:
+        log.warning(note)
+    return notes
+
+
+def _recover_segment(paths: StorePaths, seg: Segment) -> str:
+    copy, final = paths.with_state(seg.number, RECOVERING), paths.finished(seg.number)
+    damaged = paths.with_state(seg.number, DAMAGED)
+    report, why = _run_child("copy", str(seg.path), str(copy))
+    if report is None:
+        copy.unlink(missing_ok=True)
+        replace_durably(seg.path, damaged)
+        return f"{seg.path}: cannot be read ({why}); moved aside to {damaged.name}, its records are not listed"
+    kept, rows = report["kept"], report["index_rows"]
+    if kept:
+        faults.step("recover:copied")
+        replace_durably(copy, final)
+        faults.step("recover:renamed")
+    summary = f"{seg.path}: " + (f"recovered {kept} record(s) into {final.name}" if kept else "held no complete record")
+    if rows - kept > 1:
+        replace_durably(seg.path, damaged)
+        return f"{summary}; {rows - kept} row(s) failed verification, the original is kept as {damaged.name}"
+    seg.path.unlink()
+    lost = max(rows, report["sample_chunks"]) - kept
+    return summary + ("; dropped the unacknowledged last record" if lost else "")
+
+
+def _copy_verified(part: Path, dest: Path) -> dict:
+    """Child side: copy the verified prefix of ``part`` into a new finished file ``dest`` (if not empty)."""
+    view = SegmentView(part, live=True)
+    writer: SegmentWriter | None = None
+    kept = 0
+    for position in range(len(view.rows)):
+        try:
+            record = view.record(position)
+        except AcqdError:
+            break
+        enc = encode(record, int(record.index), str(dest))
+        if writer is None:
+            writer = create_segment(dest, enc.layout, swmr=False)
+        writer.write(enc, fsync=False)
+        kept += 1
+    if writer is not None:
+        writer.sync()
+        writer.close()
+    return {"kept": kept, "index_rows": view.index_rows, "sample_chunks": view.sample_chunks}
+
+
+def main(argv: list[str]) -> int:
+    """Child side: ``probe PART`` or ``copy PART DEST``; prints a JSON report, exit 3 for a non-store."""
+    command, *paths = argv
+    try:
+        if command == "probe":
+            view = SegmentView(Path(paths[0]), live=True)
+            report = {"rows": len(view.rows)}
+        else:
+            report = _copy_verified(Path(paths[0]), Path(paths[1]))
+    except AcqdError as exc:
+        print(exc, file=sys.stderr)
+        return 3
+    print(json.dumps(report))
+    return 0

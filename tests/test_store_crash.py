@@ -1,0 +1,308 @@
+"""Crash safety and concurrent reading of the record store, with real writer processes and real SIGKILLs.
+
+The writer is this file run as a program (``python tests/test_store_crash.py write ...``): it appends
+records and prints ``INDEX SEED`` for each one *after* ``append()`` returned, flushing stdout, so the test
+knows exactly which records were acknowledged. Three kinds of kill:
+
+* at seeded random moments (SIGKILL from the test);
+* at named steps inside a write, rotation or recovery (the store's ``ACQD_STORE_KILL_AT`` hook);
+* at the N-th ``pwrite64`` system call, i.e. inside HDF5's own data and metadata writes (strace's
+  syscall fault injection, the method of shared/STORAGE-NOTES.md).
+
+Every time: the store opens after recovery, every acknowledged record is there and bit-identical (its
+samples regenerated from the seed and its CRC-32 recomputed with zlib), and the recovered files are plain
+HDF5 that h5py opens without SWMR and HDF5 1.10's h5dump lists.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import re
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+
+from acqd.store import RecordStore, open_records
+from acqd.store.faults import ENV as KILL_ENV
+
+try:
+    from test_store import crc_of, make_record
+except ImportError:  # pytest's importlib import mode does not put tests/ on sys.path
+    sys.path.insert(0, str(Path(__file__).parent))
+    from test_store import crc_of, make_record
+
+HERE = Path(__file__).resolve()
+H5DUMP = shutil.which("h5dump")
+STRACE = shutil.which("strace")
+LEFTOVER = re.compile(r"\.(part|init|recovering|damaged)$")
+
+
+class Writer:
+    """A writer process; a thread collects its stdout so the test never blocks on the pipe."""
+
+    def __init__(self, store: Path, *, seed_base: int, count: int, rotate: int, pause_s: float = 0.0,
+                 kill_at: str = "", prefix: list[str] | None = None) -> None:
+        env = {k: v for k, v in os.environ.items() if k != KILL_ENV}
+        if kill_at:
+            env[KILL_ENV] = kill_at
+        argv = [sys.executable, str(HERE), "write", str(store), str(seed_base), str(count), str(rotate), str(pause_s)]
+        self.proc = subprocess.Popen([*(prefix or []), *argv], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                     text=True, env=env)
+        self.lines: list[str] = []
+        self.ready = threading.Event()
+        self._thread = threading.Thread(target=self._collect, daemon=True)
+        self._thread.start()
+
+    def _collect(self) -> None:
+        for line in self.proc.stdout:
+            if line.strip() == "ready":
+                self.ready.set()
+            else:
+                self.lines.append(line)
+
+    def finish(self, timeout_s: float = 30.0) -> dict[int, int]:
+        """Wait for the process to end; the acknowledged records as {index: seed}."""
+        self.proc.wait(timeout=timeout_s)
+        self._thread.join(timeout=timeout_s)
+        self.stderr = self.proc.stderr.read()
+        self.proc.stderr.close()
+        return dict(tuple(map(int, line.split())) for line in self.lines if line.endswith("\n"))
+
+    def kill(self) -> dict[int, int]:
+        self.proc.send_signal(signal.SIGKILL)
+        return self.finish()
+
+    def failure(self) -> str:
+        """For an assertion message: stop the process and return what it printed on stderr."""
+        self.kill()
+        return self.stderr
+
+
+def writer_main(argv: list[str]) -> None:
+    """Child side: append records made from consecutive seeds; print each acknowledged index."""
+    store, seed_base, count, rotate, pause_s = argv[0], int(argv[1]), int(argv[2]), int(argv[3]), float(argv[4])
+    with RecordStore(store, rotate_records=rotate) as writer:
+        print("ready", flush=True)
+        for k in range(count):
+            index = writer.append(make_record(seed_base + k))
+            print(index, seed_base + k, flush=True)
+            if pause_s:
+                time.sleep(pause_s)
+
+
+def check_store(store: Path, acked: dict[int, int], *, recover: bool, since: int = 0) -> int:
+    """Acknowledged records are present and exact; stored records from ``since`` on verify. Returns the count."""
+    if recover:
+        RecordStore(store).close()  # the writer's start-up recovery, then a clean close
+        assert not [p.name for p in store.parent.iterdir() if LEFTOVER.search(p.name)]
+    with open_records(store) as reader:
+        assert reader.notes == []
+        stored = [s.index for s in reader.index()]
+        assert stored == list(range(len(stored)))  # a crash never leaves a hole in the indices
+        assert set(acked) <= set(stored)
+        for index in stored[since:]:
+            record = reader.read(index)  # read() checks the samples against the stored CRC-32
+            seed = acked.get(index)
+            if seed is not None:
+                expected = make_record(seed)
+                assert record.checksum() == crc_of(expected)  # zlib CRC-32 of the regenerated samples
+                for got, want in zip(record.channels, expected.channels, strict=True):
+                    np.testing.assert_array_equal(got.samples, want.samples)
+                assert record.analysis == expected.analysis and record.utc == expected.utc
+    return len(stored)
+
+
+def check_plain_files(store: Path) -> None:
+    """Finished segments are closed HDF5 files: h5py opens them without SWMR, h5dump 1.10 lists them."""
+    for path in sorted(store.parent.glob(f"{store.stem}.*.h5")):
+        with h5py.File(path, "r") as f:
+            assert f.attrs["acqd_format"] == "acqd-records"
+        if H5DUMP:  # Debian hdf5-tools 1.10: an independent reader of the file format
+            proc = subprocess.run([H5DUMP, "-H", str(path)], capture_output=True, text=True, timeout=30)
+            assert proc.returncode == 0 and 'DATASET "index"' in proc.stdout, proc.stderr
+
+
+def in_parallel(job, items: list) -> list:
+    """Run independent trials two at a time (the machine has two cores); re-raises a trial's failure."""
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        return [future.result() for future in [pool.submit(job, item) for item in items]]
+
+
+def random_kills(store: Path, seed: int, trials: int) -> int:
+    """SIGKILL a writer of ``store`` at seeded random moments ``trials`` times.
+
+    After every second kill the test checks the store (as a reader, then recovering it itself); after the
+    others the next writer has to recover it before it can print "ready", so kills land in start-ups too.
+    """
+    rng = random.Random(seed)  # seeded: the same kill delays on every run
+    acked: dict[int, int] = {}
+    checked = 0  # records before this index were verified after an earlier kill
+    for trial in range(trials):
+        writer = Writer(store, seed_base=trial * 100_000, count=100_000, rotate=7)
+        assert writer.ready.wait(timeout=30), writer.failure()
+        if trial % 2:  # odd trials kill after the first acknowledged record, even ones at any moment
+            assert wait_for(lambda w=writer: w.lines), writer.failure()
+        time.sleep(rng.uniform(0.0, 0.1))
+        acked.update(writer.kill())
+        assert writer.proc.returncode == -signal.SIGKILL
+        if trial % 2:  # after even trials the next writer recovers, so kills also land in its start-up
+            check_store(store, acked, recover=False, since=checked)  # a reader copes with the dead writer's file
+            checked = check_store(store, acked, recover=True, since=checked) - 1
+    check_store(store, acked, recover=True)
+    check_plain_files(store)
+    return len(acked)
+
+
+def wait_for(condition, timeout_s: float = 30.0) -> bool:
+    deadline = time.monotonic() + timeout_s
+    while not condition() and time.monotonic() < deadline:
+        time.sleep(0.005)
+    return bool(condition())
+
+
+def test_sigkill_at_random_moments(tmp_path: Path) -> None:
+    stores = [tmp_path / f"run{k}" / "night.h5" for k in range(2)]
+    for store in stores:
+        store.parent.mkdir()
+    n_acked = in_parallel(lambda k: random_kills(stores[k], 20260501 + k, trials=10), [0, 1])
+    assert min(n_acked) >= 5  # every odd trial acknowledged at least one record before its kill
+
+
+# (kill point, acknowledged records, stored records after recovery) with rotate_records=4.
+FAULT_POINTS = [
+    ("append:blobs@3", 2, 2),  # blobs written, no sample chunk yet
+    ("append:samples@3", 2, 2),  # sample chunk written, not flushed
+    ("append:data-flushed@3", 2, 2),  # data flushed, index row not yet written
+    ("append:index@3", 2, 2),  # index row written, its extent not flushed
+    ("append:flushed@3", 2, 3),  # flushed, not fsynced: in the page cache, survives a kill
+    ("append:synced@3", 2, 3),  # durable, but append() has not returned
+    ("rotate:closed@1", 3, 4),  # 4th append: segment closed, not yet renamed
+    ("rotate:renamed@1", 3, 4),  # renamed, directory not yet fsynced
+    ("rotate:created@2", 4, 4),  # 5th append: next segment created under its temporary name
+]
+
+
+@pytest.mark.parametrize("kill_at, n_acked, n_stored", FAULT_POINTS)
+def test_sigkill_at_chosen_steps_of_a_write(tmp_path: Path, kill_at: str, n_acked: int, n_stored: int) -> None:
+    store = tmp_path / "s.h5"
+    writer = Writer(store, seed_base=0, count=10, rotate=4, kill_at=kill_at)
+    acked = writer.finish()
+    assert writer.proc.returncode == -signal.SIGKILL, writer.stderr  # it died at the chosen step
+    assert sorted(acked) == list(range(n_acked))
+    assert check_store(store, acked, recover=True) == n_stored
+    check_plain_files(store)
+
+
+@pytest.mark.parametrize(
+    "kill_at, left_behind",
+    [
+        ("recover:copied@1", ["s.000000.h5.part", "s.000000.h5.recovering"]),  # copy written, not renamed
+        ("recover:renamed@1", ["s.000000.h5", "s.000000.h5.part"]),  # copy in place, .part not yet removed
+    ],
+)
+def test_sigkill_during_recovery(tmp_path: Path, kill_at: str, left_behind: list[str]) -> None:
+    store = tmp_path / "s.h5"
+    acked = Writer(store, seed_base=0, count=10, rotate=4, kill_at="append:index@3").finish()
+    second = Writer(store, seed_base=50, count=10, rotate=4, kill_at=kill_at)
+    assert second.finish() == {} and second.proc.returncode == -signal.SIGKILL  # died while recovering
+    assert sorted(p.name for p in tmp_path.glob("s.0*")) == left_behind
+    assert check_store(store, acked, recover=True) == 2
+    check_plain_files(store)
+
+
+def test_unopenable_live_segment_is_moved_aside_not_deleted(tmp_path: Path) -> None:
+    store = tmp_path / "s.h5"
+    acked = Writer(store, seed_base=0, count=10, rotate=4, kill_at="append:index@7").finish()
+    part = tmp_path / "s.000001.h5.part"  # records 4 and 5; segment 0 (records 0-3) is finished
+    wrecked = b"\0" * 512 + part.read_bytes()[512:]  # no superblock: HDF5 finds no file signature
+    part.write_bytes(wrecked)
+    with open_records(store) as reader:  # a reader skips it, says so, and lists the rest
+        assert [s.index for s in reader.index()] == [0, 1, 2, 3]
+        assert len(reader.notes) == 1 and "s.000001.h5.part: skipped" in reader.notes[0]
+    with RecordStore(store) as writer:
+        assert len(writer.notes) == 1
+        assert "cannot be read" in writer.notes[0] and "moved aside to s.000001.h5.damaged" in writer.notes[0]
+        writer.append(make_record(99))
+    assert (tmp_path / "s.000001.h5.damaged").read_bytes() == wrecked  # kept byte for byte
+    check_store(store, {i: acked[i] for i in range(4)}, recover=False)
+
+
+def test_damage_before_the_last_row_keeps_the_original(tmp_path: Path) -> None:
+    store = tmp_path / "s.h5"
+    acked = Writer(store, seed_base=0, count=10, rotate=10, kill_at="append:index@6").finish()
+    part = tmp_path / "s.000000.h5.part"
+    with h5py.File(part, "r", swmr=True) as f:  # h5py: where the second record's first chunk lies
+        chunk = f["samples"].id.get_chunk_info_by_coord((1, 0, 0))
+    with open(part, "r+b") as fh:  # flip bytes of an acknowledged record, as a failing disk would
+        fh.seek(chunk.byte_offset + 8)
+        fh.write(b"\xff" * 8)
+    with RecordStore(store) as writer:
+        assert "recovered 1 record(s)" in writer.notes[0] and "kept as s.000000.h5.damaged" in writer.notes[0]
+    assert (tmp_path / "s.000000.h5.damaged").exists()
+    check_store(store, {0: acked[0]}, recover=False)
+
+
+@pytest.mark.skipif(STRACE is None, reason="strace not installed")
+def test_sigkill_inside_hdf5_writes(tmp_path: Path) -> None:
+    """strace(1) ``-e inject=pwrite64:signal=SIGKILL:when=N`` kills the writer as it enters its N-th pwrite64."""
+    trace = tmp_path / "trace.txt"
+    dry = Writer(tmp_path / "dry.h5", seed_base=0, count=12, rotate=5,
+                 prefix=[STRACE, "-f", "-qq", "-e", "trace=pwrite64", "-o", str(trace)])
+    dry.finish()
+    if dry.proc.returncode != 0 and "ptrace" in dry.stderr:
+        pytest.skip(f"strace cannot trace here: {dry.stderr.strip().splitlines()[-1]}")
+    n_writes = trace.read_text().count("pwrite64(")
+    assert dry.proc.returncode == 0 and n_writes > 12 * 3  # blobs, samples, index, metadata per record
+    rng = random.Random(77)
+
+    def kill_at(when: int) -> None:
+        store = tmp_path / f"at{when}" / "s.h5"
+        store.parent.mkdir()
+        inject = ["-e", "trace=pwrite64", "-e", f"inject=pwrite64:signal=SIGKILL:when={when}"]
+        writer = Writer(store, seed_base=0, count=12, rotate=5,  # same records as the dry run: same writes
+                        prefix=[STRACE, "-f", "-qq", "-o", os.devnull, *inject])
+        acked = writer.finish()
+        assert writer.proc.returncode == -signal.SIGKILL, f"pwrite64 #{when} was not reached"
+        check_store(store, acked, recover=True)
+        check_plain_files(store)
+
+    in_parallel(kill_at, sorted(rng.sample(range(1, n_writes + 1), 8)))
+
+
+def test_swmr_reader_sees_records_while_the_writer_appends(tmp_path: Path) -> None:
+    store = tmp_path / "live.h5"
+    writer = Writer(store, seed_base=500, count=40, rotate=1000, pause_s=0.03)
+    assert writer.ready.wait(timeout=30), writer.failure()
+    assert wait_for(lambda: writer.lines), writer.failure()
+    deadline = time.monotonic() + 20
+    seen_while_running = []
+    with open_records(store) as reader:  # opens live.000000.h5.part with swmr=True
+        while time.monotonic() < deadline and writer.proc.poll() is None:
+            count = reader.refresh()
+            if writer.proc.poll() is None:  # still appending when this count was observed
+                seen_while_running.append(count)
+            time.sleep(0.01)
+        acked = writer.finish()
+        assert writer.proc.returncode == 0, writer.stderr
+        assert reader.refresh() == 40  # the file was renamed under the open reader; it reads on
+        for record in reader:
+            expected = make_record(acked[record.index])
+            assert record.checksum() == crc_of(expected)  # zlib CRC-32 of the regenerated samples
+    growing = sorted(set(c for c in seen_while_running if c < 40))
+    assert len(growing) >= 5  # the reader saw the store grow at least five times while it was written
+    assert sorted(acked) == list(range(40))
+
+
+if __name__ == "__main__":
+    if sys.argv[1:2] == ["write"]:
+        writer_main(sys.argv[2:])

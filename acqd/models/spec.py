@@ -7,18 +7,58 @@ simulate the same equations. Errors name the table and key, because these come f
 from __future__ import annotations
 
 import inspect
+import math
 from collections.abc import Callable, Mapping
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from ..errors import ConfigError
-from .circuits import series_rlc
+from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
 from .statespace import StateSpace
 
 ModelBuilder = Callable[..., StateSpace]
 
-BUILDERS: dict[str, ModelBuilder] = {"series_rlc": series_rlc}
+BUILDERS: dict[str, ModelBuilder] = {
+    "series_rlc": series_rlc,
+    "parallel_rlc": parallel_rlc,
+    "rc_lowpass": rc_lowpass,
+    "series_rl": series_rl,
+    "second_order": second_order,
+}
+
+
+@dataclass(frozen=True)
+class ParameterInfo:
+    """A scalar model parameter: its unit and the values it may take ("positive", "non_negative", "any")."""
+
+    unit: str
+    sign: str = "positive"
+
+    def problem(self, value: Any) -> str | None:
+        """Why ``value`` is not allowed, or None when it is."""
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            return f"must be a finite number ({self.unit}), not {value!r}"
+        if self.sign == "positive" and value <= 0:
+            return f"must be greater than 0 ({self.unit}), not {value!r}"
+        if self.sign == "non_negative" and value < 0:
+            return f"must be 0 or more ({self.unit}), not {value!r}"
+        return None
+
+
+_R, _L, _C = ParameterInfo("ohm"), ParameterInfo("H"), ParameterInfo("F")
+_RS = ParameterInfo("ohm", "non_negative")
+
+# Scalar parameters of each circuit model, for validation messages and fits (the matrix model has none).
+PARAMETERS: dict[str, dict[str, ParameterInfo]] = {
+    "series_rlc": {"r_ohm": _R, "l_h": _L, "c_f": _C, "source_resistance_ohm": _RS},
+    "parallel_rlc": {"r_ohm": _R, "l_h": _L, "c_f": _C, "source_resistance_ohm": ParameterInfo("ohm")},
+    "rc_lowpass": {"r_ohm": _R, "c_f": _C, "source_resistance_ohm": _RS},
+    "series_rl": {"r_ohm": _R, "l_h": _L, "source_resistance_ohm": _RS},
+    "second_order": {"wn_rad_s": ParameterInfo("rad/s"), "zeta": ParameterInfo("1", "non_negative"),
+                     "gain": ParameterInfo("V/V", "any")},
+}
 
 
 def _matrix_model(A: Any, B: Any, C: Any, D: Any, states: Any, outputs: Any,
@@ -40,6 +80,11 @@ def model_parameters(name: str) -> list[str]:
     return list(inspect.signature(BUILDERS[name]).parameters)
 
 
+def _required(name: str) -> list[str]:
+    return [p.name for p in inspect.signature(BUILDERS[name]).parameters.values()
+            if p.default is inspect.Parameter.empty]
+
+
 def build_model(spec: Mapping[str, Any], source: str, overrides: Mapping[str, float] | None = None) -> StateSpace:
     """The model a profile table describes; ``overrides`` replaces parameters (the comparator's fits)."""
     name = spec.get("model")
@@ -50,7 +95,13 @@ def build_model(spec: Mapping[str, Any], source: str, overrides: Mapping[str, fl
     for key in params:
         if key not in allowed:
             raise ConfigError(source, key, f"not a parameter of model {name}; allowed: {', '.join(allowed)}")
+    for key in _required(name):
+        if key not in params:
+            raise ConfigError(source, key, f"missing; model {name} needs {', '.join(_required(name))}")
     params.update(overrides or {})
+    for key, info in PARAMETERS.get(name, {}).items():
+        if key in params and (problem := info.problem(params[key])):
+            raise ConfigError(source, key, problem)
     try:
         return BUILDERS[name](**params)
     except TypeError as exc:

@@ -1,0 +1,307 @@
+"""``acqd compare`` (one record against a model) and ``acqd report`` (an HTML run report of a store).
+
+The model, mapping and tolerances come from a profile's ``[dut]`` table, from the record's own ``[dut]``
+(the profile it was captured with), or from options; options override table entries. Everything ends up
+as one ``[dut]``-shaped table validated by ``acqd.compare.parse_dut_table``, so a value given as an option
+is checked exactly like the same value in a profile, and the error names the option.
+
+Exit status: 0 pass (or no tolerances), 1 a failed verdict, 2 bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import copy
+from typing import Any
+
+from ..compare import CompareResult, CompareSpec, compare_spec, parse_dut_table
+from ..compare.csvinput import read_csv_record
+from ..compare.spec import WEIGHTINGS
+from ..errors import ConfigError
+from ..models import BUILDERS
+from ..record import EDGES, LOADS, Record, Stimulus
+
+CLI = "acqd compare"
+REPORT = "acqd report"
+STIMULUS_OPTIONS = ("low", "high", "edge", "load", "edge_time", "source_resistance")
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("compare", help="compare a record with a state-space model",
+                       description="Compare one record (stored, or a CSV) with a model: metrics, IEEE 181 step "
+                                   "parameters, optional parameter fit, verdict. Exit 0 pass, 1 fail, 2 bad input.")
+    p.add_argument("input", metavar="INPUT",
+                   help="a record store file, or a CSV (time column + one column per channel)")
+    p.add_argument("--record", metavar="N", help="the record's index in a store file (default: the newest)")
+    p.add_argument("--profile", metavar="PROFILE", help="take model, mapping, fit and tolerances from its [dut] table")
+    g = p.add_argument_group("model")
+    g.add_argument("--model", metavar="NAME", help=f"one of {', '.join(sorted(BUILDERS))}")
+    g.add_argument("--param", metavar="NAME=VALUE", action="append", default=[], help="a nominal parameter (SI)")
+    g.add_argument("--free", metavar="NAME[,NAME]", help="parameters to fit; the rest stay nominal")
+    g.add_argument("--hold", metavar="NAME[,NAME]", help="which free parameter to hold first if not identifiable")
+    g.add_argument("--weighting", choices=WEIGHTINGS, help="residuals per channel over its noise RMS or its range")
+    g = p.add_argument_group("channel mapping")
+    g.add_argument("--map", metavar="CHANNEL=PROBE", action="append", default=[],
+                   help="a record channel is a model output, or 'a - b' of two")
+    g.add_argument("--gain", metavar="CHANNEL=G", action="append", default=[], help="channel = G × probe + offset")
+    g.add_argument("--offset", metavar="CHANNEL=V", action="append", default=[], help="in the channel's unit")
+    g.add_argument("--stimulus-channel", metavar="CHANNEL", help="a mapped channel that places the edge in time")
+    g = p.add_argument_group("tolerances")
+    g.add_argument("--nrmse-max", metavar="X", help="ceiling for every channel's NRMSE (0.05 = 5 %%)")
+    g.add_argument("--parameter-pct", metavar="P", help="fitted parameters within ±P %% of nominal")
+    g.add_argument("--overshoot", metavar="CHANNEL=LO:HI", action="append", default=[], help="overshoot band in %%")
+    g.add_argument("--settling-max", metavar="CHANNEL=S", action="append", default=[], help="settling ceiling in s")
+    g.add_argument("--settling-band-pct", metavar="P", help="settling band, %% of the step (default 2)")
+    g = p.add_argument_group("CSV input (a stored record carries its own stimulus)")
+    g.add_argument("--time-column", metavar="NAME", help="time column in seconds, t = 0 at the edge (default: first)")
+    g.add_argument("--low", metavar="V", help="generator low level as set (default 0)")
+    g.add_argument("--high", metavar="V", help="generator high level as set (required for CSV)")
+    g.add_argument("--edge", choices=EDGES, help="captured edge (default rising)")
+    g.add_argument("--load", choices=LOADS, help="generator load setting (default high_z)")
+    g.add_argument("--edge-time", metavar="S", help="generator 10-90 %% edge time (default 0)")
+    g.add_argument("--source-resistance", metavar="OHM", help="generator output resistance (default 50)")
+    g = p.add_argument_group("output")
+    g.add_argument("--json", action="store_true", help="print the whole result as one JSON object")
+    g.add_argument("--figures", metavar="DIR", help="write channels.png and trajectory.png into DIR")
+    p.set_defaults(func=run_compare)
+
+    r = sub.add_parser("report", help="write an HTML run report of a record store",
+                       description="Compare every record of a store and write DIR/index.html (figures embedded).")
+    r.add_argument("file", metavar="FILE", help="a record store file")
+    r.add_argument("--out", metavar="DIR", required=True, help="directory for index.html")
+    r.add_argument("--profile", metavar="PROFILE", help="compare with this profile's [dut] (default: each record's)")
+    r.add_argument("--last", metavar="N", help="only the last N records")
+    r.set_defaults(func=run_report)
+
+
+# -- parsing option values ----------------------------------------------------------------------------
+def _number(option: str, text: str) -> float:
+    try:
+        return float(text)
+    except ValueError:
+        raise ConfigError(CLI, option, f"{text!r} is not a number") from None
+
+
+def _pair(option: str, text: str) -> tuple[str, str]:
+    name, sep, value = text.partition("=")
+    if not sep or not name.strip() or not value.strip():
+        raise ConfigError(CLI, option, f"must look like NAME=VALUE, not {text!r}")
+    return name.strip(), value.strip()
+
+
+def _names(text: str) -> list[str]:
+    return [n.strip() for n in text.split(",") if n.strip()]
+
+
+def _count(option: str, text: str, source: str = CLI) -> int:
+    try:
+        return int(text)
+    except ValueError:
+        raise ConfigError(source, option, f"{text!r} is not a whole number") from None
+
+
+# -- inputs ------------------------------------------------------------------------------------------
+def _stored_record(path: str, number: str | None) -> Record:
+    """Record ``number`` (its store index, as ``acqd ls`` shows it) or the newest one."""
+    from ..store import open_records  # h5py only when a store is read
+
+    with open_records(path) as reader:
+        summaries = reader.index()
+        if not summaries:
+            raise ConfigError(path, "", "holds no records")
+        return reader.read(summaries[-1].index if number is None else _count("--record", number))
+
+
+def _csv_stimulus(args: argparse.Namespace) -> Stimulus:
+    if args.high is None:
+        raise ConfigError(CLI, "--high", "required with a CSV input: the generator's high level as set, in V")
+    low, high = _number("--low", args.low or "0"), _number("--high", args.high)
+    if high <= low:
+        raise ConfigError(CLI, "--high", f"must be above --low ({low:g} V), not {high:g} V")
+    edge_time = _number("--edge-time", args.edge_time or "0")
+    rs = _number("--source-resistance", args.source_resistance or "50")
+    if edge_time < 0 or rs < 0:
+        raise ConfigError(CLI, "--edge-time" if edge_time < 0 else "--source-resistance", "must be 0 or more")
+    return Stimulus("square", low, high, 0.0, args.edge or "rising", args.load or "high_z", rs, edge_time)
+
+
+def _record(args: argparse.Namespace) -> Record:
+    if args.input.lower().endswith(".csv"):
+        if args.record is not None:
+            raise ConfigError(CLI, "--record", "only for a record store; a CSV holds one record")
+        return read_csv_record(args.input, _csv_stimulus(args), args.time_column)
+    given = [f"--{o.replace('_', '-')}" for o in (*STIMULUS_OPTIONS, "time_column") if getattr(args, o) is not None]
+    if given:
+        raise ConfigError(CLI, given[0], "only for a CSV input; a stored record carries its own stimulus")
+    return _stored_record(args.input, args.record)
+
+
+# -- the [dut] table: base (profile or record) + options --------------------------------------------------
+class _Table:
+    """A [dut]-shaped table under construction, remembering which option set which key."""
+
+    def __init__(self, data: dict[str, Any], source: str, text: str, path: str) -> None:
+        self.data, self.source, self.text, self.path = copy.deepcopy(data), source, text, path
+        self.options: dict[str, str] = {}
+
+    def set(self, keys: tuple[str, ...], value: Any, option: str) -> None:
+        node = self.data
+        for key in keys[:-1]:
+            node = node.setdefault(key, {})
+        node[keys[-1]] = value
+        self.options[".".join(keys)] = option
+
+    def channel(self, name: str, option: str) -> dict[str, Any]:
+        """The table entry of a mapped channel (a bare probe string becomes {probe = ...})."""
+        channels = self.data.get("channels", {})
+        if name not in channels:
+            raise ConfigError(CLI, option, f"channel {name!r} is not mapped; add --map {name}=PROBE")
+        if isinstance(channels[name], str):
+            channels[name] = {"probe": channels[name]}
+        return channels[name]
+
+    def parse(self) -> CompareSpec:
+        if "model" not in self.data:
+            raise ConfigError(CLI, "--model", "missing: give --model NAME, or --profile PROFILE (or a stored "
+                                              "record) whose [dut] table names a model")
+        return parse_dut_table(self.data, self.source, self.text, self.path)
+
+    def as_option(self, exc: ConfigError) -> ConfigError:
+        """An error in a key an option set names the option, not the table (or the comparator's source)."""
+        key = exc.field.removeprefix(f"{self.path}.") if self.path else exc.field
+        for known in sorted(self.options, key=len, reverse=True):
+            if key == known or key.startswith(f"{known}."):
+                return ConfigError(CLI, self.options[known], exc.problem)
+        return exc
+
+
+def _base_table(args: argparse.Namespace, record: Record) -> _Table:
+    if args.profile:
+        from ..profile import load_profile  # only the [dut] table is used, but the profile must be valid
+        profile = load_profile(args.profile)
+        table = _Table(profile.dut, profile.source, profile.text, "dut")
+    elif "model" in (record.dut or {}):
+        table = _Table(record.dut, f"{args.input} record {record.index}", "", "dut")
+    else:
+        table = _Table({}, CLI, "", "")
+    if args.model and table.data.get("model") not in (None, args.model):
+        table.data = {k: v for k, v in table.data.items() if k in ("name", "serial")}  # other model: start over
+    return table
+
+
+def _apply_options(table: _Table, args: argparse.Namespace) -> None:
+    if args.model:
+        table.set(("model",), args.model, "--model")
+    for text in args.param:
+        name, value = _pair("--param", text)
+        table.set((name,), _number(f"--param {name}", value), f"--param {name}")
+    for option, key in (("--free", "free"), ("--hold", "hold")):
+        if (value := getattr(args, key)) is not None:
+            table.set(("fit", key), _names(value), option)
+    if args.weighting:
+        table.set(("fit", "weighting"), args.weighting, "--weighting")
+    for text in args.map:
+        name, probe = _pair("--map", text)
+        table.set(("channels", name), {"probe": probe}, f"--map {name}")
+    for option, key in (("--gain", "gain"), ("--offset", "offset")):
+        for text in getattr(args, key):
+            name, value = _pair(option, text)
+            table.channel(name, f"{option} {name}")[key] = _number(f"{option} {name}", value)
+            table.options[f"channels.{name}.{key}"] = f"{option} {name}"
+    if args.stimulus_channel:
+        table.channel(args.stimulus_channel, "--stimulus-channel")["stimulus"] = True
+        table.options[f"channels.{args.stimulus_channel}.stimulus"] = "--stimulus-channel"
+    _apply_tolerances(table, args)
+
+
+def _apply_tolerances(table: _Table, args: argparse.Namespace) -> None:
+    for option, key in (("--nrmse-max", "nrmse_max"), ("--parameter-pct", "parameter_pct"),
+                        ("--settling-band-pct", "settling_band_pct")):
+        if (text := getattr(args, key)) is not None:
+            table.set(("tolerances", key), _number(option, text), option)
+    for text in args.overshoot:
+        name, band = _pair("--overshoot", text)
+        lo, sep, hi = band.partition(":")
+        if not sep:
+            raise ConfigError(CLI, f"--overshoot {name}", f"must look like CHANNEL=LO:HI in percent, not {text!r}")
+        option = f"--overshoot {name}"
+        table.set(("tolerances", "channels", name, "overshoot_pct"), [_number(option, lo), _number(option, hi)], option)
+        table.options.setdefault(f"tolerances.channels.{name}", option)
+    for text in args.settling_max:
+        name, value = _pair("--settling-max", text)
+        option = f"--settling-max {name}"
+        table.set(("tolerances", "channels", name, "settling_s_max"), _number(option, value), option)
+        table.options.setdefault(f"tolerances.channels.{name}", option)
+
+
+# -- output --------------------------------------------------------------------------------------------
+def _step_text(step: Any, attr: str) -> str:
+    value = getattr(step, attr) if step is not None else None
+    return "-" if value is None else f"{value:.4g}"
+
+
+def format_result(result: CompareResult, label: str) -> str:
+    """A short plain-text summary for the terminal; ``label`` names the record (file, index)."""
+    stim = result.stimulus
+    when = f" ({result.record['utc']})" if result.record["utc"] else ""
+    lines = [f"{label}{when} vs {result.model}: EMF {stim['before_v']:g} -> {stim['after_v']:g} V, "
+             f"timing {stim['timing']}",
+             f"{'channel':<10} {'probe':<14} {'NRMSE %':>8} {'max|err|':>10} {'overshoot % m/s':>17} "
+             f"{'settling s m/s':>21}"]
+    for ch in result.channels:
+        m, s = ch.measured, ch.simulated
+        over = f"{_step_text(m, 'overshoot_pct')}/{_step_text(s, 'overshoot_pct')}"
+        settle = f"{_step_text(m, 'settling_duration_s')}/{_step_text(s, 'settling_duration_s')}"
+        lines.append(f"{ch.channel:<10} {ch.probe:<14} {100 * ch.nrmse:>8.3f} {ch.max_abs_error:>10.3g} "
+                     f"{over:>17} {settle:>21}")
+    if result.fit:
+        fit = result.fit
+        lines.append(f"fit ({fit.weighting} weighting, residual scale {fit.residual_scale:.3g}, "
+                     f"{fit.evaluations} evaluations, condition number {fit.condition_number:.3g}):")
+        for name in fit.fitted:
+            lo, hi = fit.ci95[name]
+            lines.append(f"  {name} = {fit.values[name]:.5g} {fit.units[name]} ± {fit.standard_errors[name]:.2g} "
+                         f"(95 %: {lo:.5g} .. {hi:.5g}; start {fit.nominal[name]:.5g})")
+        lines += [f"  {name} held fixed: {why}" for name, why in fit.held_fixed.items()]
+    lines.append(f"verdict: {result.verdict.status.upper()}")
+    lines += [f"  - {reason}" for reason in result.verdict.reasons]
+    lines += [f"warning: {w}" for w in result.warnings]
+    return "\n".join(lines)
+
+
+def run_compare(args: argparse.Namespace) -> int:
+    record = _record(args)
+    table = _base_table(args, record)
+    _apply_options(table, args)
+    label = args.input if record.index is None else f"{args.input} record {record.index}"
+    try:
+        result = compare_spec(record, table.parse(), label)
+    except ConfigError as exc:
+        raise table.as_option(exc) from None
+    if args.figures:
+        from ..report import save_figures  # matplotlib only when figures are asked for
+        save_figures(result, args.figures)
+    print(result.to_json() if args.json else format_result(result, label))
+    return 1 if result.verdict.status == "fail" else 0
+
+
+def run_report(args: argparse.Namespace) -> int:
+    from ..report import spec_from_record, write_report  # matplotlib only for this sub-command
+    from ..store import open_records
+
+    if args.profile:
+        from ..profile import load_profile
+        profile = load_profile(args.profile)
+        spec = parse_dut_table(profile.dut, profile.source, profile.text)
+        spec_for = lambda record: spec  # noqa: E731 - one spec for every record
+    else:
+        spec_for = spec_from_record
+    last = None if args.last is None else _count("--last", args.last, REPORT)
+    if last is not None and last < 1:
+        raise ConfigError(REPORT, "--last", f"must be 1 or more, not {last}")
+    with open_records(args.file) as reader:
+        numbers = [s.index for s in reader.index()]
+        chosen = numbers if last is None else numbers[-last:]
+        path = write_report(reader, args.out, spec_for, f"acqd run report: {args.file}", chosen)
+    print(path)
+    return 0

@@ -1,0 +1,290 @@
+"""Compare one record with a model: simulate with the record's stimulus, measure, fit, judge.
+
+The flow: the nominal model (with the generator's source resistance from the record unless the table
+gives one) is driven by the stimulus edge from rest; each mapped channel is predicted as
+gain × probe + offset; free parameters are identified when asked; then every channel gets its errors and
+IEEE 181 step parameters, and the tolerances give the verdict. The result is plain data (``to_dict``,
+``to_json``) plus the traces for figures, which are not serialised.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields, is_dataclass, replace
+from typing import Any
+
+import numpy as np
+
+from ..errors import ConfigError
+from ..models import PARAMETERS, StateSpace
+from ..record import Record
+from .fit import FitResult, Free, fit_parameters
+from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms
+from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Probe, spec_from_parts
+from .stimulus import Edge, align_edge, edge_response, steady_state
+from .verdict import Verdict, judge
+
+STEP_MIN_SHARE = 1e-3  # a probe whose rest value moves less than this share of its range has no step
+ALIGN_SEARCH_SAMPLES = 10
+EDGE_PARAMETER = "edge_t50_s"  # the edge instant, fitted with the parameters when a stimulus channel is mapped
+WEIGHT_FLOOR_SHARE = 1e-6  # a channel's weight never drops below this share of its range (noise-free data)
+
+
+@dataclass
+class Traces:
+    """Arrays for figures: on the record's time axis, one entry per mapped channel or model state."""
+
+    times: np.ndarray
+    emf: np.ndarray
+    measured: dict[str, np.ndarray]
+    simulated: dict[str, np.ndarray]
+    units: dict[str, str]
+    states: tuple[str, ...]
+    state_units: tuple[str, ...]
+    states_simulated: np.ndarray  # (n_samples, n_states)
+    states_measured: dict[str, np.ndarray]  # only states the mapped channels determine
+
+
+@dataclass
+class CompareResult:
+    """One record against one model: per-channel results, the fit, the verdict, and warnings."""
+
+    record: dict[str, Any]
+    model: str
+    nominal: dict[str, Any]
+    parameters: dict[str, Any]  # the values the final simulation used (nominal, or fitted where fitted)
+    stimulus: dict[str, Any]
+    channels: list[ChannelResult]
+    fit: FitResult | None
+    verdict: Verdict
+    warnings: list[str]
+    nrmse_normalised_by: str = NRMSE_BASIS
+    traces: Traces | None = field(default=None, repr=False)
+
+    def channel(self, name: str) -> ChannelResult:
+        for ch in self.channels:
+            if ch.channel == name:
+                return ch
+        raise KeyError(f"no compared channel {name!r}; compared: {[c.channel for c in self.channels]}")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-able: numbers as floats, NaN and infinity as null, the traces left out.
+
+        The verdict is flattened to the top level (``verdict``: "pass" | "fail" | "untested", ``passed``,
+        ``checks``, ``reasons``): the store indexes ``verdict`` as text when a result is kept as a record's
+        ``analysis``.
+        """
+        out = _plain(self)
+        verdict = out.pop("verdict")
+        return {**out, "verdict": verdict["status"], "passed": self.verdict.passed,
+                "checks": verdict["checks"], "reasons": verdict["reasons"]}
+
+    def to_json(self, **kwargs: Any) -> str:
+        return json.dumps(self.to_dict(), allow_nan=False, **kwargs)
+
+
+def _plain(value: Any) -> Any:
+    if is_dataclass(value) and not isinstance(value, type):
+        return {f.name: _plain(getattr(value, f.name)) for f in fields(value) if f.name != "traces"}
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        return float(value) if math.isfinite(value) else None
+    return value
+
+
+@dataclass(frozen=True)
+class _Setup:
+    """What stays fixed while parameters change: the record's data, the mapping, the edge."""
+
+    spec: CompareSpec
+    times: np.ndarray
+    mapping: tuple[ChannelMap, ...]
+    measured: np.ndarray  # (n_channels, n_samples)
+    units: tuple[str, ...]  # the record's unit of each mapped channel
+    nominal: dict[str, Any]
+    edge: Edge
+
+    def model(self, values: Mapping[str, float] | None = None) -> StateSpace:
+        return self.spec.build({**self.nominal, **(values or {})})
+
+    def rows(self, model: StateSpace) -> tuple[np.ndarray, np.ndarray]:
+        """(P, Q) so that the predicted channels are x·Pᵀ + u·Q (gains applied, offsets not)."""
+        rows = [m.probe.row(model) for m in self.mapping]
+        gains = np.array([m.gain for m in self.mapping])
+        return np.array([r[0] for r in rows]) * gains[:, None], np.array([r[1] for r in rows]) * gains
+
+    def predict(self, model: StateSpace, edge: Edge) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(states, predicted channels (n_channels, n_samples), EMF)."""
+        x, _, u = edge_response(model, self.times, edge)
+        p, q = self.rows(model)
+        offsets = np.array([m.offset for m in self.mapping])
+        return x, (x @ p.T + np.outer(u, q)).T + offsets[:, None], u
+
+    def align(self, model: StateSpace) -> Edge:
+        """The edge placed by the stimulus channel when one is marked; otherwise as the metadata says."""
+        marked = [i for i, m in enumerate(self.mapping) if m.stimulus]
+        if not marked:
+            return self.edge
+        i = marked[0]
+        p, q = self.rows(model)
+        dt = self.times[1] - self.times[0]
+        return align_edge(model, self.times, self.edge, self.measured[i] - self.mapping[i].offset, p[i], q[i],
+                          max(ALIGN_SEARCH_SAMPLES * dt, 2 * self.edge.duration_s))
+
+
+def _default_mapping(spec: CompareSpec, record: Record, model: StateSpace) -> tuple[ChannelMap, ...]:
+    mapping = tuple(ChannelMap(name, Probe(name)) for name in record.channel_names if name in model.outputs)
+    if not mapping:
+        raise ConfigError(spec.source, "channels", f"no record channel is named like a model output "
+                          f"({', '.join(model.outputs)}); record channels are {', '.join(record.channel_names)}: "
+                          "map them in [dut.channels]")
+    return mapping
+
+
+def _setup(record: Record, spec: CompareSpec, label: str) -> _Setup:
+    nominal = dict(spec.nominal)
+    if "source_resistance_ohm" in PARAMETERS.get(spec.model, {}) and "source_resistance_ohm" not in nominal:
+        nominal["source_resistance_ohm"] = record.stimulus.source_resistance_ohm
+    model = spec.build(nominal)
+    mapping = spec.channels if spec.channels is not None else _default_mapping(spec, record, model)
+    measured, units = [], []
+    for m in mapping:
+        if m.channel not in record.channel_names:
+            raise ConfigError(spec.source, f"channels.{m.channel}", f"{label} has no such channel; "
+                              f"its channels are {', '.join(record.channel_names)}")
+        samples = np.asarray(record.channel(m.channel).samples, dtype=float)
+        if not np.all(np.isfinite(samples)):
+            raise ConfigError(label, f"channel {m.channel}",
+                              f"{int(np.sum(~np.isfinite(samples)))} samples are not finite numbers")
+        measured.append(samples)
+        units.append(record.channel(m.channel).unit)
+    if record.timebase.n_samples < 3:
+        raise ConfigError(label, "timebase", "needs at least 3 samples to compare")
+    edge = Edge.from_stimulus(record.stimulus)
+    try:
+        steady_state(model, edge.before_v)
+    except ValueError as exc:
+        raise ConfigError(spec.source, "model", str(exc)) from None
+    return _Setup(spec, record.timebase.times(), mapping, np.array(measured), tuple(units), nominal, edge)
+
+
+def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> np.ndarray:
+    """Per-channel divisor of the residuals: the channel's noise RMS, or its simulated range."""
+    spans = np.ptp(nominal_prediction, axis=1)
+    if weighting == "amplitude":
+        return np.where(spans > 0, spans, 1.0)
+    noise = np.array([noise_rms(setup.times, y, setup.edge.start_s) for y in setup.measured])
+    return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
+
+
+def _fit(setup: _Setup, edge: Edge) -> FitResult:
+    """Identify the free parameters. With a stimulus channel and an edge the samples resolve, the edge
+    instant is fitted alongside them, since aligning it with a model whose parameters are still wrong
+    would bias both; an unresolved edge keeps the whole-sample position the alignment found."""
+    spec = setup.spec
+    _, nominal_prediction, _ = setup.predict(setup.model(), edge)
+    weights = _weights(setup, nominal_prediction, spec.fit.weighting)[:, None]
+    infos = PARAMETERS[spec.model]
+    free = {n: Free(setup.nominal[n], infos[n].sign != "any", abs(setup.nominal[n]) or 1.0, infos[n].unit)
+            for n in spec.fit.free}
+    dt = setup.times[1] - setup.times[0]
+    if any(m.stimulus for m in setup.mapping) and edge.resolved(dt):
+        free[EDGE_PARAMETER] = Free(edge.t50_s, False, dt, "s")
+
+    def residuals_of(values: dict[str, float]) -> np.ndarray:
+        params = {k: v for k, v in values.items() if k != EDGE_PARAMETER}
+        moved = replace(edge, t50_s=values.get(EDGE_PARAMETER, edge.t50_s))
+        _, predicted, _ = setup.predict(setup.model(params), moved)
+        return ((setup.measured - predicted) / weights).ravel()
+
+    hold_order = (*spec.fit.hold, *DEFAULT_HOLD.get(spec.model, ()))
+    return fit_parameters(residuals_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,))
+
+
+def _polarity(model: StateSpace, probe: Probe, gain: float, edge: Edge, span: float) -> str | None:
+    """Direction of the probe's step between the two rest states; None when it returns to where it was."""
+    c, d = probe.row(model)
+    x0, x1 = model.steady_state(edge.before_v), model.steady_state(edge.after_v)
+    change = gain * (c @ (x1 - x0) + d * (edge.after_v - edge.before_v))
+    if abs(change) <= STEP_MIN_SHARE * span:
+        return None
+    return "rising" if change > 0 else "falling"
+
+
+def _measured_states(setup: _Setup, model: StateSpace, u: np.ndarray) -> dict[str, np.ndarray]:
+    """States reconstructed from the mapped channels by least squares (e.g. i_L = v_R / R), for the states
+    the channels determine; a state outside the row space of the probes cannot be reconstructed."""
+    p, q = setup.rows(model)
+    offsets = np.array([m.offset for m in setup.mapping])
+    z = setup.measured - offsets[:, None] - np.outer(q, u)
+    pinv = np.linalg.pinv(p)
+    determined = np.abs(pinv @ p - np.eye(p.shape[1])).max(axis=1) < 1e-8
+    x_hat = pinv @ z
+    return {name: x_hat[i] for i, name in enumerate(model.states) if determined[i]}
+
+
+def _warnings(channels: list[ChannelResult], spans: np.ndarray) -> list[str]:
+    out = []
+    for ch, span in zip(channels, spans):
+        if ch.baseline_error is not None and span > 0 and abs(ch.baseline_error) > BASELINE_WARN_SHARE * span:
+            out.append(f"{ch.channel}: the pre-trigger baseline is {ch.baseline_error:+.4g} {ch.unit} away from "
+                       f"the model's rest value ({100 * abs(ch.baseline_error) / span:.1f} % of the range): the DUT "
+                       "was not at rest before the edge, or the levels, gain or offset are off")
+    return out
+
+
+def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareResult:
+    """Compare ``record`` with the validated ``spec``: the one entry point the API, CLI and report share.
+
+    ``label`` names the record in error messages (a file name); by default "record N".
+    """
+    setup = _setup(record, spec, label or (f"record {record.index}" if record.index is not None else "the record"))
+    edge = setup.align(setup.model())
+    fit = _fit(setup, edge) if spec.fit.free else None
+    fitted = {k: v for k, v in fit.values.items() if k not in fit.nuisance} if fit else {}
+    if fit and EDGE_PARAMETER in fit.values:
+        edge = replace(edge, t50_s=fit.values[EDGE_PARAMETER])
+    parameters = {**setup.nominal, **fitted}
+    model = setup.model(parameters)
+    x, predicted, u = setup.predict(model, edge)
+    spans = np.ptp(predicted, axis=1)
+    channels = []
+    for m, unit, meas, sim, span in zip(setup.mapping, setup.units, setup.measured, predicted, spans):
+        channels.append(channel_result(m.channel, m.probe.text, unit, m.gain, m.offset, setup.times, meas, sim,
+                                       _polarity(model, m.probe, m.gain, edge, span), edge.start_s,
+                                       spec.tolerances.settling_band_pct))
+    verdict, notes = judge(channels, fit, spec.tolerances)
+    traces = Traces(setup.times, u, {m.channel: y for m, y in zip(setup.mapping, setup.measured)},
+                    {m.channel: y for m, y in zip(setup.mapping, predicted)},
+                    {c.channel: c.unit for c in channels}, model.states, model.state_units, x,
+                    _measured_states(setup, model, u))
+    marked = [m.channel for m in setup.mapping if m.stimulus]
+    stimulus = {"before_v": edge.before_v, "after_v": edge.after_v, "t50_s": edge.t50_s,
+                "duration_s": edge.duration_s,
+                "timing": (f"placed by channel {marked[0]} ({edge.t50_s - setup.edge.t50_s:+.3g} s from the trigger)"
+                           if marked else "from the record's metadata (t50 at the trigger)")}
+    record_info = {"index": record.index, "utc": record.utc, "channels": record.channel_names,
+                   "dut": dict(spec.identity), "profile_sha256": record.profile_sha256}
+    return CompareResult(record_info, spec.model, dict(setup.nominal), parameters, stimulus, channels, fit,
+                         verdict, _warnings(channels, spans) + notes, traces=traces)
+
+
+def compare(record: Record, model_spec: Mapping[str, Any], mapping: Mapping[str, Any] | None = None,
+            tolerances: Mapping[str, Any] | None = None, fit: Mapping[str, Any] | None = None,
+            source: str = "compare()") -> CompareResult:
+    """Compare a record with a model given as plain tables (the shapes of ``[dut]``, see ``spec``).
+
+    ``model_spec`` is ``{"model": name, **nominal parameters}``; ``mapping`` is ``[dut.channels]``,
+    ``tolerances`` ``[dut.tolerances]``, ``fit`` ``[dut.fit]`` (e.g. ``{"free": ["r_ohm", "c_f"]}``).
+    """
+    return compare_spec(record, spec_from_parts(model_spec, mapping, tolerances, fit, source))
+

@@ -63,7 +63,8 @@ class Table:
         if key in self.data:
             return self.data[key]
         if default is ...:
-            typo = difflib.get_close_matches(key, [k for k in self.data if isinstance(k, str)], n=1)
+            unread = [k for k in self.data if isinstance(k, str) and k not in self._seen]
+            typo = difflib.get_close_matches(key, unread, n=1)
             if typo:
                 raise self.error(typo[0], f"unknown key; did you mean {key!r} (required)?")
             raise self.error(key, "missing (required)")

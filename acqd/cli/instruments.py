@@ -1,0 +1,65 @@
+"""``acqd drivers`` and ``acqd probe``: which driver files exist, and which one fits an instrument.
+
+``probe`` is the first thing to run against a new bench: it proves the resource answers and names the
+driver to put in the profile, or says that none fits (then a new driver file is the way forward:
+DEVELOPERS.md, "How to add a driver").
+"""
+
+from __future__ import annotations
+
+import argparse
+from typing import Any
+
+from rich.console import Console
+from rich.markup import escape
+from rich.table import Table
+
+from ..instruments import driver_dirs, list_drivers, match_driver
+from ..instruments.search import ENVIRONMENT
+from ..visa import DEFAULT_BACKEND, identify
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    drivers = subparsers.add_parser("drivers", help="list the driver files found (name, role, *IDN? match, limits)")
+    drivers.set_defaults(func=_drivers)
+
+    probe = subparsers.add_parser("probe", help="ask an instrument for *IDN? and name the driver that fits")
+    probe.add_argument("resource", metavar="RESOURCE", help="VISA resource, e.g. TCPIP0::192.0.2.10::5025::SOCKET")
+    probe.add_argument("--backend", default=DEFAULT_BACKEND, help=f"pyvisa backend (default {DEFAULT_BACKEND})")
+    probe.add_argument("--timeout-s", type=float, default=5.0, metavar="S", help="reply timeout in seconds")
+    probe.set_defaults(func=_probe)
+
+
+def _limits_text(limits: dict[str, Any]) -> str:
+    parts = []
+    for key, value in limits.items():
+        if isinstance(value, dict):
+            value = ", ".join(f"{k} {v:g}" for k, v in value.items())
+        elif isinstance(value, float):
+            value = f"{value:g}"
+        parts.append(f"{key}: {value}")
+    return "\n".join(parts)
+
+
+def _drivers(args: argparse.Namespace) -> int:
+    table = Table(title="acqd drivers", caption=f"searched: {', '.join(str(d) for d in driver_dirs())}")
+    for column in ("name", "role", "*IDN? match", "limits", "description"):
+        table.add_column(column, overflow="fold")
+    for info in list_drivers():
+        table.add_row(info.name, info.role, escape(info.idn_pattern), escape(_limits_text(info.limits)),
+                      escape(info.description))
+    Console().print(table)
+    return 0
+
+
+def _probe(args: argparse.Namespace) -> int:
+    idn = identify(args.resource, backend=args.backend, timeout_s=args.timeout_s)
+    info = match_driver(idn)
+    console = Console(highlight=False)
+    console.print(f"{escape(args.resource)}: {escape(idn)}")
+    if info is None:
+        console.print(f"no driver fits; add one to drivers/ or a folder in {ENVIRONMENT} "
+                      f"(DEVELOPERS.md, 'How to add a driver')")
+        return 1
+    console.print(f"driver: {info.name} ({info.role}, {info.path})")
+    return 0

@@ -1,0 +1,13 @@
+"""Instrument roles and the driver files that make a model play them.
+
+``open_instrument(resource, driver)`` gives a ``Generator`` or a ``Scope``; the driver file (TOML, see
+``docs/drivers.md``) says which SCPI commands the model uses. ``find_driver``, ``list_drivers`` and
+``match_driver`` look drivers up without touching an instrument.
+"""
+
+from .driver import Driver, DriverInfo, load_driver
+from .roles import Generator, Scope, open_instrument
+from .search import driver_dirs, find_driver, list_drivers, match_driver
+
+__all__ = ["Driver", "DriverInfo", "Generator", "Scope", "driver_dirs", "find_driver", "list_drivers",
+           "load_driver", "match_driver", "open_instrument"]

@@ -1,0 +1,204 @@
+"""Driver files: loading, validation (one line naming file and field), expressions, search, the CLI.
+
+No instrument is needed here except for ``acqd probe``. References: Python's own tomllib and arithmetic,
+``re``, and the SCPI / IEEE 488.2 clauses cited beside each check.
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+import tomllib
+from pathlib import Path
+
+import pytest
+
+from acqd import scpi
+from acqd.cli import main as acqd_main
+from acqd.errors import ConfigError
+from acqd.instruments import find_driver, list_drivers, load_driver, match_driver
+from acqd.instruments.expression import Expression, ExpressionError
+
+DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
+SHIPPED = {"scpi-generator": "generator", "scpi-digitizer": "scope", "viewscope": "scope"}
+
+
+def one_line(exc: BaseException) -> str:
+    text = str(exc)
+    assert "\n" not in text
+    return text
+
+
+def variant(tmp_path: Path, name: str, old: str, new: str) -> Path:
+    """A copy of a shipped driver with one piece of text replaced (the replacement must take place)."""
+    text = (DRIVERS / f"{name}.toml").read_text()
+    assert old in text
+    path = tmp_path / f"{name}-variant.toml"
+    path.write_text(text.replace(old, new, 1))
+    return path
+
+
+# --- the shipped drivers ------------------------------------------------------------------------------
+
+def test_shipped_drivers_load_and_are_listed():
+    found = {info.name: info for info in list_drivers()}
+    assert {name: found[name].role for name in SHIPPED} == SHIPPED
+    for name in SHIPPED:
+        # Reference: tomllib parses each file, and the file's own idn pattern compiles with re.
+        data = tomllib.loads((DRIVERS / f"{name}.toml").read_text())
+        assert found[name].idn_pattern == re.compile(data["driver"]["idn"]).pattern
+
+
+@pytest.mark.parametrize("idn, expected", [
+    ("acqd-sim,DIG,0,0.1.0", "scpi-digitizer"),
+    ("acqd-sim,VIEWSCOPE,0,0.1.0", "viewscope"),
+    ("acqd-sim,FG,0,0.1.0", "scpi-generator"),
+    ("Some Maker,Model 9,123,1.0", None),
+])
+def test_match_driver_by_idn(idn, expected):
+    # IEEE 488.2 §10.14 (from memory): *IDN? answers manufacturer,model,serial,firmware.
+    info = match_driver(idn)
+    assert (info.name if info else None) == expected
+
+
+def test_commands_follow_the_per_division_and_share_conventions():
+    view = load_driver(find_driver("viewscope"))
+    dig = load_driver(find_driver("scpi-digitizer"))
+    window, n, share, range_v = 2e-4, 2000, 0.2, 1.0
+    # Reference: plain Python arithmetic of the DEVELOPERS.md tables: 10 horizontal divisions span the
+    # window, 8 vertical divisions span offset ± range; the DIG's pre-trigger is a negative sample offset.
+    sent = view.commands("timebase", window_s=window, n_samples=n, pretrigger_share=share)
+    assert scpi.parse_number(sent[0].split()[1]) == window / 10
+    assert sent[1:] == [f"SPAN:POINts {n}", f"SPAN:LEAD {scpi.format_number(share)}"]
+    sent = view.commands("channel", channel="CH3", range_v=range_v, offset_v=0.5, coupling="dc")
+    assert sent[0] == f"VIEW3:VDIVision {scpi.format_number(2 * range_v / 8)}"
+    assert dig.commands("timebase", window_s=window, n_samples=n, pretrigger_share=share)[2] == \
+        f"SWEep:OFFSet:POINts {-round(share * n)}"
+    # SCPI-1999 Vol 1 §7.2: a numeric value is NR1/NR2/NR3 text, parsed back to the same double here.
+    level = dig.commands("trigger", source="external", slope="falling", level_v=0.1)
+    assert level == ["TRIGger:SOURce EXTernal", "TRIGger:SLOPe NEGative", "TRIGger:LEVel 1E-01"]
+    assert float(level[2].split()[1]) == 0.1
+
+
+@pytest.mark.parametrize("operation, inputs, field", [
+    ("trigger", {"source": "external;*RST", "slope": "rising", "level_v": 0.5}, "source"),
+    ("channel", {"channel": "CH1;*RST", "range_v": 1.0, "offset_v": 0.0, "coupling": "dc"}, "channel"),
+    ("channel", {"channel": "CH1", "range_v": float("nan"), "offset_v": 0.0, "coupling": "dc"}, "range_v"),
+    ("channel", {"channel": "CH1", "range_v": "1\n*RST", "offset_v": 0.0, "coupling": "dc"}, "range_v"),
+])
+def test_values_cannot_carry_a_second_command(operation, inputs, field):
+    # IEEE 488.2 §7.5 / SCPI-1999 §6.2.4: NL ends a message, ';' and ':' start a new unit or header.
+    dig = load_driver(find_driver("scpi-digitizer"))
+    with pytest.raises(ConfigError) as info:
+        dig.commands(operation, **inputs)  # raises before any command text exists, so nothing can be sent
+    assert info.value.field == field
+    assert "allowed: " in one_line(info.value) or "must be a finite number" in str(info.value)
+
+
+# --- validation: each mistake is one line naming file and field ------------------------------------------
+
+def test_malformed_toml_names_the_file(tmp_path):
+    path = variant(tmp_path, "scpi-digitizer", 'role = "scope"', 'role = "scope')
+    with pytest.raises(tomllib.TOMLDecodeError):  # reference: tomllib refuses the same text
+        tomllib.loads(path.read_text())
+    with pytest.raises(ConfigError) as info:
+        load_driver(path)
+    assert one_line(info.value).startswith(str(path)) and "TOML" in str(info.value)
+
+
+@pytest.mark.parametrize("name, old, new, field, says", [
+    ("scpi-digitizer", "[operations.arm]", "[operations.shoot]", "operations.shoot",
+     "allowed: timebase, channel, trigger, arm, abort"),
+    ("scpi-digitizer", "{window_s:float}", "{window_s}", "operations.timebase.commands[0]",
+     "write {window_s:TYPE} with TYPE one of float, int, bool, enum, channel"),
+    ("scpi-digitizer", "{window_s:float}", "{window_ms:float}", "operations.timebase.commands[0]",
+     "not an input here"),
+    ("scpi-digitizer", '[operations.arm]\ncommands = ["INITiate"]', "", "operations.arm",
+     "required operation missing"),
+    ("scpi-digitizer", "{coupling:enum}", "{coupling:float}", "operations.channel.commands[2]",
+     "must have type enum"),
+    ("scpi-digitizer", 'rising = "POSitive"', 'rissing = "POSitive"', "enums.slope.rissing",
+     "allowed: rising, falling"),
+    ("scpi-digitizer", 'done = "1"', 'done = "1"\npoll_every_s = 0.1', "wait.poll_every_s",
+     "unknown key"),
+    ("scpi-digitizer", "'^acqd-sim,DIG,'", "'^acqd-sim,(DIG'", "driver.idn", "regular expression"),
+    ("scpi-digitizer", 'format = "REAL,32"', 'format = "REAL,64"', "fetch.format", "allowed"),
+    ("viewscope", '"window_s / 10"', '"__import__(\'os\').getcwd()"', "operations.timebase.computed",
+     "only calls like round(x)"),
+    ("viewscope", '"window_s / 10"', '"window.s / 10"', "operations.timebase.computed", "not allowed"),
+    ("viewscope", '"window_s / 10"', '"span_s / 10"', "operations.timebase.computed", "names allowed here"),
+    ("scpi-digitizer", "max_pretrigger_share = 1.0", "", "limits.max_pretrigger_share", "missing"),
+    ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float}\\n*RST"',
+     "operations.frequency.commands[0]", "one line"),
+])
+def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new, field, says):
+    # Each variant is still valid TOML (reference: tomllib parses it), so the loader's own checks are what
+    # refuse it; the message contract is DEVELOPERS.md's: one line naming file, field and what is allowed.
+    path = variant(tmp_path, name, old, new)
+    tomllib.loads(path.read_text())
+    with pytest.raises(ConfigError) as info:
+        load_driver(path)
+    text = one_line(info.value)
+    assert text.startswith(str(path)) and field in text and says in text, text
+
+
+# --- expressions --------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("text", ["window_s / 10", "-round(pretrigger_share * n_samples)",
+                                  "max(abs(a - 3), 2) * (a + 1)", "min(a, 2.5)"])
+def test_expression_values_equal_python_arithmetic(text):
+    values = {"window_s": 2e-4, "pretrigger_share": 0.2, "n_samples": 2000, "a": -1.5}
+    expression = Expression.parse(text, values)
+    # Reference: Python evaluating the same text (test-only, on constant inputs).
+    assert expression.evaluate(values) == eval(text, {"round": round, "abs": abs, "min": min, "max": max}, values)
+
+
+@pytest.mark.parametrize("text", ["__import__('os')", "a.real", "a[0]", "a ** 2", "(lambda: 1)()",
+                                  "a if a else 1", "'text'", "round(a, ndigits=1)", "open('x')", "a == 1"])
+def test_expression_whitelist_refuses_everything_else(text):
+    with pytest.raises(ExpressionError):
+        Expression.parse(text, ["a"])
+
+
+def test_expression_division_by_zero_is_an_expression_error():
+    with pytest.raises(ExpressionError):
+        Expression.parse("1 / a", ["a"]).evaluate({"a": 0})
+
+
+# --- search -------------------------------------------------------------------------------------------
+
+def test_find_driver_by_name_path_and_environment(tmp_path, monkeypatch):
+    assert find_driver("viewscope") == DRIVERS / "viewscope.toml"
+    assert find_driver(str(DRIVERS / "viewscope.toml")) == DRIVERS / "viewscope.toml"
+    own = tmp_path / "viewscope.toml"  # a bench's own copy hides the shipped one
+    shutil.copy(DRIVERS / "viewscope.toml", own)
+    monkeypatch.setenv("ACQD_DRIVERS", str(tmp_path))
+    assert find_driver("viewscope") == own
+    with pytest.raises(ConfigError) as info:
+        find_driver("no-such-driver")
+    assert all(name in one_line(info.value) for name in SHIPPED) and "ACQD_DRIVERS" in str(info.value)
+
+
+# --- command line -------------------------------------------------------------------------------------
+
+def test_cli_drivers_lists_the_shipped_files(capsys):
+    assert acqd_main(["drivers"]) == 0
+    out = capsys.readouterr().out
+    assert all(name in out for name in SHIPPED)
+
+
+def test_cli_probe_names_the_fitting_driver(sim_bench, capsys):
+    bench = sim_bench()
+    assert acqd_main(["probe", bench.resources["viewscope"]]) == 0
+    assert "driver: viewscope" in capsys.readouterr().out
+
+
+def test_cli_probe_unreachable_is_one_line_exit_2(capsys):
+    import socket
+    sock = socket.socket()
+    sock.bind(("127.0.0.1", 0))
+    resource = f"TCPIP0::127.0.0.1::{sock.getsockname()[1]}::SOCKET"
+    sock.close()
+    assert acqd_main(["probe", resource, "--timeout-s", "1"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and resource in err and "unreachable" in err

@@ -498,3 +498,10 @@ def test_acqd_sim_json_serves_until_sigterm(visa):
         if proc.poll() is None:
             proc.kill()
             proc.wait()
+
+
+def test_opc_query_answers_at_once_on_a_fresh_scope(sim_bench, visa) -> None:
+    """IEEE 488.2 §12.5.3 (from memory): *OPC? returns 1 when no operation is pending — at power-on too."""
+    bench = sim_bench()
+    scope = visa(bench.resources["scope"], timeout_ms=1000)
+    assert scope.query("*OPC?").strip() == "1"

@@ -1,8 +1,9 @@
 """``acqd sim``: serve the simulated bench (generator, SCPI-1999 scope, second-dialect scope) until stopped.
+``acqd replay FILE``: serve a record store's records through the simulated DIG scope (``acqd.sim.replay``).
 
-Runs in the foreground on its own event loop; SIGINT or SIGTERM stops the servers and exits 0. Only the
-loopback interface is served unless ``--allow-remote``: the simulated instruments take commands from
-anyone who can reach the port.
+Both run in the foreground on their own event loop; SIGINT or SIGTERM stops the servers and exits 0. Only
+the loopback interface is served unless ``--allow-remote``: the simulated instruments take commands from
+anyone who can reach the port. ``--json`` prints the resources as the first stdout line, one JSON object.
 """
 
 from __future__ import annotations
@@ -11,24 +12,52 @@ import argparse
 import asyncio
 import ipaddress
 import json
+import re
 import signal
 import sys
 
 from ..config import load_toml
 from ..errors import ConfigError
-from ..sim.bench import TABLE, SimBench, SimBenchConfig
+from ..sim.bench import TABLE, ServedBench, SimBench, SimBenchConfig
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser("sim", help="serve the simulated bench on TCP until interrupted")
     parser.add_argument("profile", nargs="?", metavar="PROFILE",
                         help=f"a profile whose [{TABLE}] table describes the bench (default: the demo bench)")
+    _serving_options(parser)
+    parser.set_defaults(func=run)
+
+    replay = subparsers.add_parser("replay", help="serve stored records as the simulated DIG scope until interrupted")
+    replay.add_argument("file", metavar="FILE", help="the record store to serve (the path given to the store)")
+    replay.add_argument("--records", metavar="LIST",
+                        help="store indices to serve, in this order: 0,2,5-9 (default: all, in store order)")
+    _serving_options(replay)
+    replay.set_defaults(func=run_replay)
+
+
+def _serving_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     parser.add_argument("--json", action="store_true",
                         help="print the resources as one JSON line first: {\"gen\": ..., \"scope\": ..., ...}")
     parser.add_argument("--allow-remote", action="store_true",
                         help="allow listening on an address other than loopback")
-    parser.set_defaults(func=run)
+
+
+_SELECTION_ITEM = re.compile(r"\s*([0-9]+)\s*(?:-\s*([0-9]+)\s*)?")
+
+
+def parse_selection(text: str) -> list[int]:
+    """``0,2,5-9`` → [0, 2, 5, 6, 7, 8, 9], in the order written (a ConfigError line otherwise)."""
+    indices: list[int] = []
+    for item in text.split(","):
+        match = _SELECTION_ITEM.fullmatch(item)
+        if not match or (match.group(2) is not None and int(match.group(2)) < int(match.group(1))):
+            raise ConfigError("command line", "--records", f"{item.strip()!r} in {text!r}: write record indices and "
+                                                           "rising ranges separated by commas, e.g. 0,2,5-9")
+        first = int(match.group(1))
+        indices.extend(range(first, int(match.group(2) or first) + 1))
+    return indices
 
 
 def is_loopback(host: str) -> bool:
@@ -52,17 +81,31 @@ def load_config(profile: str | None) -> SimBenchConfig:
     return SimBenchConfig.from_mapping(table, profile, text)
 
 
-def run(args: argparse.Namespace) -> int:
+def _check_host(args: argparse.Namespace) -> None:
     if not (is_loopback(args.host) or args.allow_remote):
         raise ConfigError("command line", "--host", f"{args.host} is not a loopback address; the simulated "
                                                     "instruments obey anyone who reaches them, so only 127.0.0.1, "
                                                     "::1 or localhost are served unless --allow-remote is given")
+
+
+def run(args: argparse.Namespace) -> int:
+    _check_host(args)
     bench = SimBench(load_config(args.profile), host=args.host)
-    asyncio.run(_serve(bench, args.json))
+    asyncio.run(_serve(bench, args.json, "acqd sim", "the simulated bench"))
     return 0
 
 
-async def _serve(bench: SimBench, as_json: bool) -> None:
+def run_replay(args: argparse.Namespace) -> int:
+    from ..sim.replay import ReplayBench  # imports the record store, which `acqd sim` does not need
+
+    _check_host(args)
+    records = parse_selection(args.records) if args.records is not None else None
+    bench = ReplayBench(args.file, records=records, host=args.host)
+    asyncio.run(_serve(bench, args.json, "acqd replay", f"the records of {args.file}"))
+    return 0
+
+
+async def _serve(bench: ServedBench, as_json: bool, command: str, what: str) -> None:
     loop = asyncio.get_running_loop()
     stop = asyncio.Event()
     for sig in (signal.SIGINT, signal.SIGTERM):
@@ -77,8 +120,8 @@ async def _serve(bench: SimBench, as_json: bool) -> None:
         else:
             for name, resource in bench.resources.items():
                 print(f"{name:<10} {resource}  ({bench.instruments[name].identity()})")
-            print("serving the simulated bench; Ctrl-C stops it", flush=True)
+            print(f"serving {what}; Ctrl-C stops it", flush=True)
         await stop.wait()
     finally:
         await bench.astop()
-        print("acqd sim: stopped", file=sys.stderr)
+        print(f"{command}: stopped", file=sys.stderr)

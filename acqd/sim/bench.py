@@ -20,10 +20,29 @@ command_log   path   append every program message the generator receives (monoto
 dut           table  the DUT model, as acqd.models.build_model reads it; its source resistance must be
                      the generator's 50 Ω for the physics to match the bench
 probes        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
+drift         table  a slow change of one DUT parameter (below); absent: the DUT never changes
+
+``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
+known drift in minutes:
+
+parameter     str    a scalar parameter of the DUT model (``c_f`` of ``series_rlc``: see acqd.models.PARAMETERS)
+per_hour      number relative change per simulated hour (0.02 = +2 %/h of the nominal value), linear in time
+time_scale    > 0    simulated seconds per real second (default 1; 3600 makes each real second an hour)
+
+The drifted value is nominal × (1 + per_hour × simulated hours since the bench started), where nominal
+is the ``dut`` table's value (or the model's default) and simulated hours are real elapsed time ×
+``time_scale`` / 3600. The plant is rebuilt from the ``dut`` table with that value at every capture.
+Records carry real UTC time stamps, so ``acqd drift`` reports the parameter's slope per hour of *record*
+time: per_hour × time_scale × nominal, in the parameter's own unit (c_f nominal 68 nF, per_hour 0.02,
+time_scale 3600: 4.9 µF/h — the run takes seconds, not a night). When a falling parameter would reach
+the end of its allowed range (after 1/|per_hour| simulated hours for a positive one), the scopes refuse
+to capture with error −300 naming it, rather than simulate a part that cannot exist.
 """
 
 from __future__ import annotations
 
+import inspect
+import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
@@ -33,20 +52,44 @@ import numpy as np
 
 from ..config import Table
 from ..errors import ConfigError
-from ..models import StateSpace, build_model
+from ..models import BUILDERS, PARAMETERS, StateSpace, build_model
 from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant, Probe
 from .scope import N_CHANNELS, DigitizerScope
-from .server import InstrumentServer, LoopThread, SCPIInstrument
+from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
 from .viewscope import ViewScope
 
 TABLE = "bench.simulated"
+DRIFT_TABLE = f"{TABLE}.drift"
+SECONDS_PER_HOUR = 3600.0
 # The demo DUT: a lightly damped series RLC (ζ ≈ 0.17 with the generator's 50 Ω, rings near 10.6 kHz).
 DEMO_DUT: Mapping[str, Any] = MappingProxyType({"model": "series_rlc", "r_ohm": 27.0, "l_h": 3.3e-3,
                                                 "c_f": 68e-9})
 # CH1 the generator terminal, CH2 the capacitor, CH3 across the series resistor (floating: a difference).
 DEMO_PROBES: Mapping[str, str] = MappingProxyType({"CH1": "v_src", "CH2": "v_c", "CH3": "v_src - v_rl"})
+
+
+@dataclass(frozen=True)
+class DriftConfig:
+    """A validated ``[bench.simulated.drift]`` table: one DUT parameter changing linearly with time."""
+
+    parameter: str
+    per_hour: float
+    time_scale: float = 1.0
+
+    @classmethod
+    def from_table(cls, table: Table) -> DriftConfig:
+        values = cls(parameter=table.string("parameter"),
+                     per_hour=table.number("per_hour", unit="relative change per simulated hour, 0.02 = +2 %/h"),
+                     time_scale=table.number("time_scale", 1.0, positive=True,
+                                             unit="simulated seconds per real second"))
+        table.done()
+        return values
+
+    def factor(self, elapsed_real_s: float) -> float:
+        """Drifted value / nominal value after ``elapsed_real_s`` real seconds."""
+        return 1.0 + self.per_hour * elapsed_real_s * self.time_scale / SECONDS_PER_HOUR
 
 
 @dataclass(frozen=True)
@@ -64,13 +107,21 @@ class SimBenchConfig:
     command_log: str | None = None
     dut: Mapping[str, Any] = field(default_factory=lambda: dict(DEMO_DUT))
     probes: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_PROBES))
+    drift: DriftConfig | None = None
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
+    drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
 
     def __post_init__(self) -> None:
-        """Build the DUT model now, so a bad ``dut`` or probe fails when the profile is read."""
-        object.__setattr__(self, "model", build_model(self.dut, f"{self.source} [{TABLE}.dut]"))
+        """Build the DUT model now, so a bad ``dut``, probe or drift fails when the profile is read."""
+        object.__setattr__(self, "model", build_model(self.dut, self.dut_source))
         _check_probes(self.probes, self.model, self.source)
+        if self.drift is not None:
+            object.__setattr__(self, "drift_nominal", _drift_nominal(self.drift, self.dut, self.source))
+
+    @property
+    def dut_source(self) -> str:
+        return f"{self.source} [{TABLE}.dut]"
 
     @classmethod
     def from_mapping(cls, mapping: Mapping[str, Any], source: str, text: str = "") -> SimBenchConfig:
@@ -89,6 +140,7 @@ class SimBenchConfig:
             command_log=table.string("command_log", None),
             dut=dict(table.table("dut", dict(DEMO_DUT)).data),
             probes=dict(table.table("probes", dict(DEMO_PROBES)).data),
+            drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
         )
         table.done()
         return cls(**values, source=source)
@@ -99,6 +151,21 @@ class SimBenchConfig:
 
     def parsed_probes(self) -> dict[int, Probe]:
         return {int(name[2:]): Probe.parse(text) for name, text in self.probes.items()}
+
+
+def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], source: str) -> float:
+    """The drifting parameter's value at t = 0: the ``dut`` table's, else the model's default."""
+    model = dut.get("model")
+    allowed = list(PARAMETERS.get(model, {}))
+    if not allowed:
+        raise ConfigError(source, f"{DRIFT_TABLE}.parameter", f"model {model} has no scalar parameter that can "
+                                                              "drift; use a circuit model such as series_rlc")
+    if drift.parameter not in allowed:
+        raise ConfigError(source, f"{DRIFT_TABLE}.parameter", f"{drift.parameter!r} is not a parameter of model "
+                                                              f"{model}; allowed: {', '.join(allowed)}")
+    if drift.parameter in dut:
+        return float(dut[drift.parameter])
+    return float(inspect.signature(BUILDERS[model]).parameters[drift.parameter].default)
 
 
 def _check_probes(probes: Mapping[str, Any], model: StateSpace, source: str) -> None:
@@ -117,34 +184,25 @@ def _check_probes(probes: Mapping[str, Any], model: StateSpace, source: str) -> 
                                                   f"'a - b' of outputs: {', '.join(model.outputs)}")
 
 
-class SimBench:
-    """Three SCPI servers (``gen``, ``scope`` = DIG, ``viewscope``) on one event loop.
+class ServedBench:
+    """SCPI servers on one event loop, one per instrument that ``create_instruments`` makes.
 
     Use ``start()``/``stop()`` (or ``with``) to run them in a background thread, or ``astart()``/
-    ``astop()`` from a running event loop (the ``acqd sim`` foreground).
+    ``astop()`` from a running event loop (the ``acqd sim`` and ``acqd replay`` foregrounds).
     """
 
-    def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
-        self.config = config or SimBenchConfig()
+    def __init__(self, host: str = "127.0.0.1") -> None:
         self.host = host
-        self.realtime = self.config.realtime
-        self.front_end = self.config.front_end()
-        self.probes = self.config.parsed_probes()
-        self._plant = Plant(self.config.model)
-        self.plant_source: Callable[[], Plant] = lambda: self._plant
-        self.generator: Generator | None = None
-        self.scope: DigitizerScope | None = None
-        self.viewscope: ViewScope | None = None
         self._servers: dict[str, InstrumentServer] = {}
         self._thread: LoopThread | None = None
 
-    def plant_now(self) -> Plant:
-        """The plant as it is at this moment (replace ``plant_source`` to make it drift)."""
-        return self.plant_source()
+    def create_instruments(self) -> dict[str, SCPIInstrument]:
+        """The instruments by resource name; called in the loop that serves them (their asyncio state)."""
+        raise NotImplementedError
 
     @property
     def resources(self) -> dict[str, str]:
-        """VISA resource strings: ``{"gen": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ..., "viewscope": ...}``."""
+        """VISA resource strings by name, e.g. ``{"gen": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ...}``."""
         return {name: server.resource for name, server in self._servers.items()}
 
     @property
@@ -152,13 +210,9 @@ class SimBench:
         return {name: server.instrument for name, server in self._servers.items()}
 
     async def astart(self) -> None:
-        """Create the instruments (their asyncio state belongs to this loop) and start listening."""
-        scope_seed, view_seed = np.random.SeedSequence(self.config.seed).spawn(2)
-        self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
-        self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
-        self.viewscope = ViewScope(self, np.random.default_rng(view_seed))
+        """Create the instruments and start listening (ports chosen by the OS)."""
         try:
-            for name, instrument in (("gen", self.generator), ("scope", self.scope), ("viewscope", self.viewscope)):
+            for name, instrument in self.create_instruments().items():
                 server = InstrumentServer(instrument, self.host)
                 self._servers[name] = server
                 await server.start()
@@ -170,7 +224,7 @@ class SimBench:
         for server in self._servers.values():
             await server.stop()
 
-    def start(self) -> SimBench:
+    def start(self) -> ServedBench:
         self._thread = LoopThread()
         self._thread.start()
         try:
@@ -191,8 +245,64 @@ class SimBench:
         """Run ``func(*args)`` in the bench's loop thread (to touch instrument state from a test)."""
         return self._thread.call(func, *args)
 
-    def __enter__(self) -> SimBench:
+    def __enter__(self) -> ServedBench:
         return self.start()
 
     def __exit__(self, *exc: object) -> None:
         self.stop()
+
+
+class SimBench(ServedBench):
+    """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``viewscope``, around one DUT plant."""
+
+    def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
+        super().__init__(host)
+        self.config = config or SimBenchConfig()
+        self.realtime = self.config.realtime
+        self.front_end = self.config.front_end()
+        self.probes = self.config.parsed_probes()
+        self._plant = Plant(self.config.model)
+        self.plant_source: Callable[[], Plant] = self._drifted_plant if self.config.drift else lambda: self._plant
+        self.generator: Generator | None = None
+        self.scope: DigitizerScope | None = None
+        self.viewscope: ViewScope | None = None
+        self._started_s: float | None = None
+
+    def plant_now(self) -> Plant:
+        """The plant as it is at this moment (``plant_source``; a drifting bench rebuilds it each time)."""
+        return self.plant_source()
+
+    def simulated_elapsed_s(self) -> float:
+        """Simulated seconds since the bench started: real seconds × the drift's ``time_scale`` (1 without)."""
+        if self._started_s is None:
+            return 0.0
+        scale = self.config.drift.time_scale if self.config.drift else 1.0
+        return (time.monotonic() - self._started_s) * scale
+
+    def dut_now(self) -> dict[str, Any]:
+        """The DUT table as the plant is built from it now: the drifting parameter at its present value."""
+        dut = dict(self.config.dut)
+        drift = self.config.drift
+        if drift is not None and self._started_s is not None:
+            elapsed_real_s = time.monotonic() - self._started_s
+            dut[drift.parameter] = self.config.drift_nominal * drift.factor(elapsed_real_s)
+        return dut
+
+    def _drifted_plant(self) -> Plant:
+        """The plant rebuilt with the drifted value; -300 once the value is one the model refuses."""
+        dut = self.dut_now()
+        try:
+            return Plant(build_model(dut, self.config.dut_source))
+        except ConfigError as exc:
+            name = self.config.drift.parameter
+            hours = self.simulated_elapsed_s() / SECONDS_PER_HOUR
+            raise SCPIError(-300, f"simulated drift took {name} to {dut[name]:.6g} after {hours:.4g} h; "
+                                  f"{exc.field} {exc.problem}") from None
+
+    def create_instruments(self) -> dict[str, SCPIInstrument]:
+        scope_seed, view_seed = np.random.SeedSequence(self.config.seed).spawn(2)
+        self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
+        self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
+        self.viewscope = ViewScope(self, np.random.default_rng(view_seed))
+        self._started_s = time.monotonic()
+        return {"gen": self.generator, "scope": self.scope, "viewscope": self.viewscope}

@@ -133,6 +133,7 @@ class Acquisition:
         self.state = "IDLE"
         self.record: Captured | None = None
         self.done = asyncio.Event()
+        self.done.set()  # nothing pending at power-on: *OPC? answers at once (IEEE 488.2 §12.5.3)
         self._request: CaptureRequest | None = None
         self._armed_at_s = 0.0
         self._timer: asyncio.TimerHandle | None = None
@@ -265,9 +266,13 @@ def channel_data(record: Captured | None, channel: int, fe: FrontEndSettings, fm
     record = completed(record)
     analog, setup = record.analog[channel - 1], record.setup(channel)
     bits = word_bits(fmt)
-    if bits is not None:
-        return scpi.encode_block(scpi.encode_samples(frontend.digitise(analog, setup, fe, bits), fmt, byteorder))
-    payload = scpi.encode_samples(frontend.volts(analog, setup, fe), fmt, byteorder)
+    values = frontend.digitise(analog, setup, fe, bits) if bits is not None else frontend.volts(analog, setup, fe)
+    return trace_reply(values, fmt, byteorder)
+
+
+def trace_reply(values: np.ndarray, fmt: str, byteorder: str) -> bytes | str:
+    """``TRACe?``'s reply from codes (integer formats) or volts: a definite-length block, or NR3 text for ASCii."""
+    payload = scpi.encode_samples(values, fmt, byteorder)
     return payload.decode("ascii") if fmt == "ASC" else scpi.encode_block(payload)
 
 
@@ -333,10 +338,15 @@ class DigitizerScope(SCPIInstrument):
         Cmd("TRACe:POINts", query=lambda inst: str(inst._request().n_samples)),
     )
 
-    def __init__(self, bench: Bench, rng: np.random.Generator) -> None:
+    def __init__(self, bench: Bench, rng: np.random.Generator | None) -> None:
         super().__init__()
         self.bench = bench
-        self.acquisition = Acquisition(bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
+        self.acquisition = self.make_acquisition(rng)
+
+    def make_acquisition(self, rng: np.random.Generator | None) -> Acquisition:
+        """The engine that fills a record when armed: here the plant behind the bench's generator. Replay
+        substitutes one that serves stored records, keeping this command set (``acqd.sim.replay``)."""
+        return Acquisition(self.bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
 
     def make_settings(self) -> DigitizerSettings:
         return DigitizerSettings()
@@ -358,14 +368,18 @@ class DigitizerScope(SCPIInstrument):
         return self.settings.sweep_time_s / self.settings.points
 
     def _initiate(self) -> None:
+        self.acquisition.arm(self.capture_request())
+
+    def capture_request(self) -> CaptureRequest:
+        """What the present settings ask an acquisition for; -221 when they contradict each other."""
         s = self.settings
         if s.offset_points < -s.points:
             raise SCPIError(-221, f"SWEep:OFFSet:POINts {s.offset_points} puts the trigger after the window "
                                   f"of {s.points} points")
-        self.acquisition.arm(CaptureRequest(
+        return CaptureRequest(
             sample_interval_s=self.sample_interval_s, n_samples=s.points, first_index=s.offset_points,
             external=s.trigger_source == "EXTernal", rising=s.slope == "POSitive", level_v=s.level_v,
-            channels=tuple(ChannelSetup(c.offset_v, c.range_v, c.coupling) for c in s.channels)))
+            channels=tuple(ChannelSetup(c.offset_v, c.range_v, c.coupling) for c in s.channels))
 
     def _set_format(self, kind: str, bits: int | None = None) -> None:
         combos = {("REAL", None): "REAL,32", ("REAL", 32): "REAL,32", ("INTeger", None): "INT,8",

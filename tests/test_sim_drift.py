@@ -1,0 +1,149 @@
+"""The simulated bench's slow parameter drift (``[bench.simulated.drift]``), over real TCP through pyvisa-py.
+
+With noise, jitter, bandwidth, edge time, clipping and quantisation off, the scope shows the plant's exact
+capacitor voltage, so the capacitance the plant had at each capture can be read back by fitting the
+textbook series-RLC step response (DESIGN.md §4 / STANDARDS.md §5) with C free. It must follow the
+stated linear drift at the times the captures were taken.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numpy as np
+import pytest
+from scipy.optimize import least_squares
+
+from acqd.errors import ConfigError, InstrumentError
+from acqd.instruments import open_instrument
+from acqd.record import Stimulus
+from acqd.sim.bench import DEMO_DUT, SimBenchConfig
+
+# The demo DUT behind the generator's 50 ohm: R, L fixed; C drifts.
+R_OHM, L_H, C0_F = DEMO_DUT["r_ohm"] + 50.0, DEMO_DUT["l_h"], DEMO_DUT["c_f"]
+PER_HOUR, TIME_SCALE = 0.02, 3600.0  # +2 %/h, one simulated hour per real second: +2 % per real second
+WINDOW_S, N, SHARE = 400e-6, 4000, 0.1
+# The fit recovers C to about 1e-10 of itself here (measured); drift between captures is ~1e-2.
+FIT_TOL = 1e-8
+EXACT = {"noise_v_rms": 0.0, "jitter_s": 0.0, "bandwidth_hz": 0.0, "edge_time_s": 0.0, "quantise": False,
+         "clip": False}
+
+
+def v_c_step(t: np.ndarray, c_f: float, volts: float = 1.0) -> np.ndarray:
+    """Textbook underdamped series RLC from rest, step of ``volts`` at t = 0 (DESIGN.md §4):
+    v_C = V[1 − e^{−σt}(cos ω_d t + σ/ω_d sin ω_d t)], σ = R/2L, ω_d = √(1/LC − σ²)."""
+    sigma = R_OHM / (2 * L_H)
+    omega_d = math.sqrt(1 / (L_H * c_f) - sigma ** 2)
+    tt = np.clip(t, 0, None)
+    v = volts * (1 - np.exp(-sigma * tt) * (np.cos(omega_d * tt) + sigma / omega_d * np.sin(omega_d * tt)))
+    return np.where(t >= 0, v, 0.0)
+
+
+def fitted_c_ratio(t: np.ndarray, v: np.ndarray) -> float:
+    """C / nominal C that makes the closed form match the capture (scipy least squares, one free value)."""
+    fit = least_squares(lambda k: v - v_c_step(t, C0_F * k[0]), x0=[1.0], bounds=([0.5], [2.0]),
+                        xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    # the closed form fits the exact plant to the REAL,32 transfer's rounding: half a float32 step (IEEE 754
+    # single precision, 24-bit significand) at the largest value
+    assert fit.success and np.max(np.abs(fit.fun)) <= 2.0 ** -24 * np.max(np.abs(v)) * (1 + 1e-6)
+    return float(fit.x[0])
+
+
+@pytest.fixture
+def drifting(sim_bench):
+    """The demo bench with C drifting, a 0 → 1 V, 100 Hz square wave on (half period 5 ms ≫ 8L/R = 0.34 ms)."""
+    bench = sim_bench({**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE}})
+    gen = open_instrument(bench.resources["gen"], "scpi-generator")
+    scope = open_instrument(bench.resources["scope"], "scpi-digitizer")
+    gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
+    gen.output(True)
+    scope.configure_timebase(WINDOW_S, N, SHARE)
+    scope.configure_channel("CH2", 1.0, 0.5, "dc")  # CH2 probes v_c on the demo bench
+    scope.configure_trigger("external", "rising", 0.5)
+    yield bench, scope
+    scope.close()
+    gen.close()
+
+
+def capture(bench, scope) -> tuple[float, float, float]:
+    """One capture: (fitted C ratio, simulated seconds since start just before arming, just after it completed)."""
+    before = bench.simulated_elapsed_s()
+    scope.arm()
+    scope.wait(5.0)
+    after = bench.simulated_elapsed_s()
+    volts, timebase = scope.fetch("CH2")
+    return fitted_c_ratio(timebase.times(), volts), before, after
+
+
+def test_capacitance_follows_the_stated_drift_at_the_capture_times(drifting):
+    bench, scope = drifting
+    ratios = []
+    for pause_s in (0.0, 0.25, 0.25):
+        time.sleep(pause_s)
+        ratio, before, after = capture(bench, scope)
+        # the plant was built between the two instants: C = C0·(1 + per_hour·hours), hours = simulated s / 3600
+        low, high = (1 + PER_HOUR * s / 3600.0 for s in (before, after))
+        assert low - FIT_TOL <= ratio <= high + FIT_TOL, (ratio, low, high)
+        ratios.append(ratio)
+    # half a real second is half a simulated hour: C grew by about 1 %, far beyond the fit's resolution
+    assert ratios[0] < ratios[1] < ratios[2]
+    assert ratios[2] - ratios[0] > 0.5 * PER_HOUR * 0.5
+
+
+def test_without_drift_the_plant_keeps_its_nominal_capacitance(sim_bench):
+    bench = sim_bench(EXACT)
+    with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
+            open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
+        gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
+        gen.output(True)
+        scope.configure_timebase(WINDOW_S, N, SHARE)
+        scope.configure_channel("CH2", 1.0, 0.5, "dc")
+        scope.configure_trigger("external", "rising", 0.5)
+        time.sleep(0.1)
+        ratio, _, _ = capture(bench, scope)
+    assert ratio == pytest.approx(1.0, abs=FIT_TOL)
+
+
+def test_a_parameter_drifted_out_of_its_range_stops_the_captures_with_300(sim_bench):
+    # −100 %/h at 36000 simulated s per real s: C reaches zero after 0.1 real seconds
+    bench = sim_bench({**EXACT, "drift": {"parameter": "c_f", "per_hour": -1.0, "time_scale": 36000.0}})
+    with open_instrument(bench.resources["scope"], "scpi-digitizer") as scope, \
+            open_instrument(bench.resources["gen"], "scpi-generator") as gen:
+        gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
+        gen.output(True)
+        scope.configure_timebase(WINDOW_S, N, SHARE)
+        scope.configure_trigger("external", "rising", 0.5)
+        time.sleep(0.2)
+        with pytest.raises(InstrumentError) as caught:
+            scope.arm()
+    text = str(caught.value)
+    assert "\n" not in text and "-300" in text and "c_f" in text
+
+
+@pytest.mark.parametrize("drift, field, words", [
+    ({"parameter": "q_f", "per_hour": 0.02}, "bench.simulated.drift.parameter",
+     "allowed: r_ohm, l_h, c_f, source_resistance_ohm"),
+    ({"per_hour": 0.02}, "bench.simulated.drift.parameter", "missing"),
+    ({"parameter": "c_f"}, "bench.simulated.drift.per_hour", "missing"),
+    ({"parameter": "c_f", "per_hour": "2 %"}, "bench.simulated.drift.per_hour", "finite number"),
+    ({"parameter": "c_f", "per_hour": 0.02, "time_scale": 0}, "bench.simulated.drift.time_scale", "greater than 0"),
+    ({"parameter": "c_f", "per_hour": 0.02, "rate": 1}, "bench.simulated.drift.rate", "allowed here"),
+    (3, "bench.simulated.drift", "must be a table"),
+])
+def test_bad_drift_tables_are_one_line_naming_the_key(drift, field, words):
+    with pytest.raises(ConfigError) as caught:
+        SimBenchConfig.from_mapping({"drift": drift}, "bench.toml")
+    assert "\n" not in str(caught.value)
+    assert caught.value.source.startswith("bench.toml") and caught.value.field == field
+    assert words in caught.value.problem
+
+
+def test_the_allowed_parameters_are_those_of_the_dut_model():
+    table = {"dut": {"model": "rc_lowpass", "r_ohm": 1e3, "c_f": 1e-9}, "probes": {"CH1": "v_c"},
+             "drift": {"parameter": "l_h", "per_hour": 0.01}}
+    with pytest.raises(ConfigError) as caught:
+        SimBenchConfig.from_mapping(table, "bench.toml")
+    assert caught.value.problem.endswith("allowed: r_ohm, c_f, source_resistance_ohm")
+    table["drift"]["parameter"] = "source_resistance_ohm"  # not in the table: the model's default is nominal
+    assert SimBenchConfig.from_mapping(table, "bench.toml").drift_nominal == 50.0

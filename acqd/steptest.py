@@ -10,6 +10,7 @@ from __future__ import annotations
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import replace
 from datetime import UTC, datetime
 from typing import Any, Protocol
 
@@ -101,6 +102,12 @@ def capture(profile: Profile, scope: ScopeRole, edge: str) -> tuple[dict[str, np
     return {name: total / acq.averages for name, total in sums.items()}, timebase
 
 
+def as_applied(stimulus: Stimulus, settings: dict[str, Any]) -> Stimulus:
+    """The stimulus with what only the instrument knows: its edge time and source resistance, read back."""
+    known = {k: float(settings[k]) for k in ("edge_time_s", "source_resistance_ohm") if k in settings}
+    return replace(stimulus, **known)
+
+
 def run_step_test(profile: Profile, generator: GeneratorRole, scope: ScopeRole) -> list[Record]:
     """Every edge the profile asks for, as one record each (rising before falling)."""
     check_limits(profile, generator)
@@ -114,10 +121,11 @@ def run_step_test(profile: Profile, generator: GeneratorRole, scope: ScopeRole) 
 
 def _one_edge(profile: Profile, plan: StimulusPlan, edge: str, generator: GeneratorRole,
               scope: ScopeRole) -> Record:
-    stimulus = plan.stimulus(edge)
     generator.output(False)
-    generator.apply_stimulus(stimulus)
+    generator.apply_stimulus(plan.stimulus(edge))
     generator.output(True)
+    generator_settings = generator.read_settings()
+    stimulus = as_applied(plan.stimulus(edge), generator_settings)
     utc = datetime.now(UTC).isoformat(timespec="microseconds")
     started = time.monotonic()
     values, timebase = capture(profile, scope, edge)
@@ -127,7 +135,7 @@ def _one_edge(profile: Profile, plan: StimulusPlan, edge: str, generator: Genera
     return Record(
         channels=channels, timebase=timebase, stimulus=stimulus,
         identities={"generator": generator.identity, "scope": scope.identity},
-        settings={"generator": generator.read_settings(), "scope": scope.read_settings(),
+        settings={"generator": generator_settings, "scope": scope.read_settings(),
                   "trigger_level_v": trigger_level(profile)},
         dut=profile.dut, utc=utc, monotonic_s=started, profile_text=profile.text,
         profile_sha256=profile.sha256, averages=profile.acquisition.averages)

@@ -173,8 +173,10 @@ def test_profile_dut_table_and_option_override(capsys, tmp_path, csv_file):
     # The demo profile with a comparator [dut] table; options override it, and a bad value in the file is
     # reported with the profile's file, line and key (house rule).
     demo = Path(__file__).resolve().parents[1] / "profiles" / "demo-bridge-filter.toml"
-    text = demo.read_text().replace('serial = "KT9-0417"', 'serial = "KT9-0417"\nmodel = "series_rlc"\n'
-                                    'r_ohm = 22.0\nl_h = 3.3e-3\nc_f = 100e-9\n[dut.tolerances]\nnrmse_max = 0.001')
+    bench_part = demo.read_text().split("\n[dut]")[0]  # the demo's bench, with a [dut] table of this test's own
+    text = bench_part + ('\n[dut]\nname = "KT-9 input filter"\nserial = "KT9-0417"\nmodel = "series_rlc"\n'
+                         'r_ohm = 22.0\nl_h = 3.3e-3\nc_f = 100e-9\n[dut.tolerances]\nnrmse_max = 0.001\n'
+                         '\n[output]\nfile = "data/kt9-demo.h5"\n')
     profile = tmp_path / "kt9.toml"
     profile.write_text(text)
     code, out, _ = run(capsys, str(csv_file), "--high", "1", "--profile", str(profile), "--map", "v_c=v_c")

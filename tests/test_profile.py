@@ -44,7 +44,7 @@ CASES = [
     ('kind = "simulated"', 'kind = "virtual"', ["bench.kind", "simulated, visa"]),
     ('driver = "scpi-generator"\n', "", ["bench.generator.driver", "missing"]),
     ("frequency_hz = 200.0", "frequency_hz = 50e3", ["stimulus.frequency_hz", "at most 10000"]),
-    ("range_v = 1.0", "range_v = 0", ["acquisition.channels.CH3.range_v", "greater than 0"]),
+    ("range_v = 1.2", "range_v = 0", ["acquisition.channels.CH3.range_v", "greater than 0"]),
     ('name = "v_c"', 'name = "v_rl"', ["acquisition.channels", "unique"]),
     ("terms = { v_src = 1.0, v_rl = -1.0 }", "terms = { v_src = 1.0, v_x = -1.0 }",
      ["math.i_l.terms.v_x", "not a captured channel"]),

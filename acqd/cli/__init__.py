@@ -31,8 +31,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
     try:
+        args = build_parser().parse_args(argv)  # option types may raise AcqdError too
         return int(args.func(args) or 0)
     except AcqdError as exc:
         print(f"acqd: error: {exc}", file=sys.stderr)

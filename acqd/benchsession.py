@@ -1,0 +1,80 @@
+"""Open the bench a profile describes: both instrument roles, starting the embedded simulated bench first
+when the profile asks for it, or a replay bench serving stored records in place of the profile's bench.
+
+On the simulated bench the scope's resource is found by asking each simulated scope for its ``*IDN?``
+and keeping the one the profile's driver file matches, so that switching dialects is a one-line change of
+driver in the profile, exactly as on a real bench.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator, Sequence
+from contextlib import ExitStack, contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from .errors import ConfigError
+from .instruments import Generator, Scope, find_driver, load_driver, open_instrument
+from .profile import InstrumentPlan, Profile
+from .visa import identify
+
+
+@dataclass
+class Bench:
+    generator: Generator
+    scope: Scope
+    simulated: Any | None  # the running SimBench or ReplayBench, for its command log and drift clock
+
+
+@dataclass(frozen=True)
+class Replay:
+    """Serve these stored records as the scope instead of the profile's bench (regression runs)."""
+
+    path: Path
+    records: Sequence[int] | None = None
+
+
+def simulated_bench(profile: Profile) -> Any:
+    """A not-yet-started simulated bench built from the profile's [bench.simulated] table."""
+    from .sim.bench import SimBench, SimBenchConfig  # the simulated bench is only imported when asked for
+
+    config = SimBenchConfig.from_mapping(profile.bench.simulated or {}, profile.source, profile.text)
+    return SimBench(config)
+
+
+def replay_bench(replay: Replay) -> Any:
+    from .sim.replay import ReplayBench
+
+    return ReplayBench(replay.path, replay.records)
+
+
+def _simulated_resource(plan: InstrumentPlan, resources: dict[str, str], profile: Profile) -> str:
+    driver = load_driver(find_driver(plan.driver))
+    for resource in resources.values():
+        if driver.matches(identify(resource, backend=plan.backend, timeout_s=plan.timeout_s)):
+            return resource
+    raise ConfigError(profile.source, f"bench.{plan.role}.driver",
+                      f"driver {plan.driver!r} matches no instrument of the simulated bench")
+
+
+@contextmanager
+def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench]:
+    """Both roles, opened and identified; everything is closed (and the simulated bench stopped) on exit."""
+    plans = (profile.bench.generator, profile.bench.scope)
+    for plan in plans:  # a bad driver name is a profile error, found before anything is started
+        load_driver(find_driver(plan.driver, source=f"{profile.source}: bench.{plan.role}.driver"))
+    with ExitStack() as stack:
+        sim = None
+        if replay is not None or profile.bench.kind == "simulated":
+            sim = replay_bench(replay) if replay is not None else simulated_bench(profile)
+            stack.enter_context(sim)
+            resources = [_simulated_resource(p, sim.resources, profile) for p in plans]
+        else:
+            resources = [p.resource for p in plans]
+        roles = []
+        for plan, resource in zip(plans, resources):
+            role = open_instrument(resource, plan.driver, backend=plan.backend, timeout_s=plan.timeout_s)
+            stack.callback(role.close)
+            roles.append(role)
+        yield Bench(roles[0], roles[1], sim)

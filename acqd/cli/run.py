@@ -1,0 +1,107 @@
+"""``acqd run PROFILE``: N step tests back to back, each stored durably before its line is printed."""
+
+from __future__ import annotations
+
+import argparse
+import signal
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from types import FrameType
+from typing import Any
+
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+from ..benchsession import Replay, open_bench
+from ..errors import AcqdError, InstrumentError
+from ..judge import make_judge
+from ..profile import load_profile
+from ..record import Record
+from ..steptest import check_limits, run_step_test
+from ..store import RecordStore
+from .common import SAFETY_NOTE, record_line
+from .sim import parse_selection
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where the program is so the output guard switches the generator off on the way out."""
+
+
+@contextmanager
+def sigterm_raises() -> Iterator[None]:
+    def handler(signum: int, frame: FrameType | None) -> None:
+        raise Terminated()
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("run", help="run step tests from a profile and store every record",
+                       description="Run N step tests from PROFILE on its bench and store each record in HDF5. "
+                                   + SAFETY_NOTE)
+    p.add_argument("profile", type=Path, help="bench profile (TOML)")
+    p.add_argument("--count", type=int, default=1, help="number of step tests (default 1)")
+    p.add_argument("--out", type=Path, default=None, help="record file (default: the profile's output.file)")
+    p.add_argument("--replay", type=Path, default=None, metavar="FILE",
+                   help="serve the records stored in FILE as the scope instead of the profile's bench")
+    p.add_argument("--records", type=parse_selection, default=None, metavar="LIST",
+                   help="with --replay: which stored records, in order (e.g. 0,2,5-9)")
+    p.set_defaults(func=run_command)
+
+
+def run_command(args: argparse.Namespace) -> int:
+    if args.count < 1:
+        raise AcqdError(f"--count: must be at least 1, not {args.count}")
+    profile = load_profile(args.profile)
+    judge = make_judge(profile)  # validates [dut] before anything is started
+    out = args.out or profile.output.file
+    console = Console(soft_wrap=True)
+    console.print(f"[dim]{SAFETY_NOTE}[/dim]")
+    stored, failed = 0, 0
+    replay = Replay(args.replay, args.records) if args.replay is not None else None
+    with sigterm_raises(), open_bench(profile, replay) as bench:
+        check_limits(profile, bench.generator)
+        out.parent.mkdir(parents=True, exist_ok=True)
+        with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
+                _progress(console) as progress:
+            task = progress.add_task(profile.name, total=args.count)
+            for _ in range(args.count):
+                try:
+                    records = run_step_test(profile, bench.generator, bench.scope)
+                except InstrumentError as exc:
+                    failed += 1
+                    progress.console.print(f"[red]not acquired[/red]: {exc}")
+                    progress.advance(task)
+                    continue
+                for record in records:
+                    record.analysis = _judged(judge, record, progress.console)
+                    index = store.append(record)
+                    stored += 1
+                    progress.console.print(record_line(index, record))
+                progress.advance(task)
+    console.print(f"{stored} record(s) stored in {out}; {failed} step test(s) not acquired")
+    return 1 if failed else 0
+
+
+def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,
+            console: Console) -> dict[str, Any] | None:
+    """The comparator's result; a comparator failure is reported but never costs the record itself."""
+    if judge is None:
+        return None
+    try:
+        return judge(record)
+    except AcqdError as exc:
+        console.print(f"[yellow]not compared[/yellow]: {exc}")
+        return None
+
+
+@contextmanager
+def _progress(console: Console) -> Iterator[Progress]:
+    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                  console=console, transient=True) as progress:
+        yield progress

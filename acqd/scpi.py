@@ -386,7 +386,8 @@ def decode_samples(data: bytes, fmt: str, byteorder: str = "NORM") -> np.ndarray
     dtype = _dtype(fmt, byteorder)
     if len(data) % dtype.itemsize:
         raise BlockError(f"{len(data)} bytes is not a whole number of {fmt} samples ({dtype.itemsize} bytes each)")
-    return np.frombuffer(bytes(data), dtype=dtype).astype(dtype.newbyteorder("="))
+    # frombuffer takes bytes, bytearray or memoryview as they are: one copy (the byte-order conversion) in all.
+    return np.frombuffer(data, dtype=dtype).astype(dtype.newbyteorder("="))
 
 
 # ---------------------------------------------------------------------------------------------------

@@ -23,6 +23,7 @@ from __future__ import annotations
 import os
 import time
 
+import acqd  # first: it sets the single-threaded BLAS that acqd runs with, before numpy loads  # noqa: F401
 import numpy as np
 from scipy.integrate import solve_ivp
 

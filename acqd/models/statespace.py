@@ -98,33 +98,87 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     ``u_left`` gives the input's left limits at the samples where it jumps (a zero-time edge on a sample
     instant): interval k is then driven from ``u[k]`` to ``u_left[k+1]``. Without it the input is continuous.
 
-    The recursion runs in modal coordinates, one first-order IIR filter per eigenvalue through
-    ``scipy.signal.lfilter`` (a C loop), so a million samples take milliseconds. When Ad is defective or its
-    eigenvectors are ill-conditioned (a critically damped circuit), it falls back to the plain recursion.
+    A step test's input is constant for long runs (before the edge, after it), and there the state has a
+    closed form, x[k] = x_ss + Ad^k (x[0] − x_ss), evaluated for a whole run as one matrix product
+    (``_constant_run``). Any other input goes through the general recursion (``_recursion``).
     """
     u = _as_columns(u)
     ends = u if u_left is None else _as_columns(u_left)
-    n_samples = u.shape[0]
-    drive = u[:-1] @ disc.B0.T + ends[1:] @ disc.B1.T  # (N-1, n): what enters between k and k+1
-    x0 = np.asarray(x0, dtype=float)
-    eigvals, vecs = np.linalg.eig(disc.Ad)
+    x = np.empty((u.shape[0], len(x0)))
+    x[0] = np.asarray(x0, dtype=float)
+    starts_, ends_ = u[:-1], ends[1:]  # interval k is driven from starts_[k] to ends_[k]
+    changes = _changes(starts_) if ends is u else np.union1d(_changes(starts_), _changes(ends_))
+    if len(changes) > MAX_CONSTANT_RUNS:
+        return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
+    for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1
+        d = disc.B0 @ starts_[a] + disc.B1 @ ends_[a]
+        if b - a < MIN_CONSTANT_RUN or not _constant_run(disc.Ad, d, x[a:b + 1]):
+            _recursion(disc.Ad, np.broadcast_to(d, (b - a, len(d))), x[a], x[a:b + 1])
+    return x
+
+
+def _changes(v: np.ndarray) -> np.ndarray:
+    """Indices k where row k differs from row k−1 (one pass per input column)."""
+    flags = np.zeros(len(v) - 1 if len(v) else 0, dtype=bool)
+    for column in v.T:
+        flags |= column[1:] != column[:-1]
+    return np.flatnonzero(flags) + 1
+
+
+MAX_CONSTANT_RUNS = 16  # more runs than this: a sampled input, for the general recursion
+MIN_CONSTANT_RUN = 64  # shorter runs are cheaper stepped than set up
+
+
+def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
+    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d``; False if Ad has an eigenvalue of 1.
+
+    With B = ⌈√N⌉, x[jB + k] − x_ss = Ad^k · s_j where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
+    N/B block starts, then one (N/B × n)·(n × B·n) product writes every state in sample order.
+    """
+    n_samples, n = out.shape
+    eye = np.eye(n)
+    if np.linalg.cond(eye - ad) > 1e12:
+        return False
+    x_ss = np.linalg.solve(eye - ad, d)
+    block = int(np.ceil(np.sqrt(n_samples)))
+    powers = np.empty((block, n, n))
+    powers[0] = eye
+    for k in range(1, block):
+        powers[k] = powers[k - 1] @ ad
+    jump = powers[-1] @ ad
+    starts = np.empty((-(-n_samples // block), n))
+    starts[0] = out[0] - x_ss
+    for j in range(1, len(starts)):
+        starts[j] = jump @ starts[j - 1]
+    # weights[b, k·n + a] = (Ad^k)[a, b], so (starts @ weights)[j, k·n + a] = (Ad^k s_j)[a]
+    states = (starts @ powers.transpose(2, 0, 1).reshape(n, block * n)).reshape(-1, n)[:n_samples]
+    out[1:] = states[1:] + x_ss
+    return True
+
+
+def _recursion(ad: np.ndarray, drive: np.ndarray, x0: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """x[k+1] = Ad x[k] + drive[k] into ``out`` (out[0] = x0), for any input.
+
+    It runs in modal coordinates, one first-order IIR filter per eigenvalue through ``scipy.signal.lfilter``
+    (a C loop). When Ad is defective or its eigenvectors are ill-conditioned (a critically damped circuit),
+    it falls back to the plain loop.
+    """
+    eigvals, vecs = np.linalg.eig(ad)
+    out[0] = x0
     if np.linalg.cond(vecs) < 1e8:
         inv = np.linalg.inv(vecs)
         z_drive = drive @ inv.T
         z0 = inv @ x0
-        z = np.empty((n_samples, len(eigvals)), dtype=complex)
+        z = np.empty((len(drive) + 1, len(eigvals)), dtype=complex)
         z[0] = z0
         for i, lam in enumerate(eigvals):
             # z[k+1] = lam z[k] + d[k]: the filter b=[1, 0], a=[1, -lam] whose state starts at lam·z0
-            out, _ = lfilter([1.0, 0.0], [1.0, -lam], z_drive[:, i], zi=[lam * z0[i]])
-            z[1:, i] = out
-        x = (z @ vecs.T).real
+            z[1:, i], _ = lfilter([1.0, 0.0], [1.0, -lam], z_drive[:, i], zi=[lam * z0[i]])
+        out[:] = (z @ vecs.T).real
     else:
-        x = np.empty((n_samples, len(x0)))
-        x[0] = x0
-        for k in range(n_samples - 1):
-            x[k + 1] = disc.Ad @ x[k] + drive[k]
-    return x
+        for k in range(len(drive)):
+            out[k + 1] = ad @ out[k] + drive[k]
+    return out
 
 
 def _as_columns(u: np.ndarray) -> np.ndarray:

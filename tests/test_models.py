@@ -150,3 +150,21 @@ def test_bad_model_tables_name_the_key(table, key, fragment):
         build_model(table, "bench.toml [dut]")
     assert err.value.field == key and fragment in err.value.problem
     assert str(err.value).startswith("bench.toml [dut]: ")
+
+
+def test_propagate_matches_the_plain_recursion_for_steps_and_ramps() -> None:
+    """Reference: the defining recursion x[k+1] = Ad x[k] + B0 u[k] + B1 u[k+1] stepped in plain Python,
+    for inputs with long constant runs (the closed-form path) and jumps/ramps between them, ZOH and FOH."""
+    from acqd.models import discretise, propagate, series_rlc
+
+    model = series_rlc(22.0, 3.3e-3, 100e-9)
+    u = np.concatenate([np.zeros(300), np.linspace(0, 1, 7), np.ones(500), np.full(200, 0.25), [0.5]])
+    for hold in ("zoh", "foh"):
+        disc = discretise(model, 1e-7, hold)
+        x = propagate(disc, u, np.array([0.1, -1e-3]))
+        ref = np.empty_like(x)
+        ref[0] = [0.1, -1e-3]
+        for k in range(len(u) - 1):
+            ref[k + 1] = disc.Ad @ ref[k] + disc.B0[:, 0] * u[k] + disc.B1[:, 0] * u[k + 1]
+        assert np.all(np.abs(x - ref) <= 1e-9 * np.abs(ref).max(axis=0)), hold
+    assert propagate(disc, u[:1], np.zeros(2)).shape == (1, 2)

@@ -22,6 +22,7 @@ import pyvisa
 from acqd.benchsession import open_bench
 from acqd.cli import main
 from acqd.errors import InstrumentError
+from acqd.judge import make_judge
 from acqd.profile import load_profile
 from acqd.steptest import run_step_test
 from acqd.store import RecordStore, open_records
@@ -268,3 +269,14 @@ def test_dut_mapping_to_a_channel_not_recorded_is_refused_up_front(tmp_path: Pat
     err = capsys.readouterr().err
     assert "dut.channels.i_x" in err and "v_src, v_rl, v_c, i_l" in err
     assert not list(tmp_path.glob("records*"))
+
+
+def test_clipped_channel_is_named_in_the_comparison(tmp_path: Path) -> None:
+    """A span too small for the 53 % overshoot: the comparator says the trace is clipped (a set-up fault)."""
+    path = profile_file(tmp_path, ("range_v = 1.2", "range_v = 0.7"))  # v_c spans -0.2 .. 1.2 V, peak 1.53 V
+    profile = load_profile(path)
+    with open_bench(profile) as bench:
+        (record,) = run_step_test(profile, bench.generator, bench.scope)
+    result = make_judge(profile)(record)
+    assert any(w.startswith("v_c:") and "clipped" in w for w in result["warnings"]), result["warnings"]
+    assert not any(w.startswith("v_src:") and "clipped" in w for w in result["warnings"])

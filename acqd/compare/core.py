@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields, is_dataclass, replace
 from typing import Any
 
@@ -242,6 +242,35 @@ def _warnings(channels: list[ChannelResult], spans: np.ndarray) -> list[str]:
     return out
 
 
+CLIP_MIN_SAMPLES = 3  # samples on a rail of the scope's span before a channel counts as clipped
+
+
+def clipping_warnings(record: Record, channels: Sequence[str]) -> list[str]:
+    """Channels with samples on the top or bottom code of the scope's span, from the read-back settings.
+
+    A clipped trace flattens the overshoot and biases every fit, and it is a set-up fault, not the DUT's:
+    say so rather than let it pass as a parameter change. An 8-bit span of ±range_v has a step of
+    range_v/128; its codes run from offset − range_v to offset + range_v − step (common practice).
+    """
+    scope_channels = record.settings.get("scope", {}).get("channels", {}) if record.settings else {}
+    out = []
+    for name in channels:
+        channel = record.channel(name)
+        setup = scope_channels.get(channel.source)
+        if not setup or "range_v" not in setup:
+            continue
+        step = setup["range_v"] / 128
+        low = setup.get("offset_v", 0.0) - setup["range_v"]
+        top = low + 255 * step
+        slack = step / 4  # the volts went through float32 on the way
+        railed = int(np.count_nonzero(channel.samples <= low + slack) + np.count_nonzero(channel.samples >= top - slack))
+        if railed >= CLIP_MIN_SAMPLES:
+            out.append(f"{name}: {railed} sample(s) on the edge of the scope's span {low:.4g} .. "
+                       f"{low + 2 * setup['range_v']:.4g} {channel.unit}: the trace is clipped; widen range_v "
+                       f"for {channel.source} before trusting this comparison")
+    return out
+
+
 def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareResult:
     """Compare ``record`` with the validated ``spec``: the one entry point the API, CLI and report share.
 
@@ -275,7 +304,8 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
     record_info = {"index": record.index, "utc": record.utc, "channels": record.channel_names,
                    "dut": dict(spec.identity), "profile_sha256": record.profile_sha256}
     return CompareResult(record_info, spec.model, dict(setup.nominal), parameters, stimulus, channels, fit,
-                         verdict, _warnings(channels, spans) + notes, traces=traces)
+                         verdict, clipping_warnings(record, [m.channel for m in setup.mapping])
+                         + _warnings(channels, spans) + notes, traces=traces)
 
 
 def compare(record: Record, model_spec: Mapping[str, Any], mapping: Mapping[str, Any] | None = None,

@@ -106,8 +106,10 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     ends = u if u_left is None else _as_columns(u_left)
     x = np.empty((u.shape[0], len(x0)))
     x[0] = np.asarray(x0, dtype=float)
+    if len(u) < 2:
+        return x
     starts_, ends_ = u[:-1], ends[1:]  # interval k is driven from starts_[k] to ends_[k]
-    changes = _changes(starts_) if ends is u else np.union1d(_changes(starts_), _changes(ends_))
+    changes = _changes(starts_) if not disc.B1.any() else np.union1d(_changes(starts_), _changes(ends_))
     if len(changes) > MAX_CONSTANT_RUNS:
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
     for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1

@@ -12,7 +12,7 @@ from rich.console import Console
 from rich.table import Table
 
 from ..errors import ConfigError
-from ..store import RecordReader, export_csv, open_records
+from ..store import RecordReader, RecordSummary, export_csv, open_records
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -57,15 +57,25 @@ def _ls(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps([dataclasses.asdict(s) for s in summaries], indent=1))
         return 0
-    table = Table(title=f"{args.file}: {len(summaries)} record(s)")
-    for name, justify in (("index", "right"), ("UTC", "left"), ("edge", "left"), ("levels", "right"),
-                          ("channels", "left"), ("samples", "right"), ("verdict", "left")):
-        table.add_column(name, justify=justify)
+    def channels_of(s: RecordSummary) -> str:
+        return ", ".join(f"{n} [{u}]" if u else n for n, u in zip(s.channel_names, s.units, strict=True))
+
+    # Records of one store nearly always share their channels: then they are said once, under the table.
+    shared = {channels_of(s) for s in summaries}
+    per_row = len(shared) > 1
+    table = Table(caption=None if per_row or not summaries else f"channels: {shared.pop()}")
+    columns = [("index", "right"), ("UTC", "left"), ("edge", "left"), ("levels", "right")]
+    columns += [("channels", "left")] if per_row else []
+    columns += [("samples", "right"), ("verdict", "left")]
+    for name, justify in columns:
+        table.add_column(name, justify=justify, no_wrap=name != "channels")
     for s in summaries:
-        channels = ", ".join(f"{n} [{u}]" if u else n for n, u in zip(s.channel_names, s.units, strict=True))
-        levels = f"{s.low_v:g} / {s.high_v:g} V"
-        table.add_row(str(s.index), s.utc, s.edge, levels, channels, str(s.n_samples), s.verdict)
-    Console().print(table)
+        row = [str(s.index), s.utc[:19].replace("T", " "), s.edge, f"{s.low_v:g} / {s.high_v:g} V"]
+        row += [channels_of(s)] if per_row else []
+        table.add_row(*row, str(s.n_samples), s.verdict)
+    console = Console()
+    console.print(f"{args.file}: {len(summaries)} record(s)", soft_wrap=True)  # a long path must not wrap
+    console.print(table)
     return 0
 
 

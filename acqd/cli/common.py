@@ -22,11 +22,15 @@ def levels(record: Record, channel: str) -> tuple[float, float]:
 
 
 def record_line(index: int, record: Record) -> str:
-    """``#12 2026-12-02T03:50:01 rising v_c 0.000→1.000 V pass``: what a bench engineer scans for."""
-    last = record.channels[min(2, len(record.channels) - 1)].name if record.channels else ""
-    before, after = levels(record, last) if last else (float("nan"), float("nan"))
-    verdict = ""
-    if record.analysis:
-        verdict = " [green]pass[/green]" if record.analysis.get("passed") else " [red]FAIL[/red]"
-    return (f"#{index} {record.utc[:19]} {record.stimulus.edge} edge, {last} "
-            f"{before:.3f}→{after:.3f} {record.channel(last).unit}{verdict}")
+    """``#12 2026-12-02T03:50:01 rising edge, v_c 0.000→1.000 V pass``: what a bench engineer scans for.
+
+    The levels are those of the last scope input (by the profile's order, the DUT's output comes last);
+    math channels are left out because they are derived.
+    """
+    captured = [c for c in record.channels if c.source.upper().startswith("CH")] or record.channels
+    shown = captured[-1]
+    before, after = levels(record, shown.name)
+    shown_verdict = {"pass": " [green]pass[/green]", "fail": " [red]FAIL[/red]", "untested": " untested"}
+    verdict = shown_verdict.get((record.analysis or {}).get("verdict", ""), "")
+    return (f"#{index} {record.utc[:19]} {record.stimulus.edge} edge, {shown.name} "
+            f"{before:.3f}→{after:.3f} {shown.unit}{verdict}")

@@ -109,7 +109,10 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     if len(u) < 2:
         return x
     starts_, ends_ = u[:-1], ends[1:]  # interval k is driven from starts_[k] to ends_[k]
-    changes = _changes(starts_) if not disc.B1.any() else np.union1d(_changes(starts_), _changes(ends_))
+    flags = _change_flags(starts_)
+    if disc.B1.any():
+        flags |= _change_flags(ends_)
+    changes = np.flatnonzero(flags) + 1
     if len(changes) > MAX_CONSTANT_RUNS:
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
     for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1
@@ -119,12 +122,12 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     return x
 
 
-def _changes(v: np.ndarray) -> np.ndarray:
-    """Indices k where row k differs from row k−1 (one pass per input column)."""
-    flags = np.zeros(len(v) - 1 if len(v) else 0, dtype=bool)
+def _change_flags(v: np.ndarray) -> np.ndarray:
+    """flags[k−1] is True where row k differs from row k−1 (one pass per input column)."""
+    flags = np.zeros(max(len(v) - 1, 0), dtype=bool)
     for column in v.T:
         flags |= column[1:] != column[:-1]
-    return np.flatnonzero(flags) + 1
+    return flags
 
 
 MAX_CONSTANT_RUNS = 16  # more runs than this: a sampled input, for the general recursion

@@ -148,7 +148,7 @@ def load_profile(path: str | Path) -> Profile:
     stimulus = _stimulus(top.table("stimulus"), limits)
     acquisition = _acquisition(top.table("acquisition"))
     math = _math(top.table("math", {}), acquisition)
-    dut = dict(top.raw("dut", {}))
+    dut = _dut(top.table("dut", {}))
     output = _output(top.table("output", {}), path)
     campaign = dict(top.raw("campaign", {}))
     top.done()
@@ -275,6 +275,16 @@ def _math(t: Table, acquisition: AcquisitionPlan) -> tuple[MathChannel, ...]:
         m.done()
     t.done()
     return tuple(channels)
+
+
+def _dut(t: Table) -> dict[str, Any]:
+    """The [dut] table as it is; with a ``model`` the comparator validates it (acqd.judge), without one
+    only the device's identity may be given, so a misspelt ``model`` is not silently a DUT without one."""
+    if not t.has("model"):
+        t.string("name", None)
+        t.string("serial", None)
+        t.done()
+    return dict(t.data)
 
 
 def _output(t: Table, profile_path: Path) -> OutputPlan:

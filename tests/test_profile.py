@@ -1,7 +1,7 @@
 """Malformed profiles: each gives one clear line naming the file, the key and what is allowed.
 
 The checks here are about the profile alone; those that need the bench (unknown driver, unknown probe
-node) run through `acqd run` in test_run_cli.py, where we also check that nothing reached an instrument.
+node) run through `acqd run` in test_run.py, where we also check that nothing reached an instrument.
 """
 
 from pathlib import Path
@@ -56,6 +56,7 @@ CASES = [
      '[bench.generator]\ndriver = "scpi-generator"\nresource = "TCPIP0::127.0.0.1::5025::SOCKET"',
      ["bench.generator.resource", "not allowed on the simulated bench"]),
     ("[stimulus]", "[stimulus\n", ["not valid TOML"]),
+    ('model = "series_rlc"\nr_ohm = 22.0', 'modle = "series_rlc"\nr_ohm = 22.0', ["dut.modle", "unknown key"]),
 ]
 
 

@@ -260,6 +260,8 @@ def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path,
             assert a.analysis["fit"]["values"] == b.analysis["fit"]["values"]
     assert main(["run", str(path), "--replay", str(tmp_path / "records.h5"), "--records", "0,x"]) == 2
     assert "--records" in capsys.readouterr().err
+    assert main(["run", str(path), "--records", "0"]) == 2  # a selection without a replay file means nothing
+    assert "--records: only has a meaning with --replay" in capsys.readouterr().err
 
 
 def test_dut_mapping_to_a_channel_not_recorded_is_refused_up_front(tmp_path: Path,

@@ -14,7 +14,7 @@ from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from ..benchsession import Replay, open_bench
-from ..errors import AcqdError, InstrumentError
+from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
 from ..profile import load_profile
 from ..record import Record
@@ -57,6 +57,8 @@ def register(sub: argparse._SubParsersAction) -> None:
 def run_command(args: argparse.Namespace) -> int:
     if args.count < 1:
         raise AcqdError(f"--count: must be at least 1, not {args.count}")
+    if args.records is not None and args.replay is None:
+        raise ConfigError("command line", "--records", "only has a meaning with --replay FILE")
     profile = load_profile(args.profile)
     judge = make_judge(profile)  # validates [dut] before anything is started
     out = args.out or profile.output.file

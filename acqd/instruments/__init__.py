@@ -1,8 +1,8 @@
 """Instrument roles and the driver files that make a model play them.
 
 ``open_instrument(resource, driver)`` gives a ``Generator`` or a ``Scope``; the driver file (TOML, see
-``docs/drivers.md``) says which SCPI commands the model uses. ``find_driver``, ``list_drivers`` and
-``match_driver`` look drivers up without touching an instrument.
+"How to add a driver" in DEVELOPERS.md) says which SCPI commands the model uses. ``find_driver``,
+``list_drivers`` and ``match_driver`` look drivers up without touching an instrument.
 """
 
 from .driver import Driver, DriverInfo, load_driver

@@ -4,8 +4,8 @@ A new instrument is a new file, not new code. The file says which commands set e
 with typed placeholders, filled through ``acqd.scpi``), how the instrument's units relate to the role's
 (small safe expressions), how to wait for an acquisition, how to turn a block of codes into volts, which
 ``*IDN?`` replies it accepts and the hard limits of the instrument. The format is documented in
-``docs/drivers.md``; every mistake in a file is one ConfigError naming the file, line, field and what is
-allowed, raised when the file is loaded — before any instrument is touched.
+DEVELOPERS.md ("How to add a driver"); every mistake in a file is one ConfigError naming the file, line,
+field and what is allowed, raised when the file is loaded — before any instrument is touched.
 """
 
 from __future__ import annotations

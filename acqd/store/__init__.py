@@ -33,7 +33,7 @@ Why this layout - the evidence is in shared/STORAGE-NOTES.md (measured on a mach
 Modules: ``schema`` (what a segment holds, Record <-> row/blobs), ``naming`` (store path -> segment files,
 durable renames), ``segment`` (write/read one segment file), ``writer`` (RecordStore), ``reader``
 (RecordReader), ``recovery`` (finishing a dead writer's segment in a child process), ``export`` (CSV),
-``faults`` (the kill switch the crash tests use). The schema is described in docs/store-schema.md.
+``faults`` (the kill switch the crash tests use). The schema is described in the README ("The record file").
 """
 
 from .export import export_csv

@@ -132,8 +132,15 @@ def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.nd
         return float(np.sum((measured - x @ c_row - d_value * u) ** 2))
 
     nearest, span = int(np.argmin(np.abs(times - edge.t50_s))), int(np.ceil(search_s / dt))
-    candidates = times[max(0, nearest - span):nearest + span + 1]  # exactly on samples, no rounding drift
-    best = float(candidates[int(np.argmin([cost(t) for t in candidates]))])
+    shifts = np.arange(max(0, nearest - span), min(len(times) - 1, nearest + span) + 1) - nearest
+    # A whole-sample shift of the edge shifts the response by as many samples (the model is time-invariant
+    # and starts at rest), so one response on a grid padded by the search span serves every candidate.
+    n = len(times)
+    padded = times[0] + (np.arange(n + 2 * span) - span) * dt
+    x, _, u = edge_response(model, padded, replace(edge, t50_s=float(times[nearest])))
+    predicted = x @ c_row + d_value * u
+    costs = [float(np.sum((measured - predicted[span - s:span - s + n]) ** 2)) for s in shifts]
+    best = float(times[nearest + shifts[int(np.argmin(costs))]])  # exactly on a sample, no rounding drift
     if edge.resolved(dt):
         best = float(minimize_scalar(cost, bounds=(best - dt, best + dt), method="bounded",
                                      options={"xatol": dt * 1e-3}).x)

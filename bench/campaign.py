@@ -8,10 +8,10 @@ pointing at the child's servers.
 
 1. bare step test: the profile's step test with the bench opened once, ``--bare`` times back to back.
 2. what the daemon adds, each part timed on its own in the same run: comparing (the comparator on a record
-   of step 1, in its worker process as the daemon runs it), storing (``RecordStore.append`` with the profile's fsync), logging (one slot's run-log lines
-   and ledger transactions). The daemon compares (in a worker process) and stores (in its keeper thread)
-   while the next step test runs, so these parts overlap the step test instead of adding to it; they are
-   printed to show what is being hidden.
+   of step 1), storing (``RecordStore.append`` with the profile's fsync), logging (one slot's run-log lines
+   and ledger transactions). The daemon compares and stores in its keeper thread while the next step test
+   runs, so these parts overlap the step test instead of adding to it; they are printed to show what is
+   being hidden.
 3. the daemon: a back-to-back campaign of ``--slots`` slots on the same profile, run by ``Daemon``, once
    with the comparator and once with nothing to compare; the time per slot is the median time from one
    slot's start to the next one's (from the ledger), and the resident set size (``VmRSS`` of

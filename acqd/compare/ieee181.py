@@ -22,6 +22,7 @@ Our choices where the standard leaves one to the user (bins, band and noise leve
 
 from __future__ import annotations
 
+import statistics
 from dataclasses import dataclass
 
 import numpy as np
@@ -100,7 +101,7 @@ def _ringing_frequency_hz(t: np.ndarray, y: np.ndarray, level: float, hysteresis
         i, j = outside[f], outside[f + 1]
         segment = y[i:j + 1] - level
         ks = i + np.flatnonzero(np.sign(segment[:-1]) != np.sign(segment[1:]))
-        crossings.append(float(np.median([_crossing(t, y, k, level) for k in ks])))
+        crossings.append(statistics.median(_crossing(t, y, k, level) for k in ks))
         weights.append(min(amplitude[n], amplitude[n + 1]) ** 2)
     half_period = np.polyfit(np.arange(len(crossings)), crossings, 1, w=np.sqrt(weights))[0]
     return float(1.0 / (2.0 * half_period))

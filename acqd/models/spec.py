@@ -6,6 +6,7 @@ simulate the same equations. Errors name the table and key, because these come f
 
 from __future__ import annotations
 
+import functools
 import inspect
 import math
 from collections.abc import Callable, Mapping
@@ -77,11 +78,17 @@ BUILDERS["state_space"] = _matrix_model
 
 def model_parameters(name: str) -> list[str]:
     """Keyword parameters a named model takes (for validation messages and fits)."""
-    return list(inspect.signature(BUILDERS[name]).parameters)
+    return list(_signature(BUILDERS[name]).parameters)
+
+
+@functools.lru_cache(maxsize=None)
+def _signature(builder: ModelBuilder) -> inspect.Signature:
+    """Reading a signature costs more than building a small model, and every comparison builds several."""
+    return inspect.signature(builder)
 
 
 def _required(name: str) -> list[str]:
-    return [p.name for p in inspect.signature(BUILDERS[name]).parameters.values()
+    return [p.name for p in _signature(BUILDERS[name]).parameters.values()
             if p.default is inspect.Parameter.empty]
 
 

@@ -22,7 +22,11 @@ pointing at the child's servers.
 Overhead = daemon time per slot / bare step-test time − 1. Targets: overhead under 20 %, memory growth
 under 20 MB.
 
-    python bench/campaign.py [--slots 2000] [--bare 200] [--samples 1500] [--in-process]
+With ``--instrument-time`` the simulated scope completes an acquisition when a real one would (the next
+edge of the 200 Hz stimulus, then the window), so the step test waits on the instrument as on a real bench
+and the keeper's work can overlap it; without it the step test is pure CPU, the daemon's worst case.
+
+    python bench/campaign.py [--slots 2000] [--bare 200] [--samples 1500] [--in-process] [--instrument-time]
 """
 
 from __future__ import annotations
@@ -118,11 +122,12 @@ slots = {slots}
 """
 
 
-def serve(conn: Any) -> None:
+def serve(conn: Any, instrument_time: bool) -> None:
     """Child process: the simulated bench until the parent says it is done."""
     from acqd.sim.bench import SimBench, SimBenchConfig
 
-    bench = SimBench(SimBenchConfig.from_mapping(SIMULATED, "bench/campaign.py")).start()
+    table = {**SIMULATED, "realtime": instrument_time}
+    bench = SimBench(SimBenchConfig.from_mapping(table, "bench/campaign.py")).start()
     conn.send(bench.resources)
     conn.recv()
     bench.stop()
@@ -164,17 +169,21 @@ def main() -> int:
     ap.add_argument("--bare", type=int, default=200)
     ap.add_argument("--samples", type=int, default=1500)
     ap.add_argument("--in-process", action="store_true", help="simulated bench inside this process")
+    ap.add_argument("--instrument-time", action="store_true",
+                    help="the simulated scope takes as long as a real one (waits for the edge and the window), "
+                         "so the step test waits on the instrument as it does on a real bench")
     args = ap.parse_args()
     if args.in_process:
         return measure(args, IN_PROCESS, "simulated bench in this process")
     ctx = multiprocessing.get_context("spawn")
     parent, child = ctx.Pipe()
-    server = ctx.Process(target=serve, args=(child,), daemon=True)
+    server = ctx.Process(target=serve, args=(child, args.instrument_time), daemon=True)
     server.start()
     try:
         resources = parent.recv()
+        timing = "in instrument time" if args.instrument_time else "as fast as the CPU allows"
         return measure(args, CHILD_PROCESS.format(gen=resources["gen"], scope=resources["scope"]),
-                       "simulated bench in a child process")
+                       f"simulated bench in a child process, {timing}")
     finally:
         parent.send("done")
         server.join(10)

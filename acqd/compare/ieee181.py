@@ -94,15 +94,17 @@ def _ringing_frequency_hz(t: np.ndarray, y: np.ndarray, level: float, hysteresis
     flips = np.flatnonzero(np.diff(side[outside]) != 0)
     if len(flips) < 2:
         return None
-    lobes = np.split(outside, flips + 1)
-    amplitude = [float(np.max(np.abs(y[lobe] - level))) for lobe in lobes]
-    crossings, weights = [], []
-    for n, f in enumerate(flips):
-        i, j = outside[f], outside[f + 1]
-        segment = y[i:j + 1] - level
-        ks = i + np.flatnonzero(np.sign(segment[:-1]) != np.sign(segment[1:]))
-        crossings.append(statistics.median(_crossing(t, y, k, level) for k in ks))
-        weights.append(min(amplitude[n], amplitude[n + 1]) ** 2)
+    amplitude = np.maximum.reduceat(np.abs(y[outside] - level), np.r_[0, flips + 1])  # per lobe
+    # Every crossing of the level, interpolated at once; each flip takes the median of those between its lobes.
+    above = y > level
+    ks = np.flatnonzero(above[:-1] != above[1:])
+    y0, y1 = y[ks], y[ks + 1]
+    share = np.divide(level - y0, y1 - y0, out=np.full(len(ks), 0.5), where=y1 != y0)
+    instants = t[ks] + share * (t[ks + 1] - t[ks])
+    firsts = np.searchsorted(ks, outside[flips])
+    lasts = np.searchsorted(ks, outside[flips + 1])
+    crossings = [statistics.median(instants[a:b].tolist()) for a, b in zip(firsts, lasts)]
+    weights = np.minimum(amplitude[:-1], amplitude[1:]) ** 2
     half_period = np.polyfit(np.arange(len(crossings)), crossings, 1, w=np.sqrt(weights))[0]
     return float(1.0 / (2.0 * half_period))
 

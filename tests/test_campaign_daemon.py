@@ -436,3 +436,25 @@ def test_simulated_drift_is_recovered_by_acqd_drift(tmp_path: Path, capsys: pyte
     expected = per_hour * time_scale * r_nominal  # Ω per hour of record time
     assert lo <= expected <= hi, (expected, r["trend"])
     assert hi - lo < 0.2 * expected  # and the interval is tight enough to mean something
+
+
+def test_a_kill_that_leaves_two_slots_running_completes_both(tmp_path: Path) -> None:
+    """The kill the timing makes rare, set up exactly: the keeper had not booked the ends of slots 2 and 3
+    when the runner went on to slot 4, so they are still 'running' in the ledger under a later slot. A
+    restart must complete them too (not only the newest slot), acquiring nothing their stored steps hold."""
+    profile = write_profile(tmp_path / "two.toml", 'name = "two"\nback_to_back = true\nslots = 4\n'
+                                                   '[campaign.sweep]\nedge = ["rising", "falling"]\n')
+    data = tmp_path / "data"
+    assert daemon_process(profile, data).wait(60) == 0
+    conn = sqlite3.connect(data / "campaigns.sqlite")
+    with conn:
+        conn.execute("UPDATE acqd_slots SET state = 'running', finished_utc = NULL WHERE slot IN (2, 3)")
+        conn.execute("UPDATE acqd_campaigns SET finished_utc = NULL")
+    conn.close()
+    before = stored_tags(data / "two.h5")
+
+    second = daemon_process(profile, data)
+    out, err = second.communicate(timeout=60)
+    assert second.returncode == 0, err
+    assert slot_accounting(data, "two") == {1: "done", 2: "done", 3: "done", 4: "done"}
+    assert stored_tags(data / "two.h5") == before  # every step was stored: nothing acquired again

@@ -35,6 +35,7 @@ CREATE TABLE IF NOT EXISTS acqd_slots (
     campaign TEXT NOT NULL, slot INTEGER NOT NULL, first_slot INTEGER NOT NULL, scheduled_utc TEXT,
     state TEXT NOT NULL, started_utc TEXT, finished_utc TEXT, faults INTEGER NOT NULL DEFAULT 0, note TEXT,
     PRIMARY KEY (campaign, slot));
+CREATE INDEX IF NOT EXISTS acqd_slots_by_state ON acqd_slots (campaign, state);
 CREATE TABLE IF NOT EXISTS acqd_records (
     campaign TEXT NOT NULL, slot INTEGER NOT NULL, step INTEGER NOT NULL, record_index INTEGER NOT NULL,
     utc TEXT NOT NULL, verdict TEXT NOT NULL, PRIMARY KEY (campaign, slot, step));
@@ -137,6 +138,12 @@ class Ledger:
     def last_slot(self, campaign: str) -> SlotRow | None:
         rows = self._read("SELECT * FROM acqd_slots WHERE campaign = ? ORDER BY slot DESC LIMIT 1", (campaign,))
         return SlotRow(*rows[0]) if rows else None
+
+    def running_slots(self, campaign: str) -> list[SlotRow]:
+        """Slots begun and not ended, oldest first: after a kill there can be two (the keeper may not have
+        booked the end of the slot before the one the runner was in)."""
+        return [SlotRow(*r) for r in self._read("SELECT * FROM acqd_slots WHERE campaign = ? AND state = 'running' "
+                                                 "ORDER BY slot", (campaign,))]
 
     def slots(self, campaign: str) -> list[SlotRow]:
         return [SlotRow(*r) for r in self._read("SELECT * FROM acqd_slots WHERE campaign = ? ORDER BY slot",

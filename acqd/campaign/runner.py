@@ -255,14 +255,17 @@ class CampaignRunner:
                 self._lock.release()
 
     def _position(self) -> tuple[int, SlotRow | None]:
-        """(highest slot handled, the interrupted slot to complete or None). A slot whose end the keeper
+        """(highest slot handled, the oldest interrupted slot to complete or None). A slot whose end the keeper
         has queued counts as handled: the pending set is read before the ledger, and the keeper books the
-        end in the ledger before it leaves that set, so a slot is never taken for interrupted by mistake."""
+        end in the ledger before it leaves that set, so a slot is never taken for interrupted by mistake.
+        A kill can leave two slots running (the runner had begun the next one while the keeper still held
+        the end of the last), so every running slot is looked at, not only the newest."""
         pending = set(self.keeper.pending_end)
         last = self.ledger.last_slot(self.name)
         if last is None:
             return 0, None
-        return last.slot, (last if last.state == "running" and last.slot not in pending else None)
+        interrupted = [row for row in self.ledger.running_slots(self.name) if row.slot not in pending]
+        return last.slot, (interrupted[0] if interrupted else None)
 
     def overdue(self, now: datetime, grace_s: float) -> bool:
         """True when a slot (or the end) is due for more than ``grace_s`` and no wake-up is handling it:

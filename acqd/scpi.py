@@ -259,6 +259,12 @@ def split_reply(text: str, sep: str = ";") -> list[str]:
     return parts
 
 
+def format_error_entry(code: int, text: str) -> str:
+    """An error-queue reply (SCPI-1999 Vol 2 §21.8): ``-113,"Undefined header"``, quotes in the text doubled."""
+    quoted = text.replace('"', '""')
+    return f'{int(code)},"{quoted}"'
+
+
 def parse_error_entry(text: str) -> tuple[int, str]:
     """One error-queue entry (SCPI-1999 Vol 2 §21.8): ``-113,"Undefined header"`` → (-113, text)."""
     parts = text.strip().split(",", 1)

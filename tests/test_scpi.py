@@ -239,3 +239,12 @@ def test_short_forms_come_from_the_table_notation():
     assert scpi.mnemonic_forms("THReshold") == ("THRESHOLD", "THR")
     with pytest.raises(ValueError):
         scpi.mnemonic_forms("FreQ")
+
+
+def test_error_entry_round_trip_with_quotes() -> None:
+    """SCPI-1999 Vol 2 §21.8 error entries are <code>,<string>; IEEE 488.2 §7.7.5 (from memory) doubles an
+    embedded quote inside a string, so a detail quoting a header survives the round trip."""
+    text = 'Undefined header;"FREQU"'
+    entry = scpi.format_error_entry(-113, text)
+    assert entry == '-113,"Undefined header;""FREQU"""'
+    assert scpi.parse_error_entry(entry) == (-113, text)

@@ -116,10 +116,6 @@ class ErrorQueue:
         return len(self._entries)
 
 
-def format_error_entry(code: int, text: str) -> str:
-    return f'{code},"{text}"'
-
-
 # ---------------------------------------------------------------------------------------------------
 # Parameter types (SCPI-1999 Vol 1 §7)
 # ---------------------------------------------------------------------------------------------------
@@ -747,7 +743,7 @@ class SCPIInstrument:
 
     # -- IEEE 488.2 common commands and SYSTem:ERRor ---------------------------------------------
     def _error_next(self) -> str:
-        return format_error_entry(*self.errors.pop())
+        return scpi.format_error_entry(*self.errors.pop())
 
     def _idn(self) -> str:
         return self.identity()

@@ -211,3 +211,16 @@ def test_a_model_without_a_rest_state_is_refused_with_a_reason():
     with pytest.raises(ConfigError) as err:
         compare(kt9(low=0.2), table, {"v_c": "v_c"})
     assert err.value.field == "model" and "no steady state" in err.value.problem
+
+
+def test_remembered_simulations_never_serve_another_model() -> None:
+    """The comparator remembers the nominal model's traces between records; alternating two models on the
+    same record must still give each its own textbook overshoot PO = e^{−ζπ/√(1−ζ²)} (DESIGN.md §4)."""
+    record = kt9()
+    for r_ohm in (22.0, 47.0, 22.0, 47.0):
+        result = compare(record, {**KT9, "r_ohm": r_ohm}, {"v_c": "v_c"})
+        zeta = (r_ohm + 50.0) / 2 * np.sqrt(100e-9 / 3.3e-3)
+        expected = 100 * np.exp(-zeta * np.pi / np.sqrt(1 - zeta**2))
+        assert result.channel("v_c").simulated.overshoot_pct == pytest.approx(expected, abs=0.02)
+    again = compare(record, KT9, {"v_c": "v_c"}).to_dict()
+    assert again == compare(record, KT9, {"v_c": "v_c"}).to_dict()

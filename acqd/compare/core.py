@@ -21,6 +21,7 @@ from ..errors import ConfigError
 from ..models import PARAMETERS, StateSpace
 from ..record import Record
 from .fit import FitResult, Free, fit_parameters
+from .memo import Memo
 from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Probe, spec_from_parts
 from .stimulus import Edge, align_edge, edge_response, steady_state
@@ -242,6 +243,8 @@ def _warnings(channels: list[ChannelResult], spans: np.ndarray) -> list[str]:
     return out
 
 
+_PREDICTIONS = Memo()  # the nominal model's traces, the same for every record of a campaign without fits
+
 CLIP_MIN_SAMPLES = 3  # samples on a rail of the scope's span before a channel counts as clipped
 
 
@@ -284,7 +287,8 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
         edge = replace(edge, t50_s=fit.values[EDGE_PARAMETER])
     parameters = {**setup.nominal, **fitted}
     model = setup.model(parameters)
-    x, predicted, u = setup.predict(model, edge)
+    x, predicted, u = _PREDICTIONS.get((model.A, model.B, model.C, model.D, setup.times, edge, setup.mapping),
+                                       lambda: setup.predict(model, edge))
     spans = np.ptp(predicted, axis=1)
     channels = []
     for m, unit, meas, sim, span in zip(setup.mapping, setup.units, setup.measured, predicted, spans):

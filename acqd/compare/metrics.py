@@ -12,6 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .ieee181 import StepError, StepParameters, step_parameters
+from .memo import Memo
 
 NRMSE_BASIS = "peak-to-peak range (max - min) of the simulated trace"
 MIN_BASELINE_SAMPLES = 16
@@ -52,12 +53,16 @@ def noise_rms(times: np.ndarray, y: np.ndarray, quiet_until_s: float) -> float:
     return float(np.median(np.abs(diffs - np.median(diffs))) / (0.6745 * np.sqrt(2.0))) if len(diffs) else 0.0
 
 
+_SIMULATED_STEPS = Memo()  # a simulated trace's step parameters depend on nothing the record measured
+
+
 def _steps(times: np.ndarray, measured: np.ndarray, simulated: np.ndarray, polarity: str | None,
            band_pct: float, noise: float) -> tuple[StepParameters | None, StepParameters | None, str]:
     if polarity is None:
         return None, None, "no step: the model's rest values before and after the edge are equal"
     try:
-        sim = step_parameters(times, simulated, polarity, band_pct=band_pct)
+        sim = _SIMULATED_STEPS.get((times, simulated, polarity, band_pct),
+                                   lambda: step_parameters(times, simulated, polarity, band_pct=band_pct))
     except StepError as exc:
         return None, None, f"simulated trace: {exc}"
     try:

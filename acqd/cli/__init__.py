@@ -20,13 +20,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="acqd", description="Automated step tests on the electronics bench.")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     for name in COMMAND_MODULES:
-        try:
-            module = importlib.import_module(f"{__name__}.{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"{__name__}.{name}":
-                continue  # a sub-command not built yet
-            raise
-        module.register(sub)
+        importlib.import_module(f"{__name__}.{name}").register(sub)
     return parser
 
 

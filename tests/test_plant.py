@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from acqd.models import series_rlc
-from acqd.sim.plant import Plant, Probe
+from acqd.models import Probe, series_rlc
+from acqd.sim.plant import Plant
 
 # Values of our own choosing for an under-damped series RLC (zeta about 0.3).
 R_OHM, L_H, C_F, RS_OHM = 12.0, 1.5e-3, 0.68e-6, 50.0

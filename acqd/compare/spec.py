@@ -35,15 +35,13 @@ difference ``a - b`` of two (a floating voltage, such as the drop across a serie
 
 from __future__ import annotations
 
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
 
 from ..config import Table
-from ..models import BUILDERS, PARAMETERS, StateSpace, build_model, model_parameters
+from ..models import BUILDERS, PARAMETERS, Probe, StateSpace, build_model, model_parameters
 
 IDENTITY_KEYS = ("name", "serial")
 WEIGHTINGS = ("noise", "amplitude")
@@ -57,30 +55,6 @@ DEFAULT_HOLD = {
     "series_rl": ("l_h", "r_ohm", "source_resistance_ohm"),
     "second_order": ("gain", "zeta", "wn_rad_s"),
 }
-
-_PROBE = re.compile(r"^\s*([A-Za-z_]\w*)\s*(?:-\s*([A-Za-z_]\w*)\s*)?$")
-
-
-@dataclass(frozen=True)
-class Probe:
-    """One model output, or the difference of two: ``positive`` − ``negative``."""
-
-    positive: str
-    negative: str | None = None
-
-    @property
-    def text(self) -> str:
-        return self.positive if self.negative is None else f"{self.positive} - {self.negative}"
-
-    def row(self, model: StateSpace) -> tuple[np.ndarray, float]:
-        """(C row, D entry) of the probed quantity, so a prediction is x·c + d·u."""
-        i = model.output_index(self.positive)
-        c, d = model.C[i].copy(), float(model.D[i, 0])
-        if self.negative is not None:
-            j = model.output_index(self.negative)
-            c, d = c - model.C[j], d - float(model.D[j, 0])
-        return c, d
-
 
 @dataclass(frozen=True)
 class ChannelMap:
@@ -204,10 +178,11 @@ def _fit(t: Table, model: str, nominal: Mapping[str, Any]) -> FitSpec:
 
 def parse_probe(text: Any, model: StateSpace) -> Probe | None:
     """The probe ``text`` names, or None when it is not 'output' or 'output - output' of ``model``."""
-    m = _PROBE.match(text) if isinstance(text, str) else None
-    if not m or any(name not in model.outputs for name in m.groups() if name):
+    try:
+        probe = Probe.parse(text)
+    except ValueError:
         return None
-    return Probe(m.group(1), m.group(2))
+    return probe if probe.fits(model) else None
 
 
 def _channels(dut: Table, model: StateSpace) -> tuple[ChannelMap, ...]:

@@ -52,10 +52,10 @@ import numpy as np
 
 from ..config import Table
 from ..errors import ConfigError
-from ..models import BUILDERS, PARAMETERS, StateSpace, build_model
+from ..models import BUILDERS, PARAMETERS, Probe, StateSpace, build_model
 from .frontend import FrontEndSettings
 from .generator import Generator
-from .plant import Plant, Probe
+from .plant import Plant
 from .scope import N_CHANNELS, DigitizerScope
 from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
 from .viewscope import ViewScope
@@ -175,11 +175,10 @@ def _check_probes(probes: Mapping[str, Any], model: StateSpace, source: str) -> 
         if name not in allowed_channels:
             raise ConfigError(source, field_name, f"not a scope channel; allowed: {', '.join(allowed_channels)}")
         try:
-            probe = Probe.parse(text) if isinstance(text, str) else None
+            fits = Probe.parse(text).fits(model)
         except ValueError:
-            probe = None
-        nodes = [probe.plus, probe.minus] if probe else []
-        if probe is None or any(n is not None and n not in model.outputs for n in nodes):
+            fits = False
+        if not fits:
             raise ConfigError(source, field_name, f"{text!r} is not a probe of this DUT; write an output or "
                                                   f"'a - b' of outputs: {', '.join(model.outputs)}")
 

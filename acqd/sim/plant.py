@@ -16,27 +16,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import expm
 
+from ..models.probe import Probe
 from ..models.statespace import StateSpace, discretise, propagate
-
-
-@dataclass(frozen=True)
-class Probe:
-    """What a scope channel sees: a model output, or the difference of two (a floating voltage)."""
-
-    plus: str
-    minus: str | None = None
-
-    @classmethod
-    def parse(cls, text: str) -> Probe:
-        parts = [p.strip() for p in str(text).split("-")]
-        if len(parts) == 1 and parts[0]:
-            return cls(parts[0])
-        if len(parts) == 2 and all(parts):
-            return cls(parts[0], parts[1])
-        raise ValueError(f"probe {text!r} must be a node name or 'node_a - node_b'")
-
-    def __str__(self) -> str:
-        return self.plus if self.minus is None else f"{self.plus} - {self.minus}"
 
 
 class Plant:
@@ -46,12 +27,6 @@ class Plant:
         if len(model.inputs) != 1:
             raise ValueError("the simulated bench drives a plant with exactly one input (the generator EMF)")
         self.model = model
-
-    def check_probe(self, probe: Probe) -> None:
-        """KeyError naming the node when a probe names something the plant does not have."""
-        for node in (probe.plus, probe.minus):
-            if node is not None:
-                self.model.output_index(node)
 
     def window(self, *, emf_before: float, emf_after: float, half_period_s: float | None,
                sample_interval_s: float, n_samples: int, first_sample_s: float,
@@ -63,14 +38,7 @@ class Plant:
         x_start = self._state_at(times[0], wave)
         states = self._states_on_grid(times, wave, x_start)
         u = wave.value(times)
-        outputs = states @ self.model.C.T + np.outer(u, self.model.D[:, 0])
-        return [self._probe_values(outputs, p) for p in probes]
-
-    def _probe_values(self, outputs: np.ndarray, probe: Probe) -> np.ndarray:
-        values = outputs[:, self.model.output_index(probe.plus)]
-        if probe.minus is not None:
-            values = values - outputs[:, self.model.output_index(probe.minus)]
-        return values
+        return [states @ c + u * d for c, d in (probe.row(self.model) for probe in probes)]
 
     def _state_at(self, t: float, wave: _SquareWave) -> np.ndarray:
         """State at time t from the periodic steady state, propagated with the level that holds there.

@@ -30,11 +30,11 @@ from typing import Protocol
 import numpy as np
 
 from .. import scpi
-from ..models import StateSpace
+from ..models import Probe, StateSpace
 from . import frontend
 from .frontend import ChannelSetup, FrontEndSettings
 from .generator import Generator
-from .plant import Plant, Probe
+from .plant import Plant
 from .server import Choice, ChannelRef, Cmd, Integer, Number, SCPIError, SCPIInstrument, setting
 
 N_CHANNELS = 4
@@ -111,15 +111,13 @@ def sine_steady_state(model: StateSpace, probes: Sequence[Probe], offset_emf: fl
     """Each probe for u = offset + amplitude·sin(ωt) once transients have gone: DC gain plus H(jω)."""
     omega = 2 * np.pi * frequency_hz
     n = len(model.states)
-    gain = model.C @ np.linalg.solve(1j * omega * np.eye(n) - model.A, model.B) + model.D  # (outputs, 1)
-    dc = model.C @ model.steady_state(offset_emf) + model.D[:, 0] * offset_emf
-    outputs = dc[:, None] + amplitude_emf * np.imag(gain * np.exp(1j * omega * times_s)[None, :])
+    response = np.linalg.solve(1j * omega * np.eye(n) - model.A, model.B[:, 0])  # states per unit input
+    rest = model.steady_state(offset_emf)
+    phasor = np.exp(1j * omega * times_s)
     result = []
-    for probe in probes:
-        values = outputs[model.output_index(probe.plus)]
-        if probe.minus is not None:
-            values = values - outputs[model.output_index(probe.minus)]
-        result.append(values)
+    for c, d in (probe.row(model) for probe in probes):
+        dc = c @ rest + d * offset_emf
+        result.append(dc + amplitude_emf * np.imag((c @ response + d) * phasor))
     return result
 
 

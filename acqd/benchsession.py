@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ConfigError
-from .instruments import Generator, Scope, find_driver, load_driver, open_instrument
+from .instruments import Driver, Generator, Scope, find_driver, load_driver, open_instrument
 from .profile import InstrumentPlan, Profile
 from .visa import identify
 
@@ -49,10 +49,10 @@ def replay_bench(replay: Replay) -> Any:
     return ReplayBench(replay.path, replay.records)
 
 
-def _simulated_resource(plan: InstrumentPlan, resources: dict[str, str], profile: Profile) -> str:
-    driver = load_driver(find_driver(plan.driver))
-    for resource in resources.values():
-        if driver.matches(identify(resource, backend=plan.backend, timeout_s=plan.timeout_s)):
+def _simulated_resource(plan: InstrumentPlan, driver: Driver, identities: dict[str, str], profile: Profile) -> str:
+    """The simulated instrument whose ``*IDN?`` the plan's driver file accepts."""
+    for resource, identity in identities.items():
+        if driver.matches(identity):
             return resource
     raise ConfigError(profile.source, f"bench.{plan.role}.driver",
                       f"driver {plan.driver!r} matches no instrument of the simulated bench")
@@ -62,14 +62,18 @@ def _simulated_resource(plan: InstrumentPlan, resources: dict[str, str], profile
 def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench]:
     """Both roles, opened and identified; everything is closed (and the simulated bench stopped) on exit."""
     plans = (profile.bench.generator, profile.bench.scope)
-    for plan in plans:  # a bad driver name is a profile error, found before anything is started
-        load_driver(find_driver(plan.driver, source=f"{profile.source}: bench.{plan.role}.driver"))
+    # A bad driver name is a profile error, found before anything is started.
+    drivers = [load_driver(find_driver(plan.driver, source=f"{profile.source}: bench.{plan.role}.driver"))
+               for plan in plans]
     with ExitStack() as stack:
         sim = None
         if replay is not None or profile.bench.kind == "simulated":
             sim = replay_bench(replay) if replay is not None else simulated_bench(profile)
             stack.enter_context(sim)
-            resources = [_simulated_resource(p, sim.resources, profile) for p in plans]
+            plan = plans[0]  # every simulated instrument is asked once, however many roles look for one
+            identities = {r: identify(r, backend=plan.backend, timeout_s=plan.timeout_s)
+                          for r in sim.resources.values()}
+            resources = [_simulated_resource(p, d, identities, profile) for p, d in zip(plans, drivers)]
         else:
             resources = [p.resource for p in plans]
         roles = []

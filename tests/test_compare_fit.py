@@ -4,8 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy.linalg import toeplitz
+from scipy.signal import lfilter
+from scipy.stats import t as student_t
 
+import acqd.compare.fit as fit_module
 from acqd.compare import compare
+from acqd.compare.fit import autocovariance, bartlett_lag, bartlett_noise_term, noise_covariance
 from acqd.record import Stimulus, TimeBase
 from test_compare_synthetic import difference_channel, make_record, series_rlc_nodes
 
@@ -14,28 +19,117 @@ STIMULUS = Stimulus("square", 0.0, 1.0, 200.0, "rising")
 TWO_CHANNELS = {"v_c": "v_c", "v_r": "v_src - v_rl"}
 
 
+SCOPE_BANDWIDTH_SHARE = 0.03  # first-order bandwidth limit at 3 % of the sample rate
+SCOPE_CHANNELS = {"v_c": "v_c", "v_src": "v_src", "v_rl": "v_rl"}
+
+
 def kt9_record(seed: int, n: int = 2000, noise_v: float = 0.008, values: dict | None = None):
     """v_c plus the resistor drop v_src − v_rl from two quantised earth-referenced channels."""
     tb = TimeBase(1.2e-3 / n, n // 5, n)
     nodes = series_rlc_nodes(tb.times(), **(values or TRUE))
-    record = make_record(nodes, tb, STIMULUS, {"v_c": "v_c", "v_src": "v_src", "v_rl": "v_rl"},
-                         noise_v=noise_v, seed=seed, quantise=True)
+    record = make_record(nodes, tb, STIMULUS, SCOPE_CHANNELS, noise_v=noise_v, seed=seed, quantise=True)
     return difference_channel(record, "v_src", "v_rl", "v_r")
 
 
-def test_95_percent_intervals_cover_the_truth_in_at_least_90_of_100_trials():
+def lowpassed_noise(rng: np.random.Generator, n: int, noise_v: float, bandwidth_share: float) -> np.ndarray:
+    """White noise through a first-order low-pass (the sampled RC, common practice):
+    y_k = y_(k−1) + a·(x_k − y_(k−1)), a = 1 − e^(−2π·f_c·Δt); started 20 time constants early so that it
+    is stationary throughout."""
+    a = 1 - np.exp(-2 * np.pi * bandwidth_share)
+    early = int(20 / a)
+    return lfilter([a], [1, a - 1], rng.normal(0.0, noise_v, n + early))[early:]
+
+
+def kt9_record_bandlimited(seed: int, n: int = 2000, noise_v: float = 0.008):
+    """As ``kt9_record``, but the noise passes the scope's bandwidth limit before the 8-bit conversion, so
+    neighbouring samples share it (8 mV white becomes about 2.4 mV, below the 8 mV code step, which makes
+    the quantisation error itself follow the trace for several samples)."""
+    tb = TimeBase(1.2e-3 / n, n // 5, n)
+    nodes = series_rlc_nodes(tb.times(), **TRUE)
+    rng = np.random.default_rng(seed)
+    noisy = {k: nodes[k] + lowpassed_noise(rng, n, noise_v, SCOPE_BANDWIDTH_SHARE) for k in SCOPE_CHANNELS}
+    record = make_record(noisy, tb, STIMULUS, SCOPE_CHANNELS, quantise=True)
+    return difference_channel(record, "v_src", "v_rl", "v_r")
+
+
+def _coverage(make_record_of_seed, seeds, monkeypatch) -> tuple[dict, dict, np.ndarray]:
+    """Trials whose 95 % interval holds the truth, as reported and as the white-noise s²·(JᵀJ)⁻¹ would have
+    had it from the same Jacobian and residuals, and each fit's width ratio reported / white-noise."""
+    seen = {}
+
+    def spy(jac, residuals, channels):
+        seen.update(jac=jac, residuals=residuals)
+        return noise_covariance(jac, residuals, channels)
+
+    monkeypatch.setattr(fit_module, "noise_covariance", spy)
+    hits, white_hits, ratios = dict.fromkeys(TRUE, 0), dict.fromkeys(TRUE, 0), []
+    for seed in seeds:
+        fit = compare(make_record_of_seed(seed), {"model": "series_rlc", **TRUE}, TWO_CHANNELS,
+                      fit={"free": list(TRUE)}).fit
+        assert fit.held_fixed == {} and fit.fitted == tuple(TRUE)  # columns of J in TRUE's order, all ln
+        jac, r = seen["jac"], seen["residuals"]
+        dof = jac.shape[0] - jac.shape[1]
+        white_se = np.sqrt(np.diag(r @ r / dof * np.linalg.inv(jac.T @ jac)))
+        tq = student_t.ppf(0.975, dof)
+        for i, (name, true) in enumerate(TRUE.items()):
+            lo, hi = fit.ci95[name]
+            hits[name] += lo <= true <= hi
+            white_hits[name] += abs(np.log(fit.values[name] / true)) <= tq * white_se[i]
+        ratios.append([np.log(fit.ci95[n][1] / fit.ci95[n][0]) / (2 * tq * se) for n, se in zip(TRUE, white_se)])
+    return hits, white_hits, np.array(ratios)
+
+
+def test_95_percent_intervals_cover_the_truth_in_at_least_90_of_100_trials(monkeypatch):
     # Statistics (any regression text): with white noise and a correct model, a 95 % interval contains the
     # true value in about 95 % of repeated experiments; ≥ 90 of 100 allows for the binomial spread
     # (σ ≈ 2.2 trials) and for the 8-bit quantisation, which is not Gaussian.
-    hits = dict.fromkeys(TRUE, 0)
-    for seed in range(100):
-        result = compare(kt9_record(seed), {"model": "series_rlc", **TRUE}, TWO_CHANNELS,
-                         fit={"free": list(TRUE)})
-        assert result.fit.held_fixed == {}
-        for name, true in TRUE.items():
-            lo, hi = result.fit.ci95[name]
-            hits[name] += lo <= true <= hi
+    hits, _, ratios = _coverage(kt9_record, range(100), monkeypatch)
     assert all(count >= 90 for count in hits.values()), hits
+    # Newey & West (1987): with uncorrelated noise the lag-weighted covariance estimates what s²·(JᵀJ)⁻¹
+    # does, so on white noise the intervals stay as wide as before, within the estimates' scatter.
+    assert np.all(np.abs(np.median(ratios, axis=0) - 1) < 0.05), np.median(ratios, axis=0)
+
+
+def test_intervals_hold_with_band_limited_quantised_noise_where_white_noise_ones_do_not(monkeypatch):
+    # Common practice: a 95 % interval must hold the truth in ≥ 90 of 100 seeded trials (binomial spread
+    # σ ≈ 2.2 trials at 95 %). Noise low-passed by the scope's bandwidth and then 8-bit quantised is
+    # correlated over tens of samples; the covariance with Bartlett-weighted residual autocovariance
+    # (Newey & West 1987) must cover, and s²·(JᵀJ)⁻¹ from the same fits must not: ≤ 80 of 100 is below
+    # 95 % by more than 6 σ (it holds about 57), so this test fails if the correction is lost.
+    hits, white_hits, _ = _coverage(kt9_record_bandlimited, range(100), monkeypatch)
+    assert all(count >= 90 for count in hits.values()), hits
+    assert all(count <= 80 for count in white_hits.values()), white_hits
+
+
+def test_noise_covariance_is_the_bartlett_weighted_sum_within_each_channel():
+    # Newey & West (1987) Bartlett weights 1 − l/(L+1) on the residual autocovariance, written out as a
+    # Toeplitz matrix; the FFT version must give the same J'ΣJ, and two channels must add, not mix.
+    rng = np.random.default_rng(0)
+    jac = rng.normal(size=(2 * 300, 3))
+    residuals = lfilter([0.3], [1, -0.7], rng.normal(size=2 * 300))
+    cov, lags = noise_covariance(jac, residuals, channels=2)
+    meat = np.zeros((3, 3))
+    for block, (j, r) in enumerate(zip(np.split(jac, 2), np.split(residuals, 2))):
+        gamma = np.array([r[lag:] @ r[:300 - lag] for lag in range(300)]) / 300
+        assert autocovariance(r) == pytest.approx(gamma, abs=1e-12)
+        assert lags[block] == bartlett_lag(gamma) > 0
+        weights = np.clip(1 - np.arange(300) / (lags[block] + 1), 0, None)
+        explicit = j.T @ toeplitz(weights * gamma) @ j
+        assert bartlett_noise_term(j, gamma, lags[block]) == pytest.approx(explicit, rel=1e-10)
+        meat += explicit
+    bread = np.linalg.inv(jac.T @ jac)
+    assert cov == pytest.approx(600 / 597 * bread @ meat @ bread, rel=1e-10)
+    assert np.all(np.linalg.eigvalsh(cov) > 0)
+
+
+def test_one_channel_at_lag_zero_is_the_white_noise_covariance():
+    # Regression textbook: for uncorrelated residuals the covariance is s²·(JᵀJ)⁻¹, s² = SSR / (m − p).
+    rng = np.random.default_rng(1)
+    jac, residuals = rng.normal(size=(500, 2)), rng.normal(size=500)
+    gamma = autocovariance(residuals)
+    white = residuals @ residuals / 498 * np.linalg.inv(jac.T @ jac)
+    bread = np.linalg.inv(jac.T @ jac)
+    assert 500 / 498 * bread @ bartlett_noise_term(jac, gamma, 0) @ bread == pytest.approx(white, rel=1e-12)
 
 
 def _same_optimum(result, reference) -> None:

@@ -211,7 +211,7 @@ def _fit(setup: _Setup, edge: Edge) -> FitResult:
         return ((setup.measured - predicted) / weights).ravel()
 
     hold_order = (*spec.fit.hold, *DEFAULT_HOLD.get(spec.model, ()))
-    return fit_parameters(residuals_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,))
+    return fit_parameters(residuals_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,), len(setup.mapping))
 
 
 def _polarity(model: StateSpace, probe: Probe, gain: float, edge: Edge, span: float) -> str | None:

@@ -11,10 +11,20 @@ not change (with only v_C of a series RLC, L·C and R·C are all the data fix). 
 direction is then held at its nominal value — the caller's choice, else the model's documented default —
 and the reason is recorded; nothing unidentifiable is fitted silently.
 
-Uncertainty: covariance = s²·(JᵀJ)⁻¹ with the solver's Jacobian at the solution and s² the weighted
-residual variance (sum of squares / (samples − parameters)); 95 % intervals use Student's t. On a log
-coordinate the interval is exp(ln p ± t·se), so it is asymmetric about p. They assume white noise: a
-scope's bandwidth limit correlates neighbouring samples, which makes them too narrow.
+Uncertainty: s²·(JᵀJ)⁻¹ assumes white noise, but a scope's bandwidth limit low-pass filters the
+noise, and 8-bit quantisation of a slowly changing trace gives an error that neighbouring samples share;
+then it is too narrow (on low-passed 8-bit records its 95 % intervals held the truth in about 57 of 100).
+So the covariance is (JᵀJ)⁻¹·JᵀΣJ·(JᵀJ)⁻¹·m/(m − p), the least-squares covariance under stationary
+correlated noise of covariance matrix Σ (Seber & Wild 1989, Nonlinear Regression, ch. 6), with the
+solver's Jacobian J at the solution, m samples and p parameters. Σ is estimated per channel from that
+channel's own residuals: their autocovariance at lag l, weighted by the Bartlett kernel 1 − l/(L+1) up to
+lag L (Newey & West 1987, Econometrica 55(3):703–708; the weights keep the estimate positive
+semi-definite), with L from Newey & West's plug-in rule (1994, Review of Economic Studies 61(4):631–653).
+For white noise L is a few samples and the result is s²·(JᵀJ)⁻¹ within its scatter. Newey & West's own
+sandwich, which weights each product r_i·r_(i+l) by J_i·J_(i+l)ᵀ, came out biased narrow here (about 85
+of 100): the Jacobian of a step response lives in the short transient, so few products inform it, while
+the residual autocovariance draws on every sample of the channel. 95 % intervals use Student's t with
+m − p degrees of freedom. On a log coordinate the interval is exp(ln p ± t·se), asymmetric about p.
 """
 
 from __future__ import annotations
@@ -23,7 +33,9 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.fft import irfft, next_fast_len, rfft
 from scipy.optimize import least_squares
+from scipy.signal import fftconvolve
 from scipy.stats import t as student_t
 
 from ..errors import AcqdError
@@ -31,6 +43,7 @@ from ..errors import AcqdError
 RANK_RTOL = 1e-6  # singular values below this share of the largest count as zero
 DIFF_STEP = 1e-4  # central-difference step on the (dimensionless) fit coordinates, for the rank test
 PARTICIPATION_MIN = 0.1  # share of a null direction a parameter must carry to be a candidate to hold
+NW94_BARTLETT_GAMMA = 1.1447  # Newey & West (1994), Bartlett kernel: L = ⌊1.1447·(ŝ¹/ŝ⁰)^(2/3)·T^(1/3)⌋
 
 
 class FitError(AcqdError):
@@ -69,6 +82,7 @@ class FitResult:
     rank: int
     weighting: str
     residual_scale: float  # √(weighted SSR / (m − p)); near 1 when noise weighting and model are right
+    noise_lags: tuple[int, ...]  # per channel, the Bartlett lag L (samples) of the noise covariance
     evaluations: int
     success: bool
     message: str
@@ -130,12 +144,74 @@ def _hold_unidentifiable(jac: np.ndarray, coords: _Coordinates, hold_order: Sequ
     return keep, held
 
 
-def _uncertainty(jac: np.ndarray, residuals: np.ndarray, theta: np.ndarray, coords: _Coordinates
-                 ) -> tuple[dict[str, float], dict[str, tuple[float, float]], dict[str, dict[str, float]], float]:
+def autocovariance(residuals: np.ndarray) -> np.ndarray:
+    """γ̂(l) = (1/n)·Σ_i r_i·r_(i+l) for l = 0 … n−1, by FFT (O(n log n) at any lag).
+
+    Divided by n, not n − l, the sequence is positive semi-definite. So are the Bartlett weights (their
+    transform, the Fejér kernel, is never negative) and so is the product of two such sequences (Schur
+    product theorem): the noise covariance built from them is never indefinite, which is why Newey & West
+    (1987) use that kernel.
+    """
+    n = len(residuals)
+    size = next_fast_len(2 * n - 1, real=True)
+    spectrum = rfft(residuals, size)
+    return irfft(spectrum * spectrum.conj(), size)[:n] / n
+
+
+def bartlett_lag(gamma: np.ndarray) -> int:
+    """Newey & West (1994) plug-in lag for the Bartlett kernel, from one channel's residual autocovariance.
+
+    Their rule for T samples: pre-lag n = ⌊4·(T/100)^(2/9)⌋, ŝ⁰ = γ₀ + 2·Σ_{j≤n} γ_j,
+    ŝ¹ = 2·Σ_{j≤n} j·γ_j, L = ⌊1.1447·(ŝ¹/ŝ⁰)^(2/3)·T^(1/3)⌋. White noise gives a few samples, a scope's
+    bandwidth limit tens. Taken from the residuals, every sample of the channel informs it.
+    """
+    n = len(gamma)
+    j = np.arange(1, min(int(4 * (n / 100) ** (2 / 9)), n - 1) + 1)
+    s0 = gamma[0] + 2 * gamma[j].sum()
+    s1 = 2 * (j * gamma[j]).sum()
+    if s0 == 0:
+        return 0  # residuals all zero: no noise to correlate
+    return int(min(NW94_BARTLETT_GAMMA * np.cbrt((s1 / s0) ** 2 * n), n - 1))
+
+
+def bartlett_noise_term(jac: np.ndarray, gamma: np.ndarray, lag: int) -> np.ndarray:
+    """JᵀΣJ for one channel, Σ_ik = w_l·γ(l) at l = |i − k|, Bartlett weights w_l = 1 − l/(L+1), 0 past L.
+
+    Σ·J is each Jacobian column convolved with the 2L+1 weighted autocovariances, done by FFT, so the
+    cost grows as n log n whatever the lag.
+    """
+    half = (1 - np.arange(lag + 1) / (lag + 1)) * gamma[:lag + 1]
+    kernel = np.concatenate([half[:0:-1], half])
+    term = jac.T @ fftconvolve(jac, kernel[:, None], mode="same", axes=0)
+    return (term + term.T) / 2
+
+
+def noise_covariance(jac: np.ndarray, residuals: np.ndarray, channels: int) -> tuple[np.ndarray, tuple[int, ...]]:
+    """Covariance of the fitted coordinates under noise that is correlated in time, and each channel's lag.
+
+    (JᵀJ)⁻¹·(Σ over channels of JᵀΣJ)·(JᵀJ)⁻¹·m/(m − p): least squares under stationary correlated noise
+    (Seber & Wild 1989, Nonlinear Regression, ch. 6), each channel's Σ from its own residuals. The lag sums
+    stay within a channel: the last sample of one and the first of the next are not neighbours in time.
+    m/(m − p) makes it exactly s²·(JᵀJ)⁻¹ for one channel at lag 0.
+    """
+    m, p = jac.shape
+    if m % channels:
+        raise FitError(f"fit: {m} residuals do not split into {channels} channels of equal length")
+    meat, lags = np.zeros((p, p)), []
+    for block_jac, block_r in zip(np.split(jac, channels), np.split(residuals, channels)):
+        gamma = autocovariance(block_r)
+        lags.append(bartlett_lag(gamma))
+        meat += bartlett_noise_term(block_jac, gamma, lags[-1])
+    bread = np.linalg.pinv(jac.T @ jac)
+    return m / max(m - p, 1) * bread @ meat @ bread, tuple(lags)
+
+
+def _uncertainty(jac: np.ndarray, residuals: np.ndarray, theta: np.ndarray, coords: _Coordinates, channels: int
+                 ) -> tuple[dict[str, float], dict[str, tuple[float, float]], dict[str, dict[str, float]], float,
+                            tuple[int, ...]]:
     m, p = jac.shape
     dof = max(m - p, 1)
-    s2 = float(residuals @ residuals) / dof
-    cov = s2 * np.linalg.pinv(jac.T @ jac)
+    cov, lags = noise_covariance(jac, residuals, channels)
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     tq = float(student_t.ppf(0.975, dof))
     values = coords.decode(theta)
@@ -150,14 +226,17 @@ def _uncertainty(jac: np.ndarray, residuals: np.ndarray, theta: np.ndarray, coor
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(se, se)
     correlations = {a: {b: float(corr[i, j]) for j, b in enumerate(coords.names)} for i, a in enumerate(coords.names)}
-    return errors, intervals, correlations, float(np.sqrt(s2))
+    return errors, intervals, correlations, float(np.sqrt(float(residuals @ residuals) / dof)), lags
 
 
 def fit_parameters(residuals_of: Callable[[dict[str, float]], np.ndarray], free: Mapping[str, Free],
-                   hold_order: Sequence[str], weighting: str, nuisance: Sequence[str] = ()) -> FitResult:
+                   hold_order: Sequence[str], weighting: str, nuisance: Sequence[str] = (),
+                   channels: int = 1) -> FitResult:
     """Least squares over ``free``, starting from each one's ``start``.
 
-    ``residuals_of(values)`` returns the weighted residual vector for the free quantities' ``values``.
+    ``residuals_of(values)`` returns the weighted residual vector for the free quantities' ``values``: the
+    residuals of ``channels`` channels of equal length, one channel after the other (what ``ravel`` of a
+    (channel, sample) array gives), so the covariance pairs neighbours in time only within a channel.
     """
     names = tuple(free)
     coords = _Coordinates(names, tuple(free[n].log for n in names), tuple(free[n].scale for n in names))
@@ -180,9 +259,10 @@ def fit_parameters(residuals_of: Callable[[dict[str, float]], np.ndarray], free:
     sub = coords.subset(keep)
     fun = fun_for(sub)
     solution = least_squares(fun, sub.encode(start), method="trf", x_scale=1.0)
-    errors, intervals, correlations, scale = _uncertainty(solution.jac, solution.fun, solution.x, sub)
+    errors, intervals, correlations, scale, lags = _uncertainty(solution.jac, solution.fun, solution.x, sub,
+                                                               channels)
     return FitResult(tuple(keep), held, start, {n: free[n].unit for n in names},
                      tuple(n for n in nuisance if n in keep), sub.decode(solution.x), errors, intervals,
                      correlations, rel, float(1 / rel[-1]) if rel[-1] > 0 else float("inf"),
-                     int(sum(v > RANK_RTOL for v in rel)), weighting, scale, int(solution.nfev),
+                     int(sum(v > RANK_RTOL for v in rel)), weighting, scale, lags, int(solution.nfev),
                      bool(solution.success), str(solution.message))

@@ -90,6 +90,19 @@ def test_series_rlc_closed_form_vc_and_il():
     assert np.max(np.abs(y[:, model.output_index("i_l")] - ref["i_l"])) < 1e-14
 
 
+def test_long_step_matches_the_closed_form():
+    # Textbook closed form (DESIGN.md §4), over 1,000,003 samples: the constant-run path builds the states
+    # from powers of Ad found by repeated squaring, and its blocks do not divide this length evenly.
+    from acqd.models import discretise, propagate
+
+    model = build_model(MODEL_TABLES["series_rlc"], "test")
+    t = np.arange(1_000_003) * 1.5e-9
+    x = propagate(discretise(model, 1.5e-9, "zoh"), np.ones(len(t)), np.zeros(2))
+    ref = series_rlc_nodes(t, 22.0, 3.3e-3, 100e-9, 50.0)
+    assert np.max(np.abs(x[:, 0] - ref["v_c"])) < 1e-11  # volts, of a 1 V step
+    assert np.max(np.abs(x[:, 1] - ref["i_l"])) < 1e-13  # amperes, of a 4 mA peak
+
+
 def test_edge_between_samples_is_exact():
     # An ideal step 0.37 of a sample after the trigger: the closed form shifted by the same delay.
     model = build_model(MODEL_TABLES["series_rlc"], "test")

@@ -135,30 +135,50 @@ MIN_CONSTANT_RUN = 64  # shorter runs are cheaper stepped than set up
 
 
 def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
-    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d``; False if Ad has an eigenvalue of 1.
+    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d``; False if Ad has an eigenvalue of 1 (or
+    ``out`` is not one contiguous block), for the general recursion to do instead.
 
-    With B = ⌈√N⌉, x[jB + k] − x_ss = Ad^k · s_j where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
-    N/B block starts, then one (N/B × n)·(n × B·n) product writes every state in sample order.
+    With B = ⌈√N⌉, x[jB + k] = Ad^k · s_j + x_ss where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
+    N/B block starts (both by repeated doubling, so a few dozen small products), then one
+    (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes every state in sample order straight
+    into ``out``. For a long record that product is the whole cost: one pass of writing the states.
     """
     n_samples, n = out.shape
     eye = np.eye(n)
-    if np.linalg.cond(eye - ad) > 1e12:
-        return False
+    if not out.flags.c_contiguous or np.linalg.cond(eye - ad) > 1e12:
+        return False  # (the product below writes through a reshaped view of ``out``)
     x_ss = np.linalg.solve(eye - ad, d)
     block = int(np.ceil(np.sqrt(n_samples)))
-    powers = np.empty((block, n, n))
-    powers[0] = eye
-    for k in range(1, block):
-        powers[k] = powers[k - 1] @ ad
-    jump = powers[-1] @ ad
-    starts = np.empty((-(-n_samples // block), n))
-    starts[0] = out[0] - x_ss
-    for j in range(1, len(starts)):
-        starts[j] = jump @ starts[j - 1]
-    # weights[b, k·n + a] = (Ad^k)[a, b], so (starts @ weights)[j, k·n + a] = (Ad^k s_j)[a]
-    states = (starts @ powers.transpose(2, 0, 1).reshape(n, block * n)).reshape(-1, n)[:n_samples]
-    out[1:] = states[1:] + x_ss
+    powers = _powers(ad, block)  # Ad^0 .. Ad^(B-1)
+    starts = np.empty((-(-n_samples // block), n + 1))
+    starts[:, :n] = _powers(powers[-1] @ ad, len(starts)) @ (out[0] - x_ss)
+    starts[:, n] = 1.0
+    # weights[b, k·n + a] = (Ad^k)[a, b], and the last row x_ss[a], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
+    weights = np.empty((n + 1, block * n))
+    weights[:n] = powers.transpose(2, 0, 1).reshape(n, block * n)
+    weights[n] = np.tile(x_ss, block)
+    x0 = out[0].copy()
+    full = n_samples // block
+    np.matmul(starts[:full], weights, out=out[:full * block].reshape(full, block * n))
+    rest = n_samples - full * block
+    if rest:
+        out[full * block:] = (starts[full] @ weights[:, :rest * n]).reshape(rest, n)
+    out[0] = x0  # the product gives x[0] again, rounded; keep the caller's
     return True
+
+
+def _powers(matrix: np.ndarray, count: int) -> np.ndarray:
+    """matrix^0 .. matrix^(count−1), doubling the filled part each pass (log2(count) batched products)."""
+    n = len(matrix)
+    powers = np.empty((count, n, n))
+    powers[0] = np.eye(n)
+    filled, step = 1, matrix
+    while filled < count:
+        take = min(filled, count - filled)
+        np.matmul(powers[:take], step, out=powers[filled:filled + take])
+        filled += take
+        step = step @ step
+    return powers
 
 
 def _recursion(ad: np.ndarray, drive: np.ndarray, x0: np.ndarray, out: np.ndarray) -> np.ndarray:

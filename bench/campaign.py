@@ -6,27 +6,30 @@ in-process simulated bench would compete with the daemon for the interpreter loc
 instrument does; ``--in-process`` measures that case too). Both sides use the same profile, a visa bench
 pointing at the child's servers.
 
-1. bare step test: the profile's step test with the bench opened once, ``--bare`` times back to back.
-2. what the daemon adds, each part timed on its own in the same run: comparing (the comparator on a record
-   of step 1), storing (``RecordStore.append`` with the profile's fsync), logging (one slot's run-log lines
-   and ledger transactions). The daemon compares and stores in its keeper thread while the next step test
-   runs, so these parts overlap the step test instead of adding to it; they are printed to show what is
-   being hidden.
-3. the daemon: a back-to-back campaign of ``--slots`` slots on the same profile, run by ``Daemon``, once
-   with the comparator and once with nothing to compare; the time per slot is the median time from one
-   slot's start to the next one's (from the ledger), and the resident set size (``VmRSS`` of
-   /proc/self/status) is read as slot 1 and the last slot end. The bare step test is timed one by one,
-   half before and half after the daemon runs, and its median taken: other processes on a shared
-   machine come and go, and medians of interleaved-in-time samples are what stays comparable.
+1. rounds (``--rounds``, default 10), each of three parts in turn, their order reversed every other round:
+   a block of ``--bare`` bare step tests (the profile's step test, bench opened once, back to back); a
+   back-to-back campaign of ``--round-slots`` slots run by ``Daemon`` with the comparator; the same
+   campaign with nothing to compare. The daemon's time per slot is the median time from one slot's start
+   to the next one's (from the ledger), the bare step test's the median of its block. Overhead = daemon
+   time per slot / bare step-test time − 1, per round; the median over rounds is the figure. Other
+   processes on a shared machine come and go: ratios of neighbours in time are what stays comparable.
+2. a long campaign of ``--slots`` slots (with the comparator) between two more bare blocks, for memory:
+   the resident set size (``VmRSS`` of /proc/PID/status) of the daemon's process plus its comparator
+   worker, read as slot 1 and the last slot end.
+3. what the daemon adds, each part timed on its own: comparing (the comparator on records of the bench,
+   in the daemon's process and through the worker process as the keeper waits for it), storing
+   (``RecordStore.append`` with the profile's fsync), logging (one slot's run-log lines and ledger
+   transactions). The keeper does these beside the next step test, so they overlap it instead of adding
+   to it; they are printed to show what is being hidden.
 
-Overhead = daemon time per slot / bare step-test time − 1. Targets: overhead under 20 %, memory growth
-under 20 MB.
+Targets: overhead under 20 %, memory growth under 20 MB.
 
 With ``--instrument-time`` the simulated scope completes an acquisition when a real one would (the next
 edge of the 200 Hz stimulus, then the window), so the step test waits on the instrument as on a real bench
 and the keeper's work can overlap it; without it the step test is pure CPU, the daemon's worst case.
 
-    python bench/campaign.py [--slots 2000] [--bare 200] [--samples 1500] [--in-process] [--instrument-time]
+    python bench/campaign.py [--rounds 10] [--round-slots 100] [--bare 40] [--slots 2000] [--samples 1500]
+                             [--in-process] [--instrument-time]
 """
 
 from __future__ import annotations
@@ -45,6 +48,7 @@ from typing import Any
 from rich.console import Console
 
 from acqd.benchsession import open_bench
+from acqd.campaign.comparing import ComparatorProcess
 from acqd.campaign.daemon import Daemon
 from acqd.campaign.ledger import FILENAME, Ledger
 from acqd.campaign.runlog import RunLog
@@ -133,11 +137,17 @@ def serve(conn: Any, instrument_time: bool) -> None:
     bench.stop()
 
 
-def rss_mb() -> float:
-    for line in Path("/proc/self/status").read_text().splitlines():
+def rss_mb(pid: int | str = "self") -> float:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith("VmRSS:"):
             return int(line.split()[1]) / 1024
-    raise RuntimeError("no VmRSS in /proc/self/status")
+    raise RuntimeError(f"no VmRSS in /proc/{pid}/status")
+
+
+def daemon_rss_mb() -> float:
+    """This process and its comparator workers (the simulated bench's process is not the daemon's)."""
+    workers = [p.pid for p in multiprocessing.active_children() if p.name == "acqd-comparator"]
+    return rss_mb() + sum(rss_mb(pid) for pid in workers)
 
 
 def timed(func: Any) -> float:
@@ -157,16 +167,19 @@ class MeasuredDaemon(Daemon):
     """The daemon, also noting the resident set size as each slot ends (from its own run-log events)."""
 
     rss_at_slot: dict[int, float]
+    last_slot: int
 
     def _echo(self, entry: dict[str, Any]) -> None:
-        if entry["event"] == "slot_done":
-            self.rss_at_slot[entry["slot"]] = rss_mb()
+        if entry["event"] == "slot_done" and entry["slot"] in (1, self.last_slot):
+            self.rss_at_slot[entry["slot"]] = daemon_rss_mb()
 
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--slots", type=int, default=2000)
-    ap.add_argument("--bare", type=int, default=200)
+    ap.add_argument("--rounds", type=int, default=10)
+    ap.add_argument("--round-slots", type=int, default=100)
+    ap.add_argument("--bare", type=int, default=40, help="bare step tests per block")
+    ap.add_argument("--slots", type=int, default=2000, help="slots of the long campaign (memory)")
     ap.add_argument("--samples", type=int, default=1500)
     ap.add_argument("--in-process", action="store_true", help="simulated bench inside this process")
     ap.add_argument("--instrument-time", action="store_true",
@@ -189,55 +202,88 @@ def main() -> int:
         server.join(10)
 
 
+def write_profiles(work: Path, bench_table: str, samples: int, slots: int) -> tuple[Path, Path]:
+    """The campaign profile, and the same campaign with no model in [dut] (nothing compared)."""
+    text = PROFILE.format(bench=bench_table, samples=samples, slots=slots)
+    compared, uncompared = work / f"compared-{slots}.toml", work / f"uncompared-{slots}.toml"
+    compared.write_text(text)
+    uncompared.write_text(text.split("[dut]")[0] + "[campaign]" + text.split("[campaign]")[1])
+    return compared, uncompared
+
+
+def bare_block(profile: Any, count: int) -> float:
+    """Median time of ``count`` bare step tests, the bench opened once (and one warm-up test)."""
+    with open_bench(profile) as bench:
+        run_step_test(profile, bench.generator, bench.scope)
+        return statistics.median(timed(lambda: run_step_test(profile, bench.generator, bench.scope))
+                                 for _ in range(count))
+
+
 def measure(args: argparse.Namespace, bench_table: str, where: str) -> int:
     work = Path(tempfile.mkdtemp(prefix="acqd-campaign-bench-"))
-    path = work / "bench.toml"
-    path.write_text(PROFILE.format(bench=bench_table, samples=args.samples, slots=args.slots))
-    profile = load_profile(path)
-    uncompared = work / "uncompared.toml"  # the same campaign with no model in [dut]: nothing compared
-    uncompared.write_text(path.read_text().split("[dut]")[0] + "[campaign]" + path.read_text().split("[campaign]")[1])
+    short = write_profiles(work, bench_table, args.samples, args.round_slots)
+    long_compared, _ = write_profiles(work, bench_table, args.samples, args.slots)
+    profile = load_profile(long_compared)
+    print(f"{where}; {args.samples} samples x 2 channels, fsync={profile.output.fsync}, campaigns back to back")
+    print(f"{'round':>5s} {'bare step test':>15s} {'daemon + comparator':>24s} {'daemon, nothing compared':>26s}")
+    overheads: dict[str, list[float]] = {"compared": [], "nothing": []}
+    for n in range(1, args.rounds + 1):
+        parts = {"bare": lambda: bare_block(profile, args.bare),
+                 "compared": lambda: run_daemon(short[0], work / f"round{n}-compared", args.round_slots)[0],
+                 "nothing": lambda: run_daemon(short[1], work / f"round{n}-nothing", args.round_slots)[0]}
+        order = list(parts) if n % 2 else list(reversed(parts))
+        t = {name: parts[name]() for name in order}
+        for name in overheads:
+            overheads[name].append(t[name] / t["bare"] - 1)
+        print(f"{n:5d} {1e3 * t['bare']:12.2f} ms {1e3 * t['compared']:11.2f} ms {100 * overheads['compared'][-1]:+7.1f} % "
+              f"{1e3 * t['nothing']:11.2f} ms {100 * overheads['nothing'][-1]:+7.1f} %")
+    for name, label in (("compared", "daemon + comparator"), ("nothing", "daemon, nothing compared")):
+        o = overheads[name]
+        print(f"{label + ' overhead, median of rounds':44s} {100 * statistics.median(o):5.1f} %   "
+              f"(rounds {100 * min(o):+.1f} .. {100 * max(o):+.1f} %; target < 20 %)")
 
+    before = bare_block(profile, args.bare)
+    slot_s, rss = run_daemon(long_compared, work / "long", args.slots)
+    after = bare_block(profile, args.bare)
+    bare_s = statistics.median([before, after])
+    print(f"long campaign, {args.slots} slots with the comparator: {1e3 * slot_s:.2f} ms per slot against "
+          f"{1e3 * before:.2f} / {1e3 * after:.2f} ms bare before / after: overhead {100 * (slot_s / bare_s - 1):.1f} %")
+    print(f"   RSS of the daemon + its comparator worker at slot 1: {rss[1]:.1f} MB, at slot {args.slots}: "
+          f"{rss[args.slots]:.1f} MB, growth {rss[args.slots] - rss[1]:+.1f} MB (target < 20 MB)")
+    print_parts(work, profile, bare_s)
+    return 0
+
+
+def print_parts(work: Path, profile: Any, bare_s: float) -> None:
+    """The keeper's parts, each timed on its own, as shares of the bare step test."""
     with open_bench(profile) as bench:
-        run_step_test(profile, bench.generator, bench.scope)  # warm-up: connections, first allocations
-        bare = [timed(lambda: run_step_test(profile, bench.generator, bench.scope)) for _ in range(args.bare)]
         records = [run_step_test(profile, bench.generator, bench.scope)[0] for _ in range(50)]
     judge = make_judge(profile)
     compare_s = statistics.median(timed(lambda: judge(r)) for r in records)  # each record once, as the daemon
+    worker = ComparatorProcess(profile)
+    try:
+        worker(records[0])  # started
+        worker_s = statistics.median(timed(lambda: worker(r)) for r in records)
+    finally:
+        worker.close()
     record = records[0]
     record.analysis = judge(record)
     (work / "parts").mkdir()
     with RecordStore(work / "parts" / "store.h5", fsync=profile.output.fsync) as store:
         store_s = per_call_s(lambda: store.append(record), 200)
     log_s = per_call_s(_one_slot_of_logging(work / "parts"), 200)
-
-    results = [(label, *run_daemon(profile_path, work / profile_path.stem, args.slots)) for label, profile_path in
-               (("daemon, comparator without fit", path), ("daemon, nothing compared", uncompared))]
-    with open_bench(profile) as bench:  # the bare step test again, after: the machine's load drifts
-        run_step_test(profile, bench.generator, bench.scope)
-        bare += [timed(lambda: run_step_test(profile, bench.generator, bench.scope)) for _ in range(args.bare)]
-    bare_s = statistics.median(bare)
-
-    print(f"{where}; {args.samples} samples x 2 channels, fsync={profile.output.fsync}, {args.slots} slots back to back")
-    print("medians (robust to another process's burst of load): step tests one by one; daemon slots start to start")
-    print(f"{'bare step test':44s} {1e3 * bare_s:8.2f} ms   ({len(bare)} step tests, half before, half after)")
-    for label, slot_s, rss in results:
-        over = slot_s - bare_s
-        print(f"{label + ', per slot':44s} {1e3 * slot_s:8.2f} ms   overhead {1e3 * over:6.2f} ms = "
-              f"{100 * over / bare_s:5.1f} % of the bare step test (target < 20 %)")
-        if 1 in rss and args.slots in rss:
-            print(f"{'':44s} RSS at slot 1: {rss[1]:.1f} MB, at slot {args.slots}: {rss[args.slots]:.1f} MB, "
-                  f"growth {rss[args.slots] - rss[1]:+.1f} MB (target < 20 MB)")
-    print("parts the keeper thread does beside the next step test (each timed alone):")
-    for name, part in (("  comparing", compare_s), ("  storing (append + fsync)", store_s),
+    print("parts the keeper does beside the next step test (each timed alone, as shares of the bare step test):")
+    for name, part in (("  comparing, in the daemon's process", compare_s),
+                       ("  comparing, through the comparator worker", worker_s),
+                       ("  storing (append + fsync)", store_s),
                        ("  logging (run log + ledger, one slot)", log_s)):
         print(f"{name:44s} {1e3 * part:8.2f} ms   {100 * part / bare_s:5.1f} %")
-    return 0
 
 
 def run_daemon(profile: Path, data: Path, slots: int) -> tuple[float, dict[int, float]]:
-    """(median time from one slot's start to the next one's, RSS in MB by slot)."""
+    """(median time from one slot's start to the next one's, RSS in MB at slot 1 and the last slot)."""
     daemon = MeasuredDaemon([profile], data, Console(file=open(os.devnull, "w")), live=False)
-    daemon.rss_at_slot = {}
+    daemon.rss_at_slot, daemon.last_slot = {}, slots
     daemon.run()
     ledger = Ledger(data / FILENAME)
     rows = ledger.slots("bench")

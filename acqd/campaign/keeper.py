@@ -3,7 +3,9 @@
 Why a thread: the comparator and the store's fsync cost about a quarter of a fast step test, and the bench
 would wait for them. With the keeper, the next step test starts while the last record is being compared
 and written; on a real bench, where a step test mostly waits for the instruments, they overlap fully.
-The queue is short (``QUEUE_LENGTH``), so at most that many records wait in memory.
+The comparing itself is done by the campaign's comparator process (``comparing``): the keeper only waits
+for its answer, which leaves the interpreter to the step test. The queue is short (``QUEUE_LENGTH``), so at
+most that many records wait in memory.
 
 Per record, in order: tag it with the campaign, slot and step; compare it with the DUT model (the result
 goes into ``record.analysis``); append it to the store (durable when ``append`` returns); enter it in the

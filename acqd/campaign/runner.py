@@ -1,8 +1,9 @@
 """One campaign at work: decide which slot is due, and run its step tests.
 
 Each step (one stimulus setting and edge, so one record) is acquired here - retried with back-off after
-reconnecting the bench when an attempt fails - and handed to the campaign's ``Keeper``, which compares,
-stores and books it in its own thread while the next step test already runs. A kill at any point loses
+reconnecting the bench when an attempt fails - and handed to the campaign's ``Keeper``, which has it
+compared (by the ``ComparatorProcess``), stores and books it in its own thread while the next step test
+already runs. A kill at any point loses
 nothing acknowledged and doubles nothing: see ``reconcile``, ``Keeper`` and ``Ledger``.
 
 Stopping is cooperative: SIGTERM sets a flag (``StopFlag``) that is looked at between steps and during
@@ -29,6 +30,7 @@ from ..profile import Profile
 from ..record import Record
 from ..steptest import check_limits, run_step_test
 from ..store import RecordStore, open_records
+from .comparing import ComparatorProcess
 from .grid import Grid, make_grid
 from .keeper import Acquired, Keeper, SlotEnd
 from .ledger import CampaignRow, Ledger, SlotRow, verdict_text
@@ -121,7 +123,8 @@ class CampaignRunner:
         self.spec, self.name = spec, spec.name
         self.store_path = data_dir / f"{spec.name}.h5"
         self.ledger, self.runlog, self.stop = ledger, runlog, stop
-        self.judge = make_judge(spec.profile)  # validates [dut] before anything is started
+        self.judges = make_judge(spec.profile) is not None  # validates [dut] before anything is started
+        self.comparator: ComparatorProcess | None = None
         self.session = BenchSession(spec.profile, self._log)
         self.keeper: Keeper | None = None
         self.grid: Grid | None = None
@@ -156,7 +159,9 @@ class CampaignRunner:
         store = self._open_store()
         for note in store.notes:
             self._log("store_recovered", note=str(note))
-        self.keeper = Keeper(self.name, store, self._open_store, self.ledger, self.runlog, self.judge)
+        if self.judges:
+            self.comparator = ComparatorProcess(self.spec.profile)  # its start-up overlaps the bench opening
+        self.keeper = Keeper(self.name, store, self._open_store, self.ledger, self.runlog, self.comparator)
         self.reconcile(new=row is None)
         bench = self.session.get()
         for step in self.spec.steps:
@@ -385,6 +390,8 @@ class CampaignRunner:
         if self.keeper is not None:
             self.keeper.stop()
             self.keeper.store.close()
+        if self.comparator is not None:
+            self.comparator.close()
 
 
 def _parse(text: str | None) -> datetime | None:

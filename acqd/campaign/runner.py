@@ -3,8 +3,8 @@
 Each step (one stimulus setting and edge, so one record) is acquired here - retried with back-off after
 reconnecting the bench when an attempt fails - and handed to the campaign's ``Keeper``, which has it
 compared (by the ``ComparatorProcess``), stores and books it in its own thread while the next step test
-already runs. A kill at any point loses
-nothing acknowledged and doubles nothing: see ``reconcile``, ``Keeper`` and ``Ledger``.
+already runs. A kill at any point loses nothing acknowledged and doubles nothing: see ``reconcile``,
+``Keeper`` and ``Ledger``.
 
 Stopping is cooperative: SIGTERM sets a flag (``StopFlag``) that is looked at between steps and during
 back-off, so the step test in progress finishes - the generator output goes off at its end, as after every

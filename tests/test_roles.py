@@ -148,6 +148,9 @@ def test_trigger_that_never_comes_times_out_then_the_next_capture_works(bench, o
         acquire(scope, level_v=5.0, timeout_s=0.3)  # the stimulus never crosses 5 V
     text = one_line(info.value)
     assert text.startswith(bench.resources[DIALECTS[driver]]) and "not complete within 0.3 s" in text
+    # The driver's abort operation disarmed it (SCPI-1999 ABORt; the second dialect's ARM:HALT): a trigger
+    # arriving late cannot complete the abandoned acquisition.
+    assert getattr(bench, DIALECTS[driver]).acquisition.state == "IDLE"
     volts, timebase = acquire(scope)
     assert np.max(np.abs(volts - v_c_step(timebase.times(), 1.0))) <= LSB_V / 2 + 1e-6
 

@@ -56,6 +56,7 @@ class ViewScope(SCPIInstrument):
         setting("ARM:EDGE", "edge", Choice(("UP", "DOWN"))),
         setting("ARM:THReshold", "threshold_v", Number("V", -100.0, 100.0, default=0.0)),
         Cmd("ARM:SINGle", set="_arm"),
+        Cmd("ARM:HALT", set=lambda inst: inst.acquisition.abort()),
         Cmd("ARM:STATe", query=lambda inst: inst.acquisition.state),
         setting("DUMP:WIDTh", "width", Integer(minimum=8, maximum=16, default=8, allowed=tuple(WIDTHS))),
         Cmd("DUMP:VIEW<1-4>:CODes", query="_codes"),

@@ -13,6 +13,7 @@ import math
 import re
 import tomllib
 from collections.abc import Iterable, Mapping
+from datetime import date, datetime
 from pathlib import Path
 from typing import Any
 
@@ -109,6 +110,22 @@ class Table:
         if choices is not None and value not in (allowed := list(choices)):
             raise self.error(key, f"must be one of {', '.join(allowed)}, not {value!r}")
         return value
+
+    def moment(self, key: str, default: Any = None) -> datetime | None:
+        """A TOML date-time or ISO 8601 text; without an offset it is the machine's local time."""
+        value = self.raw(key, default)
+        if value is None:
+            return None
+        if isinstance(value, str):
+            try:
+                value = datetime.fromisoformat(value)
+            except ValueError:
+                raise self.error(key, f"must be an ISO 8601 date-time such as 2026-12-03T06:00:00+01:00, "
+                                      f"not {value!r}") from None
+        if not isinstance(value, datetime):
+            kind = "a date without a time" if isinstance(value, date) else repr(value)
+            raise self.error(key, f"must be a date-time such as 2026-12-03T06:00:00+01:00, not {kind}")
+        return value if value.tzinfo is not None else value.astimezone()
 
     def table(self, key: str, default: Any = ...) -> Table:
         value = self.raw(key, default)

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import time
+from datetime import UTC, datetime, timedelta
 
 import numpy as np
 import pytest
@@ -91,6 +92,28 @@ def test_capacitance_follows_the_stated_drift_at_the_capture_times(drifting):
     assert ratios[2] - ratios[0] > 0.5 * PER_HOUR * 0.5
 
 
+def test_drift_counted_from_since_carries_on_across_a_restarted_bench(sim_bench):
+    # The drift started two simulated hours ago (time_scale 3600: two real seconds); a bench started now, and
+    # one started again later, capture the part as it is by then, not a new one.
+    since = datetime.now(UTC) - timedelta(seconds=2.0)
+    table = {**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE,
+                                "since": since.isoformat()}}
+    for _ in range(2):
+        bench = sim_bench(table)
+        with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
+                open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
+            gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
+            gen.output(True)
+            scope.configure_timebase(WINDOW_S, N, SHARE)
+            scope.configure_channel("CH2", 1.0, 0.5, "dc")
+            scope.configure_trigger("external", "rising", 0.5)
+            ratio, before, after = capture(bench, scope)
+        # C = C0·(1 + per_hour·hours since `since`): at least 2 h, so at least +4 %, whichever bench
+        assert before >= 2 * 3600.0
+        low, high = (1 + PER_HOUR * s / 3600.0 for s in (before, after))
+        assert low - FIT_TOL <= ratio <= high + FIT_TOL, (ratio, low, high)
+
+
 def test_without_drift_the_plant_keeps_its_nominal_capacitance(sim_bench):
     bench = sim_bench(EXACT)
     with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
@@ -129,6 +152,7 @@ def test_a_parameter_drifted_out_of_its_range_stops_the_captures_with_300(sim_be
     ({"parameter": "c_f", "per_hour": "2 %"}, "bench.simulated.drift.per_hour", "finite number"),
     ({"parameter": "c_f", "per_hour": 0.02, "time_scale": 0}, "bench.simulated.drift.time_scale", "greater than 0"),
     ({"parameter": "c_f", "per_hour": 0.02, "rate": 1}, "bench.simulated.drift.rate", "allowed here"),
+    ({"parameter": "c_f", "per_hour": 0.02, "since": "last night"}, "bench.simulated.drift.since", "ISO 8601"),
     (3, "bench.simulated.drift", "must be a table"),
 ])
 def test_bad_drift_tables_are_one_line_naming_the_key(drift, field, words):

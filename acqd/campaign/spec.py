@@ -34,7 +34,7 @@ import json
 import re
 import zoneinfo
 from dataclasses import dataclass, replace
-from datetime import date, datetime, tzinfo
+from datetime import datetime, tzinfo
 from typing import Any
 
 import tzlocal
@@ -112,7 +112,7 @@ def load_campaign(profile: Profile) -> CampaignSpec:
     cron = _cron(t, zone) if schedule == "cron" else None
     if schedule == "back_to_back":
         t.boolean("back_to_back")
-    start = _when(t, "start")
+    start = t.moment("start")
     slots, until = _extent(t, start)
     misfire = t.string("misfire", "coalesce", choices=MISFIRE_POLICIES)
     grace = _grace(t, schedule, misfire, every_s)
@@ -182,30 +182,13 @@ def _cron(t: Table, zone: tzinfo) -> str:
     return expr
 
 
-def _when(t: Table, key: str) -> datetime | None:
-    """A TOML date-time or ISO 8601 text; without an offset it is the machine's local time."""
-    value = t.raw(key, None)
-    if value is None:
-        return None
-    if isinstance(value, str):
-        try:
-            value = datetime.fromisoformat(value)
-        except ValueError:
-            raise t.error(key, f"must be an ISO 8601 date-time such as 2026-12-03T06:00:00+01:00, "
-                               f"not {value!r}") from None
-    if not isinstance(value, datetime):
-        kind = "a date without a time" if isinstance(value, date) else repr(value)
-        raise t.error(key, f"must be a date-time such as 2026-12-03T06:00:00+01:00, not {kind}")
-    return value if value.tzinfo is not None else value.astimezone()
-
-
 def _extent(t: Table, start: datetime | None) -> tuple[int | None, datetime | None]:
     if t.has("slots") == t.has("until"):
         raise t.error("slots", "give exactly one of slots (how many) or until (a date-time); "
                                + ("both given" if t.has("slots") else "none given"))
     if t.has("slots"):
         return t.integer("slots", min=1), None
-    until = _when(t, "until")
+    until = t.moment("until")
     if start is not None and until <= start:
         raise t.error("until", f"must be after start ({start.isoformat()}), not {until.isoformat()}")
     return None, until

@@ -28,10 +28,14 @@ known drift in minutes:
 parameter     str    a scalar parameter of the DUT model (``c_f`` of ``series_rlc``: see acqd.models.PARAMETERS)
 per_hour      number relative change per simulated hour (0.02 = +2 %/h of the nominal value), linear in time
 time_scale    > 0    simulated seconds per real second (default 1; 3600 makes each real second an hour)
+since         date-time  the moment the drift starts (TOML date-time or ISO 8601 text); default: when the
+                     bench starts
 
-The drifted value is nominal × (1 + per_hour × simulated hours since the bench started), where nominal
-is the ``dut`` table's value (or the model's default) and simulated hours are real elapsed time ×
-``time_scale`` / 3600. The plant is rebuilt from the ``dut`` table with that value at every capture.
+The drifted value is nominal × (1 + per_hour × simulated hours since ``since``), where nominal is the
+``dut`` table's value (or the model's default) and simulated hours are real elapsed time × ``time_scale``
+/ 3600; before ``since`` it is nominal. Without ``since`` the drift starts with each bench: a daemon that
+closes the bench (after a fault, between slots further apart than keep_open_s, when it is restarted)
+starts the part new when it opens it again, so a campaign that should see one continuous drift gives it. The plant is rebuilt from the ``dut`` table with that value at every capture.
 Records carry real UTC time stamps, so ``acqd drift`` reports the parameter's slope per hour of *record*
 time: per_hour × time_scale × nominal, in the parameter's own unit (c_f nominal 68 nF, per_hour 0.02,
 time_scale 3600: 4.9 µF/h — the run takes seconds, not a night). When a falling parameter would reach
@@ -45,6 +49,7 @@ import inspect
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from types import MappingProxyType
 from typing import Any
 
@@ -77,13 +82,15 @@ class DriftConfig:
     parameter: str
     per_hour: float
     time_scale: float = 1.0
+    since: datetime | None = None  # drift counts from here; None: from when the bench started
 
     @classmethod
     def from_table(cls, table: Table) -> DriftConfig:
         values = cls(parameter=table.string("parameter"),
                      per_hour=table.number("per_hour", unit="relative change per simulated hour, 0.02 = +2 %/h"),
                      time_scale=table.number("time_scale", 1.0, positive=True,
-                                             unit="simulated seconds per real second"))
+                                             unit="simulated seconds per real second"),
+                     since=table.moment("since"))
         table.done()
         return values
 
@@ -271,20 +278,26 @@ class SimBench(ServedBench):
         """The plant as it is at this moment (``plant_source``; a drifting bench rebuilds it each time)."""
         return self.plant_source()
 
+    def _elapsed_real_s(self) -> float:
+        """Real seconds the drift has run: since its ``since`` (never negative), else since the bench started."""
+        drift = self.config.drift
+        if drift is not None and drift.since is not None:
+            return max((datetime.now(UTC) - drift.since).total_seconds(), 0.0)
+        return 0.0 if self._started_s is None else time.monotonic() - self._started_s
+
     def simulated_elapsed_s(self) -> float:
-        """Simulated seconds since the bench started: real seconds × the drift's ``time_scale`` (1 without)."""
+        """Simulated seconds the drift has run: real seconds × the drift's ``time_scale`` (1 without)."""
         if self._started_s is None:
             return 0.0
         scale = self.config.drift.time_scale if self.config.drift else 1.0
-        return (time.monotonic() - self._started_s) * scale
+        return self._elapsed_real_s() * scale
 
     def dut_now(self) -> dict[str, Any]:
         """The DUT table as the plant is built from it now: the drifting parameter at its present value."""
         dut = dict(self.config.dut)
         drift = self.config.drift
         if drift is not None and self._started_s is not None:
-            elapsed_real_s = time.monotonic() - self._started_s
-            dut[drift.parameter] = self.config.drift_nominal * drift.factor(elapsed_real_s)
+            dut[drift.parameter] = self.config.drift_nominal * drift.factor(self._elapsed_real_s())
         return dut
 
     def _drifted_plant(self) -> Plant:

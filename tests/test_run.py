@@ -266,7 +266,7 @@ def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path,
 
 def test_dut_mapping_to_a_channel_not_recorded_is_refused_up_front(tmp_path: Path,
                                                                    capsys: pytest.CaptureFixture) -> None:
-    path = profile_file(tmp_path, ('i_l = "i_l"', 'i_x = "i_l"'))
+    path = profile_file(tmp_path, ('v_rl = "v_rl"', 'i_x = "i_l"'))
     assert main(["run", str(path)]) == 2
     err = capsys.readouterr().err
     assert "dut.channels.i_x" in err and "v_src, v_rl, v_c, i_l" in err

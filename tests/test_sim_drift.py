@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
@@ -19,7 +21,8 @@ from scipy.optimize import least_squares
 from acqd.errors import ConfigError, InstrumentError
 from acqd.instruments import open_instrument
 from acqd.record import Stimulus
-from acqd.sim.bench import DEMO_DUT, SimBenchConfig
+from acqd.instruments import Scope
+from acqd.sim.bench import DEMO_DUT, SimBench, SimBenchConfig
 
 # The demo DUT behind the generator's 50 ohm: R, L fixed; C drifts.
 R_OHM, L_H, C0_F = DEMO_DUT["r_ohm"] + 50.0, DEMO_DUT["l_h"], DEMO_DUT["c_f"]
@@ -51,71 +54,10 @@ def fitted_c_ratio(t: np.ndarray, v: np.ndarray) -> float:
     return float(fit.x[0])
 
 
-@pytest.fixture
-def drifting(sim_bench):
-    """The demo bench with C drifting, a 0 → 1 V, 100 Hz square wave on (half period 5 ms ≫ 8L/R = 0.34 ms)."""
-    bench = sim_bench({**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE}})
-    gen = open_instrument(bench.resources["gen"], "scpi-generator")
-    scope = open_instrument(bench.resources["scope"], "scpi-digitizer")
-    gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
-    gen.output(True)
-    scope.configure_timebase(WINDOW_S, N, SHARE)
-    scope.configure_channel("CH2", 1.0, 0.5, "dc")  # CH2 probes v_c on the demo bench
-    scope.configure_trigger("external", "rising", 0.5)
-    yield bench, scope
-    scope.close()
-    gen.close()
-
-
-def capture(bench, scope) -> tuple[float, float, float]:
-    """One capture: (fitted C ratio, simulated seconds since start just before arming, just after it completed)."""
-    before = bench.simulated_elapsed_s()
-    scope.arm()
-    scope.wait(5.0)
-    after = bench.simulated_elapsed_s()
-    volts, timebase = scope.fetch("CH2")
-    return fitted_c_ratio(timebase.times(), volts), before, after
-
-
-def test_capacitance_follows_the_stated_drift_at_the_capture_times(drifting):
-    bench, scope = drifting
-    ratios = []
-    for pause_s in (0.0, 0.25, 0.25):
-        time.sleep(pause_s)
-        ratio, before, after = capture(bench, scope)
-        # the plant was built between the two instants: C = C0·(1 + per_hour·hours), hours = simulated s / 3600
-        low, high = (1 + PER_HOUR * s / 3600.0 for s in (before, after))
-        assert low - FIT_TOL <= ratio <= high + FIT_TOL, (ratio, low, high)
-        ratios.append(ratio)
-    # half a real second is half a simulated hour: C grew by about 1 %, far beyond the fit's resolution
-    assert ratios[0] < ratios[1] < ratios[2]
-    assert ratios[2] - ratios[0] > 0.5 * PER_HOUR * 0.5
-
-
-def test_drift_counted_from_since_carries_on_across_a_restarted_bench(sim_bench):
-    # The drift started two simulated hours ago (time_scale 3600: two real seconds); a bench started now, and
-    # one started again later, capture the part as it is by then, not a new one.
-    since = datetime.now(UTC) - timedelta(seconds=2.0)
-    table = {**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE,
-                                "since": since.isoformat()}}
-    for _ in range(2):
-        bench = sim_bench(table)
-        with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
-                open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
-            gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
-            gen.output(True)
-            scope.configure_timebase(WINDOW_S, N, SHARE)
-            scope.configure_channel("CH2", 1.0, 0.5, "dc")
-            scope.configure_trigger("external", "rising", 0.5)
-            ratio, before, after = capture(bench, scope)
-        # C = C0·(1 + per_hour·hours since `since`): at least 2 h, so at least +4 %, whichever bench
-        assert before >= 2 * 3600.0
-        low, high = (1 + PER_HOUR * s / 3600.0 for s in (before, after))
-        assert low - FIT_TOL <= ratio <= high + FIT_TOL, (ratio, low, high)
-
-
-def test_without_drift_the_plant_keeps_its_nominal_capacitance(sim_bench):
-    bench = sim_bench(EXACT)
+@contextmanager
+def capturing(bench: SimBench) -> Iterator[Scope]:
+    """The scope of ``bench`` set to capture v_C (CH2 on the demo bench), a 0 → 1 V, 100 Hz square wave on
+    (half period 5 ms ≫ 8L/R = 0.34 ms)."""
     with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
             open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
         gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
@@ -123,20 +65,59 @@ def test_without_drift_the_plant_keeps_its_nominal_capacitance(sim_bench):
         scope.configure_timebase(WINDOW_S, N, SHARE)
         scope.configure_channel("CH2", 1.0, 0.5, "dc")
         scope.configure_trigger("external", "rising", 0.5)
+        yield scope
+
+
+def capture(bench: SimBench, scope: Scope) -> float:
+    """One capture's fitted C ratio, checked against the stated drift at the instants around it: the plant
+    was built between them, C = C0·(1 + per_hour·hours), hours = simulated seconds / 3600."""
+    before = bench.simulated_elapsed_s()
+    scope.arm()
+    scope.wait(5.0)
+    after = bench.simulated_elapsed_s()
+    volts, timebase = scope.fetch("CH2")
+    ratio = fitted_c_ratio(timebase.times(), volts)
+    per_hour = bench.config.drift.per_hour if bench.config.drift else 0.0
+    low, high = (1 + per_hour * s / 3600.0 for s in (before, after))
+    assert low - FIT_TOL <= ratio <= high + FIT_TOL, (ratio, low, high)
+    return ratio
+
+
+def test_capacitance_follows_the_stated_drift_at_the_capture_times(sim_bench):
+    bench = sim_bench({**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE}})
+    ratios = []
+    with capturing(bench) as scope:
+        for pause_s in (0.0, 0.25, 0.25):
+            time.sleep(pause_s)
+            ratios.append(capture(bench, scope))
+    # half a real second is half a simulated hour: C grew by about 1 %, far beyond the fit's resolution
+    assert ratios[0] < ratios[1] < ratios[2]
+    assert ratios[2] - ratios[0] > 0.5 * PER_HOUR * 0.5
+
+
+def test_drift_counted_from_since_carries_on_across_a_restarted_bench(sim_bench):
+    # The drift started two simulated hours ago (time_scale 3600: two real seconds); a bench started now, and
+    # one started again after it, capture the part as it is by then, not a new one: C ≥ C0·(1 + 0.02·2).
+    since = datetime.now(UTC) - timedelta(seconds=2.0)
+    table = {**EXACT, "drift": {"parameter": "c_f", "per_hour": PER_HOUR, "time_scale": TIME_SCALE,
+                                "since": since.isoformat()}}
+    for _ in range(2):
+        bench = sim_bench(table)
+        with capturing(bench) as scope:
+            assert capture(bench, scope) >= 1 + PER_HOUR * 2 - FIT_TOL
+
+
+def test_without_drift_the_plant_keeps_its_nominal_capacitance(sim_bench):
+    bench = sim_bench(EXACT)
+    with capturing(bench) as scope:
         time.sleep(0.1)
-        ratio, _, _ = capture(bench, scope)
-    assert ratio == pytest.approx(1.0, abs=FIT_TOL)
+        assert capture(bench, scope) == pytest.approx(1.0, abs=FIT_TOL)
 
 
 def test_a_parameter_drifted_out_of_its_range_stops_the_captures_with_300(sim_bench):
     # −100 %/h at 36000 simulated s per real s: C reaches zero after 0.1 real seconds
     bench = sim_bench({**EXACT, "drift": {"parameter": "c_f", "per_hour": -1.0, "time_scale": 36000.0}})
-    with open_instrument(bench.resources["scope"], "scpi-digitizer") as scope, \
-            open_instrument(bench.resources["gen"], "scpi-generator") as gen:
-        gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
-        gen.output(True)
-        scope.configure_timebase(WINDOW_S, N, SHARE)
-        scope.configure_trigger("external", "rising", 0.5)
+    with capturing(bench) as scope:
         time.sleep(0.2)
         with pytest.raises(InstrumentError) as caught:
             scope.arm()

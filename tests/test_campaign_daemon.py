@@ -171,6 +171,36 @@ def wait_for_records(data: Path, count: int, process: subprocess.Popen, timeout_
     raise AssertionError(f"fewer than {count} records after {timeout_s} s")
 
 
+def multiprocessing_children(parent_pid: int) -> dict[int, bytes]:
+    """pid → command line of the processes whose parent is ``parent_pid`` and that run multiprocessing code
+    (Linux /proc: field 4 of stat is the parent's pid)."""
+    found = {}
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_text()
+            cmdline = (entry / "cmdline").read_bytes()
+        except OSError:
+            continue
+        if int(stat.rsplit(")", 1)[1].split()[1]) == parent_pid and b"multiprocessing" in cmdline:
+            found[int(entry.name)] = cmdline
+    return found
+
+
+def wait_until_gone(pid: int, timeout_s: float = 10.0) -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        try:
+            state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+        except OSError:
+            return
+        if state == "Z":
+            return  # exited; only its orphaned entry waits for init to reap it
+        time.sleep(0.05)
+    raise AssertionError(f"process {pid} still running {timeout_s} s after its parent was killed")
+
+
 def test_twenty_slots_at_a_short_interval_all_stored(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     profile = write_profile(tmp_path / "fast.toml", 'name = "fast"\nevery_s = 0.2\nslots = 20\n')
     data = tmp_path / "data"
@@ -213,8 +243,12 @@ def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path) -> None:
     data = tmp_path / "data"
     first = daemon_process(profile, data)
     wait_for_records(data, 5, first)
+    children = multiprocessing_children(first.pid)
+    assert sum(b"spawn_main" in cmdline for cmdline in children.values()) == 1, children  # the comparator
     first.send_signal(signal.SIGKILL)
     first.wait(10)
+    for pid in children:  # the comparator worker (and multiprocessing's resource tracker) do not outlive
+        wait_until_gone(pid)  # their daemon: end of file on their pipes
     running = ledger_rows(data, "SELECT slot FROM acqd_slots WHERE state = 'running'")
 
     second = daemon_process(profile, data)

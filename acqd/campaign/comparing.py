@@ -55,9 +55,13 @@ def _serve(conn: Connection, profile: Profile) -> None:
         if record is None:
             return
         try:
-            conn.send(("ok", judge(record)))
+            answer = ("ok", judge(record))
         except Exception as exc:  # noqa: BLE001 - every failure goes back to the daemon, which logs it
-            conn.send(("error", describe(exc)))
+            answer = ("error", describe(exc))
+        try:
+            conn.send(answer)
+        except OSError:  # the daemon is gone (killed): nobody is left to answer
+            return
 
 
 class ComparatorProcess:

@@ -11,6 +11,7 @@ from scipy.stats import t as student_t
 import acqd.compare.fit as fit_module
 from acqd.compare import compare
 from acqd.compare.fit import autocovariance, bartlett_lag, bartlett_noise_term, noise_covariance
+from acqd.compare.metrics import quantisation_rms
 from acqd.record import Stimulus, TimeBase
 from test_compare_synthetic import difference_channel, make_record, series_rlc_nodes
 
@@ -209,3 +210,28 @@ def test_first_and_second_order_sections_fit_from_fifty_percent_off():
     for factors in ((1.5, 0.5, 1.5), (0.5, 1.5, 0.5)):
         start = dict(zip(("wn_rad_s", "zeta", "gain"), np.multiply((wn, zeta, gain), factors)))
         _same_optimum(compare(rec, {"model": "second_order", **start}, {"out": "y"}, fit=free), reference)
+
+
+def test_quantisation_rms_is_the_code_step_over_root_12():
+    # Common practice (uniform quantisation noise): an ideal quantiser with step Δ errs with RMS Δ/√12.
+    step = 2.0 / 256
+    ramp = np.round(np.linspace(-0.3, 0.7, 5000) / step) * step  # an 8-bit code sequence, every code used
+    assert quantisation_rms(ramp) == pytest.approx(step / np.sqrt(12), rel=1e-9)
+    assert quantisation_rms(np.random.default_rng(0).normal(size=5000)) < 1e-3  # unquantised: negligible
+    assert quantisation_rms(np.zeros(10)) == 0.0
+
+
+def test_a_quiet_8_bit_channel_is_weighted_by_its_quantisation_noise():
+    # With no noise an 8-bit baseline sits on one code and its standard deviation is 0; weighted by that
+    # (or a tiny floor) one channel would swamp the fit. Weighted by Δ/√12, the residual scale of a correct
+    # model is about 1 (the quantisation error is all that is left; common practice), and the fit lands on
+    # the truth. The textbook closed form (DESIGN.md §4) generated the record; v_src = E − 50 Ω·i_L gives
+    # the current, so R, L and C are all determined.
+    tb = TimeBase(1.2e-3 / 2000, 400, 2000)
+    record = make_record(series_rlc_nodes(tb.times(), **TRUE), tb, STIMULUS, {"v_c": "v_c", "v_src": "v_src"},
+                         quantise=True)
+    result = compare(record, {"model": "series_rlc", **TRUE}, {"v_c": "v_c", "v_src": "v_src"},
+                     fit={"free": list(TRUE)})
+    assert 0.3 < result.fit.residual_scale < 3.0, result.fit.residual_scale
+    for name, true in TRUE.items():
+        assert result.fit.values[name] == pytest.approx(true, rel=0.01)

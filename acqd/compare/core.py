@@ -22,7 +22,7 @@ from ..models import PARAMETERS, StateSpace
 from ..record import Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
-from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms
+from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Probe, spec_from_parts
 from .stimulus import Edge, align_edge, edge_response, steady_state
 from .verdict import Verdict, judge
@@ -182,11 +182,13 @@ def _setup(record: Record, spec: CompareSpec, label: str) -> _Setup:
 
 
 def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> np.ndarray:
-    """Per-channel divisor of the residuals: the channel's noise RMS, or its simulated range."""
+    """Per-channel divisor of the residuals: the channel's noise RMS (at least its quantisation noise), or
+    its simulated range."""
     spans = np.ptp(nominal_prediction, axis=1)
     if weighting == "amplitude":
         return np.where(spans > 0, spans, 1.0)
-    noise = np.array([noise_rms(setup.times, y, setup.edge.start_s) for y in setup.measured])
+    noise = np.array([max(noise_rms(setup.times, y, setup.edge.start_s), quantisation_rms(y))
+                      for y in setup.measured])
     return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
 
 

@@ -53,6 +53,19 @@ def noise_rms(times: np.ndarray, y: np.ndarray, quiet_until_s: float) -> float:
     return float(np.median(np.abs(diffs - np.median(diffs))) / (0.6745 * np.sqrt(2.0))) if len(diffs) else 0.0
 
 
+def quantisation_rms(y: np.ndarray) -> float:
+    """The RMS of the error a quantiser with this trace's code step makes: step / √12 (uniform quantisation
+    noise, common practice), with the step read from the data as the median gap between neighbouring
+    distinct values (an 8-bit channel, a difference of two, an average of N captures all show theirs).
+
+    Why: a quiet channel's baseline can sit on one ADC code, so its measured noise is zero, yet every sample
+    of the transient still carries up to half a code of error. Unquantised data gives a tiny step and so a
+    negligible value.
+    """
+    levels = np.unique(y)
+    return float(np.median(np.diff(levels)) / np.sqrt(12.0)) if len(levels) > 1 else 0.0
+
+
 _SIMULATED_STEPS = Memo()  # a simulated trace's step parameters depend on nothing the record measured
 
 

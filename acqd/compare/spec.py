@@ -37,6 +37,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
 
@@ -108,7 +109,20 @@ class CompareSpec:
     identity: dict[str, str] = field(default_factory=dict)
 
     def build(self, parameters: Mapping[str, Any] | None = None) -> StateSpace:
-        return build_model({"model": self.model, **self.nominal}, self.source, parameters)
+        """The model at ``parameters`` (the nominal values where not given). Every comparison builds it
+        three times at the same values, and a campaign without fits at the same values for every record:
+        models of scalar parameters come from a small cache (a model's matrices are read-only)."""
+        try:
+            return _cached_model(self.model, tuple(self.nominal.items()), tuple((parameters or {}).items()),
+                                 self.source)
+        except TypeError:  # a parameter that cannot be a cache key (the matrices of a state_space model)
+            return build_model({"model": self.model, **self.nominal}, self.source, parameters)
+
+
+@lru_cache(maxsize=64)
+def _cached_model(model: str, nominal: tuple[tuple[str, Any], ...], parameters: tuple[tuple[str, Any], ...],
+                  source: str) -> StateSpace:
+    return build_model({"model": model, **dict(nominal)}, source, dict(parameters))
 
 
 def parse_dut_table(data: Mapping[str, Any], source: str, text: str = "", path: str = "dut") -> CompareSpec:

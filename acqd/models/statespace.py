@@ -39,6 +39,7 @@ class StateSpace:
                 raise ValueError(f"matrix {name} has shape {np.shape(mat)}, expected {shape}")
             if not np.all(np.isfinite(mat)):
                 raise ValueError(f"matrix {name} holds a value that is not finite")
+            mat.flags.writeable = False  # a model is a value: shared by caches, never changed in place
 
     def output_index(self, name: str) -> int:
         try:
@@ -52,8 +53,11 @@ class StateSpace:
     def steady_state(self, u: np.ndarray | float) -> np.ndarray:
         """The equilibrium state for a constant input: solve A x = −B u (least squares if A is singular)."""
         u = np.atleast_1d(np.asarray(u, dtype=float))
-        x, *_ = np.linalg.lstsq(self.A, -self.B @ u, rcond=None)
-        return x
+        try:
+            return np.linalg.solve(self.A, -self.B @ u)
+        except np.linalg.LinAlgError:
+            x, *_ = np.linalg.lstsq(self.A, -self.B @ u, rcond=None)
+            return x
 
 
 @dataclass(frozen=True)

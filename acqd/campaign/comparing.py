@@ -100,7 +100,7 @@ class ComparatorProcess:
                 raise ComparatorFailed(f"the comparator took over {self.timeout_s:g} s on this record; "
                                        "its worker was stopped and is started again for the next one")
             status, answer = self._conn.recv()
-        except (EOFError, BrokenPipeError, ConnectionResetError):
+        except (EOFError, OSError):  # the worker died: a closed or reset pipe
             code = None
             if self._process is not None:
                 self._process.join(CLOSE_TIMEOUT_S)
@@ -127,7 +127,7 @@ class ComparatorProcess:
             return
         try:
             self._conn.send(None)
-        except (BrokenPipeError, OSError):
-            pass
+        except OSError:
+            pass  # already gone: the join below returns at once
         self._process.join(CLOSE_TIMEOUT_S)
         self._discard()

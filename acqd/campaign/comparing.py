@@ -14,9 +14,15 @@ behind, the keeper's short queue holds the next step test back instead of lettin
 The process also keeps the daemon safe from its comparator: one that crashes or hangs costs that record's
 analysis (logged, the record stored without it) and a restarted worker, not the night.
 
-The worker ignores SIGINT and SIGTERM: a terminal's Ctrl-C and systemd's stop reach the whole process group,
-and the daemon wants the record in progress compared before it stops. It ends when the daemon closes the
-pipe, or dies with it (end of file on the pipe).
+The worker ignores SIGINT and SIGTERM: a terminal's Ctrl-C reaches the whole process group and systemd's
+stop the whole cgroup, and the daemon wants the record in progress compared before it stops. (For the
+second or so of a new worker's imports a Ctrl-C still ends it - Python's spawn start resets the signal
+mask, and a handler can only be set from the main thread - which costs a restart, nothing else.) It ends
+when the daemon closes the pipe, or dies with it (end of file on the pipe); the pipe is also closed at
+interpreter exit, since multiprocessing waits for its children then.
+
+Every wait on the worker is bounded by ``timeout_s``: its start (it says "ready" once it can compare), each
+record sent (the send times out on the socket), each answer.
 """
 
 from __future__ import annotations
@@ -24,9 +30,13 @@ from __future__ import annotations
 import multiprocessing
 import os
 import signal
+import socket
+import struct
+import weakref
 from multiprocessing.connection import Connection
 from typing import Any
 
+from ..errors import AcqdError
 from ..judge import make_judge
 from ..profile import Profile
 from ..record import Record
@@ -35,33 +45,31 @@ from .runlog import describe
 COMPARE_TIMEOUT_S = 300.0  # far over any fit of a scope record; past it the worker counts as hung
 CLOSE_TIMEOUT_S = 5.0
 WORKER_NICENESS = 19  # the lowest priority: comparing takes the CPU time that acquiring leaves
+STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM)
+READY = "ready"
 
 
-class ComparatorFailed(Exception):
-    """The comparator raised, hung or died on one record; the text says which and why."""
+class ComparatorFailed(AcqdError):
+    """The comparator raised, hung or died on one record, or its worker did not start; the text says why."""
 
 
 def _serve(conn: Connection, profile: Profile) -> None:
-    """Worker process: judge each record received, answer ("ok", analysis) or ("error", text)."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    """Worker process: say ready, then judge each record received, answering ("ok", analysis) or
+    ("error", text)."""
+    for sig in STOP_SIGNALS:
+        signal.signal(sig, signal.SIG_IGN)
     os.nice(WORKER_NICENESS)
     judge = make_judge(profile)
-    while True:
-        try:
-            record = conn.recv()
-        except EOFError:
-            return
-        if record is None:
-            return
-        try:
-            answer = ("ok", judge(record))
-        except Exception as exc:  # noqa: BLE001 - every failure goes back to the daemon, which logs it
-            answer = ("error", describe(exc))
-        try:
+    try:
+        conn.send(READY)
+        while (record := conn.recv()) is not None:
+            try:
+                answer = ("ok", judge(record))
+            except Exception as exc:  # noqa: BLE001 - every failure goes back to the daemon, which logs it
+                answer = ("error", describe(exc))
             conn.send(answer)
-        except OSError:  # the daemon is gone (killed): nobody is left to answer
-            return
+    except (EOFError, OSError):  # the daemon closed the pipe or is gone: nobody is left to answer
+        return
 
 
 class ComparatorProcess:
@@ -74,6 +82,8 @@ class ComparatorProcess:
         self._context = multiprocessing.get_context("spawn")  # fork is unsafe once the daemon has threads
         self._process: Any = None
         self._conn: Connection | None = None
+        self._ready = False
+        self._at_exit: weakref.finalize | None = None
         self._start()
 
     @property
@@ -84,42 +94,69 @@ class ComparatorProcess:
         parent, child = self._context.Pipe()
         process = self._context.Process(target=_serve, args=(child, self.profile), name="acqd-comparator",
                                         daemon=True)
-        process.start()
-        child.close()
-        self._process, self._conn = process, parent
+        try:
+            process.start()
+        except BaseException:
+            parent.close()
+            raise
+        finally:
+            child.close()
+        self._process, self._conn, self._ready = process, parent, False
+        self._at_exit = weakref.finalize(self, parent.close)  # at exit: EOF for the worker, so it ends
 
-    def __call__(self, record: Record) -> dict[str, Any]:
+    def wait_ready(self) -> None:
+        """Until the worker can compare; ComparatorFailed if it does not get there within ``timeout_s``."""
         if self._process is None:
             self.restarts += 1
             self._start()
-        assert self._conn is not None
+        if self._ready:
+            return
         try:
+            if self._conn.poll(self.timeout_s) and self._conn.recv() == READY:
+                self._ready = True
+                return
+        except (EOFError, OSError):
+            pass
+        code = self._exit_code()
+        self._discard()
+        raise ComparatorFailed(f"the comparator's worker process did not start within {self.timeout_s:g} s "
+                               f"(exit code {code}); see the daemon's standard error")
+
+    def __call__(self, record: Record) -> dict[str, Any]:
+        if self._process is not None and not self._process.is_alive():
+            self._discard()  # died while idle: this record has not reached it, so start another for it
+        self.wait_ready()
+        try:
+            _bound_sends(self._conn, self.timeout_s)
             self._conn.send(record)
             if not self._conn.poll(self.timeout_s):
                 self._discard()
                 raise ComparatorFailed(f"the comparator took over {self.timeout_s:g} s on this record; "
                                        "its worker was stopped and is started again for the next one")
             status, answer = self._conn.recv()
-        except (EOFError, OSError):  # the worker died: a closed or reset pipe
-            code = None
-            if self._process is not None:
-                self._process.join(CLOSE_TIMEOUT_S)
-                code = self._process.exitcode
+        except (EOFError, OSError):  # the worker died, or stopped reading (the send timed out)
+            code = self._exit_code()
             self._discard()
-            raise ComparatorFailed(f"the comparator's worker process ended (exit code {code}); "
+            raise ComparatorFailed(f"the comparator's worker process failed on this record (exit code {code}); "
                                    "it is started again for the next record") from None
         if status != "ok":
             raise ComparatorFailed(answer)
         return answer
+
+    def _exit_code(self) -> int | None:
+        if self._process is None:
+            return None
+        self._process.join(CLOSE_TIMEOUT_S if not self._process.is_alive() else 0)
+        return self._process.exitcode
 
     def _discard(self) -> None:
         """Kill the worker (hung or dead) and forget it; the next call starts a new one."""
         if self._process is not None:
             self._process.kill()
             self._process.join(CLOSE_TIMEOUT_S)
-        if self._conn is not None:
-            self._conn.close()
-        self._process, self._conn = None, None
+        if self._at_exit is not None:
+            self._at_exit()  # closes the pipe
+        self._process, self._conn, self._at_exit, self._ready = None, None, None, False
 
     def close(self) -> None:
         """Ask the worker to finish, kill it if it does not; safe to call twice."""
@@ -131,3 +168,16 @@ class ComparatorProcess:
             pass  # already gone: the join below returns at once
         self._process.join(CLOSE_TIMEOUT_S)
         self._discard()
+
+
+def _bound_sends(conn: Connection, timeout_s: float) -> None:
+    """Make a send on ``conn`` fail (OSError) after ``timeout_s`` instead of blocking for ever: a record is
+    larger than the socket's buffer, so a worker that has stopped reading would otherwise hold the keeper.
+    The pipe is a socket pair; the option is set on the shared socket through a duplicate descriptor."""
+    sock = socket.socket(fileno=os.dup(conn.fileno()))
+    try:
+        seconds = int(timeout_s)
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDTIMEO,
+                        struct.pack("ll", seconds, int((timeout_s - seconds) * 1e6)))
+    finally:
+        sock.close()

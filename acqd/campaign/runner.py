@@ -166,6 +166,8 @@ class CampaignRunner:
         bench = self.session.get()
         for step in self.spec.steps:
             check_limits(step.profile, bench.generator)
+        if self.comparator is not None:
+            self.comparator.wait_ready()  # a worker that cannot start is a start-up error, not a nightly fault
 
     def _open_store(self) -> RecordStore:
         output = self.spec.profile.output
@@ -386,12 +388,14 @@ class CampaignRunner:
 
     def close(self, reason: str) -> None:
         """Bench output off and closed, queued records stored, store closed; safe to call twice."""
-        self.session.close(reason)
-        if self.keeper is not None:
-            self.keeper.stop()
-            self.keeper.store.close()
-        if self.comparator is not None:
-            self.comparator.close()
+        try:
+            self.session.close(reason)
+            if self.keeper is not None:
+                self.keeper.stop()
+                self.keeper.store.close()
+        finally:
+            if self.comparator is not None:
+                self.comparator.close()  # whatever failed above: a worker left running would hold the exit
 
 
 def _parse(text: str | None) -> datetime | None:

@@ -24,14 +24,6 @@ SCOPE_BANDWIDTH_SHARE = 0.03  # first-order bandwidth limit at 3 % of the sample
 SCOPE_CHANNELS = {"v_c": "v_c", "v_src": "v_src", "v_rl": "v_rl"}
 
 
-def kt9_record(seed: int, n: int = 2000, noise_v: float = 0.008, values: dict | None = None):
-    """v_c plus the resistor drop v_src − v_rl from two quantised earth-referenced channels."""
-    tb = TimeBase(1.2e-3 / n, n // 5, n)
-    nodes = series_rlc_nodes(tb.times(), **(values or TRUE))
-    record = make_record(nodes, tb, STIMULUS, SCOPE_CHANNELS, noise_v=noise_v, seed=seed, quantise=True)
-    return difference_channel(record, "v_src", "v_rl", "v_r")
-
-
 def lowpassed_noise(rng: np.random.Generator, n: int, noise_v: float, bandwidth_share: float) -> np.ndarray:
     """White noise through a first-order low-pass (the sampled RC, common practice):
     y_k = y_(k−1) + a·(x_k − y_(k−1)), a = 1 − e^(−2π·f_c·Δt); started 20 time constants early so that it
@@ -41,15 +33,22 @@ def lowpassed_noise(rng: np.random.Generator, n: int, noise_v: float, bandwidth_
     return lfilter([a], [1, a - 1], rng.normal(0.0, noise_v, n + early))[early:]
 
 
-def kt9_record_bandlimited(seed: int, n: int = 2000, noise_v: float = 0.008):
-    """As ``kt9_record``, but the noise passes the scope's bandwidth limit before the 8-bit conversion, so
-    neighbouring samples share it (8 mV white becomes about 2.4 mV, below the 8 mV code step, which makes
-    the quantisation error itself follow the trace for several samples)."""
+def kt9_record(seed: int, n: int = 2000, noise_v: float = 0.008, values: dict | None = None,
+               bandwidth_share: float | None = None):
+    """v_c plus the resistor drop v_src − v_rl from two quantised earth-referenced channels.
+
+    With ``bandwidth_share`` the noise passes the scope's bandwidth limit (a first-order low-pass at that
+    share of the sample rate) before the 8-bit conversion, so neighbouring samples share it: 8 mV white at
+    3 % becomes about 2.4 mV, below the 8 mV code step, which makes the quantisation error itself follow
+    the trace for several samples."""
     tb = TimeBase(1.2e-3 / n, n // 5, n)
-    nodes = series_rlc_nodes(tb.times(), **TRUE)
-    rng = np.random.default_rng(seed)
-    noisy = {k: nodes[k] + lowpassed_noise(rng, n, noise_v, SCOPE_BANDWIDTH_SHARE) for k in SCOPE_CHANNELS}
-    record = make_record(noisy, tb, STIMULUS, SCOPE_CHANNELS, quantise=True)
+    nodes = series_rlc_nodes(tb.times(), **(values or TRUE))
+    if bandwidth_share is None:
+        record = make_record(nodes, tb, STIMULUS, SCOPE_CHANNELS, noise_v=noise_v, seed=seed, quantise=True)
+    else:
+        rng = np.random.default_rng(seed)
+        noisy = {k: nodes[k] + lowpassed_noise(rng, n, noise_v, bandwidth_share) for k in SCOPE_CHANNELS}
+        record = make_record(noisy, tb, STIMULUS, SCOPE_CHANNELS, quantise=True)
     return difference_channel(record, "v_src", "v_rl", "v_r")
 
 
@@ -97,7 +96,8 @@ def test_intervals_hold_with_band_limited_quantised_noise_where_white_noise_ones
     # correlated over tens of samples; the covariance with Bartlett-weighted residual autocovariance
     # (Newey & West 1987) must cover, and s²·(JᵀJ)⁻¹ from the same fits must not: ≤ 80 of 100 is below
     # 95 % by more than 6 σ (it holds about 57), so this test fails if the correction is lost.
-    hits, white_hits, _ = _coverage(kt9_record_bandlimited, range(100), monkeypatch)
+    hits, white_hits, _ = _coverage(lambda seed: kt9_record(seed, bandwidth_share=SCOPE_BANDWIDTH_SHARE),
+                                    range(100), monkeypatch)
     assert all(count >= 90 for count in hits.values()), hits
     assert all(count <= 80 for count in white_hits.values()), white_hits
 
@@ -219,6 +219,11 @@ def test_quantisation_rms_is_the_code_step_over_root_12():
     assert quantisation_rms(ramp) == pytest.approx(step / np.sqrt(12), rel=1e-9)
     assert quantisation_rms(np.random.default_rng(0).normal(size=5000)) < 1e-3  # unquantised: negligible
     assert quantisation_rms(np.zeros(10)) == 0.0
+    # A fast first-order edge (τ = 3 samples) visits a few scattered codes; every gap is whole steps.
+    edge = np.round((1 - np.exp(-np.arange(200) / 3.0)) / step) * step
+    assert quantisation_rms(edge) == pytest.approx(step / np.sqrt(12), rel=1e-9)
+    # An ideal step sits on two codes whatever the step is: too few to tell, so no floor from it.
+    assert quantisation_rms(np.repeat([0.0, 128 * step], 500)) == 0.0
 
 
 def test_a_quiet_8_bit_channel_is_weighted_by_its_quantisation_noise():

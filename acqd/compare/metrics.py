@@ -16,6 +16,7 @@ from .memo import Memo
 
 NRMSE_BASIS = "peak-to-peak range (max - min) of the simulated trace"
 MIN_BASELINE_SAMPLES = 16
+MIN_LEVELS = 8  # distinct values a trace needs before its code step is read from it
 BASELINE_WARN_SHARE = 0.02  # a pre-trigger baseline off by more than 2 % of the range gets a warning
 
 
@@ -55,15 +56,19 @@ def noise_rms(times: np.ndarray, y: np.ndarray, quiet_until_s: float) -> float:
 
 def quantisation_rms(y: np.ndarray) -> float:
     """The RMS of the error a quantiser with this trace's code step makes: step / √12 (uniform quantisation
-    noise, common practice), with the step read from the data as the median gap between neighbouring
-    distinct values (an 8-bit channel, a difference of two, an average of N captures all show theirs).
+    noise, common practice), with the step read from the data as the smallest gap between distinct values
+    (every gap is a whole number of steps: an 8-bit channel shows its code step, an average of N captures
+    a step N times finer). 0 when the trace shows fewer than ``MIN_LEVELS`` distinct values, too few to
+    tell its step (an ideal step sits on two codes whatever the step is).
 
     Why: a quiet channel's baseline can sit on one ADC code, so its measured noise is zero, yet every sample
     of the transient still carries up to half a code of error. Unquantised data gives a tiny step and so a
     negligible value.
     """
     levels = np.unique(y)
-    return float(np.median(np.diff(levels)) / np.sqrt(12.0)) if len(levels) > 1 else 0.0
+    if len(levels) < MIN_LEVELS:
+        return 0.0
+    return float(np.min(np.diff(levels)) / np.sqrt(12.0))
 
 
 _SIMULATED_STEPS = Memo()  # a simulated trace's step parameters depend on nothing the record measured

@@ -39,7 +39,9 @@ class StateSpace:
                 raise ValueError(f"matrix {name} has shape {np.shape(mat)}, expected {shape}")
             if not np.all(np.isfinite(mat)):
                 raise ValueError(f"matrix {name} holds a value that is not finite")
-            mat.flags.writeable = False  # a model is a value: shared by caches, never changed in place
+            own = np.array(mat, dtype=float)  # a copy: the caller's array stays the caller's
+            own.flags.writeable = False  # a model is a value: shared by caches, never changed in place
+            object.__setattr__(self, name, own)
 
     def output_index(self, name: str) -> int:
         try:
@@ -53,11 +55,8 @@ class StateSpace:
     def steady_state(self, u: np.ndarray | float) -> np.ndarray:
         """The equilibrium state for a constant input: solve A x = −B u (least squares if A is singular)."""
         u = np.atleast_1d(np.asarray(u, dtype=float))
-        try:
-            return np.linalg.solve(self.A, -self.B @ u)
-        except np.linalg.LinAlgError:
-            x, *_ = np.linalg.lstsq(self.A, -self.B @ u, rcond=None)
-            return x
+        x, *_ = np.linalg.lstsq(self.A, -self.B @ u, rcond=None)
+        return x
 
 
 @dataclass(frozen=True)
@@ -144,8 +143,9 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
 
     With B = ⌈√N⌉, x[jB + k] = Ad^k · s_j + x_ss where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
     N/B block starts (both by repeated doubling, so a few dozen small products), then one
-    (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes every state in sample order straight
-    into ``out``. For a long record that product is the whole cost: one pass of writing the states.
+    (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes the states of every whole block in
+    sample order straight into ``out`` (a second, small product the last part-block). For a long record
+    that product is the whole cost: one pass of writing the states.
     """
     n_samples, n = out.shape
     eye = np.eye(n)

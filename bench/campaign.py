@@ -248,8 +248,9 @@ def measure(args: argparse.Namespace, bench_table: str, where: str) -> int:
     bare_s = statistics.median([before, after])
     print(f"long campaign, {args.slots} slots with the comparator: {1e3 * slot_s:.2f} ms per slot against "
           f"{1e3 * before:.2f} / {1e3 * after:.2f} ms bare before / after: overhead {100 * (slot_s / bare_s - 1):.1f} %")
-    print(f"   RSS of the daemon + its comparator worker at slot 1: {rss[1]:.1f} MB, at slot {args.slots}: "
-          f"{rss[args.slots]:.1f} MB, growth {rss[args.slots] - rss[1]:+.1f} MB (target < 20 MB)")
+    if 1 in rss and args.slots in rss:  # (run_daemon has already asserted that every slot is done)
+        print(f"   RSS of the daemon + its comparator worker at slot 1: {rss[1]:.1f} MB, at slot {args.slots}: "
+              f"{rss[args.slots]:.1f} MB, growth {rss[args.slots] - rss[1]:+.1f} MB (target < 20 MB)")
     print_parts(work, profile, bare_s)
     return 0
 

@@ -171,20 +171,25 @@ def wait_for_records(data: Path, count: int, process: subprocess.Popen, timeout_
     raise AssertionError(f"fewer than {count} records after {timeout_s} s")
 
 
+def proc_stat(pid: int | str) -> list[str]:
+    """The fields of /proc/PID/stat after the command name (Linux proc(5)): [0] the state, [1] the parent's
+    pid. Raises OSError once the process is gone."""
+    return Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+
+
 def multiprocessing_children(parent_pid: int) -> dict[int, bytes]:
-    """pid → command line of the processes whose parent is ``parent_pid`` and that run multiprocessing code
-    (Linux /proc: field 4 of stat is the parent's pid)."""
+    """pid → command line of the processes whose parent is ``parent_pid`` and that run multiprocessing code."""
     found = {}
     for entry in Path("/proc").iterdir():
         if not entry.name.isdigit():
             continue
         try:
-            stat = (entry / "stat").read_text()
-            cmdline = (entry / "cmdline").read_bytes()
+            if int(proc_stat(entry.name)[1]) == parent_pid:
+                cmdline = (entry / "cmdline").read_bytes()
+                if b"multiprocessing" in cmdline:
+                    found[int(entry.name)] = cmdline
         except OSError:
             continue
-        if int(stat.rsplit(")", 1)[1].split()[1]) == parent_pid and b"multiprocessing" in cmdline:
-            found[int(entry.name)] = cmdline
     return found
 
 
@@ -192,11 +197,10 @@ def wait_until_gone(pid: int, timeout_s: float = 10.0) -> None:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         try:
-            state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+            if proc_stat(pid)[0] == "Z":
+                return  # exited; only its orphaned entry waits for init to reap it (proc(5): state Z)
         except OSError:
             return
-        if state == "Z":
-            return  # exited; only its orphaned entry waits for init to reap it
         time.sleep(0.05)
     raise AssertionError(f"process {pid} still running {timeout_s} s after its parent was killed")
 
@@ -244,7 +248,8 @@ def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path) -> None:
     first = daemon_process(profile, data)
     wait_for_records(data, 5, first)
     children = multiprocessing_children(first.pid)
-    assert sum(b"spawn_main" in cmdline for cmdline in children.values()) == 1, children  # the comparator
+    # One comparator worker: Python's spawn start runs a child as "... spawn_main(...)" (multiprocessing docs)
+    assert sum(b"spawn_main" in cmdline for cmdline in children.values()) == 1, children
     first.send_signal(signal.SIGKILL)
     first.wait(10)
     for pid in children:  # the comparator worker (and multiprocessing's resource tracker) do not outlive

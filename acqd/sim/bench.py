@@ -28,19 +28,21 @@ known drift in minutes:
 parameter     str    a scalar parameter of the DUT model (``c_f`` of ``series_rlc``: see acqd.models.PARAMETERS)
 per_hour      number relative change per simulated hour (0.02 = +2 %/h of the nominal value), linear in time
 time_scale    > 0    simulated seconds per real second (default 1; 3600 makes each real second an hour)
-since         date-time  the moment the drift starts (TOML date-time or ISO 8601 text); default: when the
+since         time   the moment the drift starts (TOML date-time or ISO 8601 text); default: when the
                      bench starts
 
 The drifted value is nominal × (1 + per_hour × simulated hours since ``since``), where nominal is the
 ``dut`` table's value (or the model's default) and simulated hours are real elapsed time × ``time_scale``
 / 3600; before ``since`` it is nominal. Without ``since`` the drift starts with each bench: a daemon that
 closes the bench (after a fault, between slots further apart than keep_open_s, when it is restarted)
-starts the part new when it opens it again, so a campaign that should see one continuous drift gives it. The plant is rebuilt from the ``dut`` table with that value at every capture.
-Records carry real UTC time stamps, so ``acqd drift`` reports the parameter's slope per hour of *record*
-time: per_hour × time_scale × nominal, in the parameter's own unit (c_f nominal 68 nF, per_hour 0.02,
-time_scale 3600: 4.9 µF/h — the run takes seconds, not a night). When a falling parameter would reach
-the end of its allowed range (after 1/|per_hour| simulated hours for a positive one), the scopes refuse
-to capture with error −300 naming it, rather than simulate a part that cannot exist.
+starts a new part when it opens it again. A campaign that should see one continuous drift sets ``since``
+(with a time_scale above 1, the real time since then is scaled too: a day ago at 3600 is 86,400 hours).
+The plant is rebuilt from the ``dut`` table with that value at every capture. Records carry real UTC
+time stamps, so ``acqd drift`` reports the parameter's slope per hour of *record* time: per_hour ×
+time_scale × nominal, in the parameter's own unit (c_f nominal 68 nF, per_hour 0.02, time_scale 3600:
+4.9 µF/h — the run takes seconds, not a night). When a falling parameter would reach the end of its
+allowed range (after 1/|per_hour| simulated hours for a positive one), the scopes refuse to capture with
+error −300 naming it, rather than simulate a part that cannot exist.
 """
 
 from __future__ import annotations

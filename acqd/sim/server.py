@@ -887,6 +887,9 @@ class _Connection:
             watchers.append(asyncio.ensure_future(self.input_arrived.wait()))
         try:
             done, _ = await asyncio.wait({task, *watchers}, return_when=asyncio.FIRST_COMPLETED)
+        except asyncio.CancelledError:
+            task.cancel()  # the server is stopping: the blocked unit goes too, not left pending at loop close
+            raise
         finally:
             for w in watchers:
                 w.cancel()

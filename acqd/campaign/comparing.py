@@ -83,6 +83,7 @@ class ComparatorProcess:
         self._process: Any = None
         self._conn: Connection | None = None
         self._ready = False
+        self._send_timeout_s: float | None = None  # what the pipe's send timeout is set to
         self._at_exit: weakref.finalize | None = None
         self._start()
 
@@ -101,7 +102,7 @@ class ComparatorProcess:
             raise
         finally:
             child.close()
-        self._process, self._conn, self._ready = process, parent, False
+        self._process, self._conn, self._ready, self._send_timeout_s = process, parent, False, None
         self._at_exit = weakref.finalize(self, parent.close)  # at exit: EOF for the worker, so it ends
 
     def wait_ready(self) -> None:
@@ -127,7 +128,9 @@ class ComparatorProcess:
             self._discard()  # died while idle: this record has not reached it, so start another for it
         self.wait_ready()
         try:
-            _bound_sends(self._conn, self.timeout_s)
+            if self._send_timeout_s != self.timeout_s:
+                _bound_sends(self._conn, self.timeout_s)
+                self._send_timeout_s = self.timeout_s
             self._conn.send(record)
             if not self._conn.poll(self.timeout_s):
                 self._discard()

@@ -112,13 +112,14 @@ class ComparatorProcess:
             self._start()
         if self._ready:
             return
+        ended = False
         try:
             if self._conn.poll(self.timeout_s) and self._conn.recv() == READY:
                 self._ready = True
                 return
         except (EOFError, OSError):
-            pass
-        code = self._exit_code()
+            ended = True  # it died on the way: wait for its exit status
+        code = self._exit_code(wait_s=CLOSE_TIMEOUT_S if ended else 0.0)
         self._discard()
         raise ComparatorFailed(f"the comparator's worker process did not start within {self.timeout_s:g} s "
                                f"(exit code {code}); see the daemon's standard error")
@@ -137,8 +138,8 @@ class ComparatorProcess:
                 raise ComparatorFailed(f"the comparator took over {self.timeout_s:g} s on this record; "
                                        "its worker was stopped and is started again for the next one")
             status, answer = self._conn.recv()
-        except (EOFError, OSError):  # the worker died, or stopped reading (the send timed out)
-            code = self._exit_code()
+        except (EOFError, OSError) as exc:  # the worker died, or stopped reading (the send timed out)
+            code = self._exit_code(wait_s=0.0 if isinstance(exc, BlockingIOError) else CLOSE_TIMEOUT_S)
             self._discard()
             raise ComparatorFailed(f"the comparator's worker process failed on this record (exit code {code}); "
                                    "it is started again for the next record") from None
@@ -146,10 +147,11 @@ class ComparatorProcess:
             raise ComparatorFailed(answer)
         return answer
 
-    def _exit_code(self) -> int | None:
+    def _exit_code(self, wait_s: float = 0.0) -> int | None:
+        """The worker's exit status, waiting up to ``wait_s`` for a dying one to end (None: still running)."""
         if self._process is None:
             return None
-        self._process.join(CLOSE_TIMEOUT_S if not self._process.is_alive() else 0)
+        self._process.join(wait_s)
         return self._process.exitcode
 
     def _discard(self) -> None:

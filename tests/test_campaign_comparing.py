@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import os
 import signal
-import threading
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -73,14 +72,21 @@ def test_a_worker_killed_while_idle_costs_nothing(demo_records, worker) -> None:
     assert comparator.restarts == 1 and comparator.pid != killed
 
 
-def test_a_worker_killed_mid_comparison_costs_that_analysis_only(demo_records, worker) -> None:
+def test_a_worker_killed_mid_comparison_costs_that_analysis_only(demo_records, worker, monkeypatch) -> None:
     record = demo_records[1][0]
     comparator = worker()
     first = comparator(record)
-    # The demo's three-parameter fit takes tens of milliseconds; the kill lands inside it.
-    threading.Timer(0.01, os.kill, (comparator.pid, signal.SIGKILL)).start()
-    with pytest.raises(ComparatorFailed, match="exit code -9"):  # POSIX: killed by signal 9
+    send = comparator._send
+
+    def send_then_kill(rec: Record) -> None:  # the worker dies once the record is handed over
+        send(rec)
+        os.kill(comparator.pid, signal.SIGKILL)
+
+    monkeypatch.setattr(comparator, "_send", send_then_kill)
+    # POSIX: killed by signal 9
+    with pytest.raises(ComparatorFailed, match=r"ended while comparing this record \(exit code -9\)"):
         comparator(record)
+    monkeypatch.undo()
     assert comparator(record) == first
 
 

@@ -125,27 +125,45 @@ class ComparatorProcess:
                                f"(exit code {code}); see the daemon's standard error")
 
     def __call__(self, record: Record) -> dict[str, Any]:
-        if self._process is not None and not self._process.is_alive():
-            self._discard()  # died while idle: this record has not reached it, so start another for it
-        self.wait_ready()
+        self._send(record)
         try:
-            if self._send_timeout_s != self.timeout_s:
-                _bound_sends(self._conn, self.timeout_s)
-                self._send_timeout_s = self.timeout_s
-            self._conn.send(record)
             if not self._conn.poll(self.timeout_s):
                 self._discard()
                 raise ComparatorFailed(f"the comparator took over {self.timeout_s:g} s on this record; "
                                        "its worker was stopped and is started again for the next one")
             status, answer = self._conn.recv()
-        except (EOFError, OSError) as exc:  # the worker died, or stopped reading (the send timed out)
-            code = self._exit_code(wait_s=0.0 if isinstance(exc, BlockingIOError) else CLOSE_TIMEOUT_S)
+        except (EOFError, OSError):  # it died while comparing: this record may be what killed it
+            code = self._exit_code(wait_s=CLOSE_TIMEOUT_S)
             self._discard()
-            raise ComparatorFailed(f"the comparator's worker process failed on this record (exit code {code}); "
-                                   "it is started again for the next record") from None
+            raise ComparatorFailed(f"the comparator's worker process ended while comparing this record (exit "
+                                   f"code {code}); it is started again for the next record") from None
         if status != "ok":
             raise ComparatorFailed(answer)
         return answer
+
+    def _send(self, record: Record) -> None:
+        """Hand ``record`` to a ready worker. A worker found dead (it died while idle, or as the record went
+        out) never saw the record: a new one gets it. One that stops reading is killed at the timeout."""
+        for attempt in (1, 2):
+            if self._process is not None and not self._process.is_alive():
+                self._discard()
+            self.wait_ready()
+            try:
+                if self._send_timeout_s != self.timeout_s:
+                    _bound_sends(self._conn, self.timeout_s)
+                    self._send_timeout_s = self.timeout_s
+                self._conn.send(record)
+                return
+            except BlockingIOError:  # the send timed out: the worker is alive but not reading
+                self._discard()
+                raise ComparatorFailed(f"the comparator's worker took no record for {self.timeout_s:g} s; it was "
+                                       "stopped and is started again for the next one") from None
+            except OSError:
+                code = self._exit_code(wait_s=CLOSE_TIMEOUT_S)
+                self._discard()
+                if attempt == 2:
+                    raise ComparatorFailed(f"two comparator workers in a row ended before taking this record "
+                                           f"(exit code {code})") from None
 
     def _exit_code(self, wait_s: float = 0.0) -> int | None:
         """The worker's exit status, waiting up to ``wait_s`` for a dying one to end (None: still running)."""

@@ -123,14 +123,15 @@ def test_noise_covariance_is_the_bartlett_weighted_sum_within_each_channel():
     assert np.all(np.linalg.eigvalsh(cov) > 0)
 
 
-def test_one_channel_at_lag_zero_is_the_white_noise_covariance():
+def test_one_channel_at_lag_zero_is_the_white_noise_covariance(monkeypatch):
     # Regression textbook: for uncorrelated residuals the covariance is s²·(JᵀJ)⁻¹, s² = SSR / (m − p).
+    # With the lag held at 0, noise_covariance (its factor m/(m − p) included) must give exactly that.
     rng = np.random.default_rng(1)
     jac, residuals = rng.normal(size=(500, 2)), rng.normal(size=500)
-    gamma = autocovariance(residuals)
     white = residuals @ residuals / 498 * np.linalg.inv(jac.T @ jac)
-    bread = np.linalg.inv(jac.T @ jac)
-    assert 500 / 498 * bread @ bartlett_noise_term(jac, gamma, 0) @ bread == pytest.approx(white, rel=1e-12)
+    monkeypatch.setattr(fit_module, "bartlett_lag", lambda gamma: 0)
+    cov, lags = noise_covariance(jac, residuals, channels=1)
+    assert lags == (0,) and cov == pytest.approx(white, rel=1e-12)
 
 
 def _same_optimum(result, reference) -> None:

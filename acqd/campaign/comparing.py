@@ -119,8 +119,7 @@ class ComparatorProcess:
                 return
         except (EOFError, OSError):
             ended = True  # it died on the way: wait for its exit status
-        code = self._exit_code(wait_s=CLOSE_TIMEOUT_S if ended else 0.0)
-        self._discard()
+        code = self._discard(wait_s=CLOSE_TIMEOUT_S if ended else 0.0)
         raise ComparatorFailed(f"the comparator's worker process did not start within {self.timeout_s:g} s "
                                f"(exit code {code}); see the daemon's standard error")
 
@@ -133,8 +132,7 @@ class ComparatorProcess:
                                        "its worker was stopped and is started again for the next one")
             status, answer = self._conn.recv()
         except (EOFError, OSError):  # it died while comparing: this record may be what killed it
-            code = self._exit_code(wait_s=CLOSE_TIMEOUT_S)
-            self._discard()
+            code = self._discard(wait_s=CLOSE_TIMEOUT_S)
             raise ComparatorFailed(f"the comparator's worker process ended while comparing this record (exit "
                                    f"code {code}); it is started again for the next record") from None
         if status != "ok":
@@ -159,27 +157,25 @@ class ComparatorProcess:
                 raise ComparatorFailed(f"the comparator's worker took no record for {self.timeout_s:g} s; it was "
                                        "stopped and is started again for the next one") from None
             except OSError:
-                code = self._exit_code(wait_s=CLOSE_TIMEOUT_S)
-                self._discard()
+                code = self._discard(wait_s=CLOSE_TIMEOUT_S)
                 if attempt == 2:
                     raise ComparatorFailed(f"two comparator workers in a row ended before taking this record "
                                            f"(exit code {code})") from None
 
-    def _exit_code(self, wait_s: float = 0.0) -> int | None:
-        """The worker's exit status, waiting up to ``wait_s`` for a dying one to end (None: still running)."""
-        if self._process is None:
-            return None
-        self._process.join(wait_s)
-        return self._process.exitcode
-
-    def _discard(self) -> None:
-        """Kill the worker (hung or dead) and forget it; the next call starts a new one."""
+    def _discard(self, wait_s: float = 0.0) -> int | None:
+        """Kill the worker (hung or dead) and forget it; the next call starts a new one. Returns its exit
+        status as it was before the kill, waiting up to ``wait_s`` for a dying one to end (None: it was
+        still running)."""
+        code = None
         if self._process is not None:
+            self._process.join(wait_s)
+            code = self._process.exitcode
             self._process.kill()
             self._process.join(CLOSE_TIMEOUT_S)
         if self._at_exit is not None:
             self._at_exit()  # closes the pipe
         self._process, self._conn, self._at_exit, self._ready = None, None, None, False
+        return code
 
     def close(self) -> None:
         """Ask the worker to finish, kill it if it does not; safe to call twice."""

@@ -20,7 +20,7 @@ from acqd.instruments import find_driver, list_drivers, load_driver, match_drive
 from acqd.instruments.expression import Expression, ExpressionError
 
 DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
-SHIPPED = {"scpi-generator": "generator", "scpi-digitizer": "scope", "viewscope": "scope"}
+SHIPPED = {"scpi-generator": "generator", "scpi-digitizer": "scope", "divscope": "scope"}
 
 
 def one_line(exc: BaseException) -> str:
@@ -51,7 +51,7 @@ def test_shipped_drivers_load_and_are_listed():
 
 @pytest.mark.parametrize("idn, expected", [
     ("acqd-sim,DIG,0,0.1.0", "scpi-digitizer"),
-    ("acqd-sim,VIEWSCOPE,0,0.1.0", "viewscope"),
+    ("acqd-sim,DIVSCOPE,0,0.1.0", "divscope"),
     ("acqd-sim,FG,0,0.1.0", "scpi-generator"),
     ("Some Maker,Model 9,123,1.0", None),
 ])
@@ -62,7 +62,7 @@ def test_match_driver_by_idn(idn, expected):
 
 
 def test_commands_follow_the_per_division_and_share_conventions():
-    view = load_driver(find_driver("viewscope"))
+    view = load_driver(find_driver("divscope"))
     dig = load_driver(find_driver("scpi-digitizer"))
     window, n, share, range_v = 2e-4, 2000, 0.2, 1.0
     # Reference: plain Python arithmetic of the DEVELOPERS.md tables: 10 horizontal divisions span the
@@ -71,7 +71,7 @@ def test_commands_follow_the_per_division_and_share_conventions():
     assert scpi.parse_number(sent[0].split()[1]) == window / 10
     assert sent[1:] == [f"SPAN:POINts {n}", f"SPAN:LEAD {scpi.format_number(share)}"]
     sent = view.commands("channel", channel="CH3", range_v=range_v, offset_v=0.5, coupling="dc")
-    assert sent[0] == f"VIEW3:VDIVision {scpi.format_number(2 * range_v / 8)}"
+    assert sent[0] == f"LANE3:PERDiv {scpi.format_number(2 * range_v / 8)}"
     assert dig.commands("timebase", window_s=window, n_samples=n, pretrigger_share=share)[2] == \
         f"SWEep:OFFSet:POINts {-round(share * n)}"
     # SCPI-1999 Vol 1 §7.2: a numeric value is NR1/NR2/NR3 text, parsed back to the same double here.
@@ -123,10 +123,10 @@ def test_malformed_toml_names_the_file(tmp_path):
      "unknown key"),
     ("scpi-digitizer", "'^acqd-sim,DIG,'", "'^acqd-sim,(DIG'", "driver.idn", "regular expression"),
     ("scpi-digitizer", 'format = "REAL,32"', 'format = "REAL,64"', "fetch.format", "allowed"),
-    ("viewscope", '"window_s / 10"', '"__import__(\'os\').getcwd()"', "operations.timebase.computed",
+    ("divscope", '"window_s / 10"', '"__import__(\'os\').getcwd()"', "operations.timebase.computed",
      "only calls like round(x)"),
-    ("viewscope", '"window_s / 10"', '"window.s / 10"', "operations.timebase.computed", "not allowed"),
-    ("viewscope", '"window_s / 10"', '"span_s / 10"', "operations.timebase.computed", "names allowed here"),
+    ("divscope", '"window_s / 10"', '"window.s / 10"', "operations.timebase.computed", "not allowed"),
+    ("divscope", '"window_s / 10"', '"span_s / 10"', "operations.timebase.computed", "names allowed here"),
     ("scpi-digitizer", "max_pretrigger_share = 1.0", "", "limits.max_pretrigger_share", "missing"),
     ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float}\\n*RST"',
      "operations.frequency.commands[0]", "one line"),
@@ -168,12 +168,12 @@ def test_expression_division_by_zero_is_an_expression_error():
 # --- search -------------------------------------------------------------------------------------------
 
 def test_find_driver_by_name_path_and_environment(tmp_path, monkeypatch):
-    assert find_driver("viewscope") == DRIVERS / "viewscope.toml"
-    assert find_driver(str(DRIVERS / "viewscope.toml")) == DRIVERS / "viewscope.toml"
-    own = tmp_path / "viewscope.toml"  # a bench's own copy hides the shipped one
-    shutil.copy(DRIVERS / "viewscope.toml", own)
+    assert find_driver("divscope") == DRIVERS / "divscope.toml"
+    assert find_driver(str(DRIVERS / "divscope.toml")) == DRIVERS / "divscope.toml"
+    own = tmp_path / "divscope.toml"  # a bench's own copy hides the shipped one
+    shutil.copy(DRIVERS / "divscope.toml", own)
     monkeypatch.setenv("ACQD_DRIVERS", str(tmp_path))
-    assert find_driver("viewscope") == own
+    assert find_driver("divscope") == own
     with pytest.raises(ConfigError) as info:
         find_driver("no-such-driver")
     assert all(name in one_line(info.value) for name in SHIPPED) and "ACQD_DRIVERS" in str(info.value)
@@ -189,8 +189,8 @@ def test_cli_drivers_lists_the_shipped_files(capsys):
 
 def test_cli_probe_names_the_fitting_driver(sim_bench, capsys):
     bench = sim_bench()
-    assert acqd_main(["probe", bench.resources["viewscope"]]) == 0
-    assert "driver: viewscope" in capsys.readouterr().out
+    assert acqd_main(["probe", bench.resources["divscope"]]) == 0
+    assert "driver: divscope" in capsys.readouterr().out
 
 
 def test_cli_probe_unreachable_is_one_line_exit_2(capsys):

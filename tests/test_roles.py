@@ -18,7 +18,7 @@ from acqd.instruments import Generator, Scope, open_instrument
 from acqd.record import Stimulus
 
 DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
-DIALECTS = {"scpi-digitizer": "scope", "viewscope": "viewscope"}  # driver → simulated bench resource
+DIALECTS = {"scpi-digitizer": "scope", "divscope": "divscope"}  # driver → simulated bench resource
 # The demo DUT (acqd.sim.bench.DEMO_DUT) behind the generator's 50 ohm source resistance.
 R_OHM, L_H, C_F = 27.0 + 50.0, 3.3e-3, 68e-9
 WINDOW_S, N, SHARE = 400e-6, 4000, 0.1
@@ -93,7 +93,7 @@ def test_same_code_both_dialects_gives_the_textbook_step(bench, opened, generato
         expected = v_c_step(timebase.times(), 1.0)
         assert np.max(np.abs(volts - expected)) <= LSB_V / 2 + 1e-6
         captured[driver] = volts
-    assert np.max(np.abs(captured["scpi-digitizer"] - captured["viewscope"])) <= LSB_V
+    assert np.max(np.abs(captured["scpi-digitizer"] - captured["divscope"])) <= LSB_V
 
 
 def test_generator_applies_in_order_and_reads_back(bench, opened):
@@ -148,7 +148,7 @@ def test_trigger_that_never_comes_times_out_then_the_next_capture_works(bench, o
         acquire(scope, level_v=5.0, timeout_s=0.3)  # the stimulus never crosses 5 V
     text = one_line(info.value)
     assert text.startswith(bench.resources[DIALECTS[driver]]) and "not complete within 0.3 s" in text
-    # The driver's abort operation disarmed it (SCPI-1999 ABORt; the second dialect's ARM:HALT): a trigger
+    # The driver's abort operation disarmed it (SCPI-1999 ABORt; the second dialect's CATCh:HALT): a trigger
     # arriving late cannot complete the abandoned acquisition.
     assert getattr(bench, DIALECTS[driver]).acquisition.state == "IDLE"
     volts, timebase = acquire(scope)
@@ -167,9 +167,9 @@ def test_trigger_never_fault_on_the_digitizer(bench, opened, generator):
 
 def test_wrong_driver_for_the_instrument_is_refused(bench):
     with pytest.raises(InstrumentError) as info:
-        open_instrument(bench.resources["viewscope"], "scpi-digitizer")
+        open_instrument(bench.resources["divscope"], "scpi-digitizer")
     text = one_line(info.value)
-    assert text.startswith(bench.resources["viewscope"]) and "identifies as 'acqd-sim,VIEWSCOPE" in text
+    assert text.startswith(bench.resources["divscope"]) and "identifies as 'acqd-sim,DIVSCOPE" in text
 
 
 @pytest.mark.parametrize("driver", list(DIALECTS))

@@ -52,26 +52,33 @@ def errors(session) -> list[int]:
 
 
 def read_volts(scope, channel: int, fmt: str = "REAL,32", order: str = "NORM") -> np.ndarray:
-    """One channel of the last DIG record, decoded by pyvisa's block reader and scaled per YINC/YORigin."""
+    """One channel of the last DIG record, decoded by pyvisa's block reader and scaled per TRACe:AXES?."""
     scope.write(f"FORM {fmt};:FORM:BORD {order}")
     big = order.upper().startswith("NORM")
     if fmt == "ASC":
         return np.array(scope.query_ascii_values(f"TRAC? CH{channel}"))
     datatype = {"REAL,32": "f", "INT,8": "b", "INT,16": "h"}[fmt]
     raw = np.array(scope.query_binary_values(f"TRAC? CH{channel}", datatype=datatype, is_big_endian=big))
-    return raw * number(scope, f"TRAC:YINC? CH{channel}") + number(scope, f"TRAC:YOR? CH{channel}")
+    _, _, per_code, at_zero = axes(scope, channel)
+    return raw * per_code + at_zero
+
+
+def axes(scope, channel: int = 1) -> tuple[float, ...]:
+    """``TRACe:AXES? CH<n>``: seconds per sample, first sample's time, volts per code, volts at code 0."""
+    return tuple(scpi.parse_number(v) for v in scope.query(f"TRAC:AXES? CH{channel}").split(","))
 
 
 def times(scope) -> np.ndarray:
-    return number(scope, "TRAC:XOR?") + np.arange(int(scope.query("TRAC:POIN?"))) * number(scope, "TRAC:XINC?")
+    dt, t_first, _, _ = axes(scope)
+    return t_first + np.arange(int(scope.query("TRAC:POIN?"))) * dt
 
 
 @pytest.fixture
 def quiet(sim_bench, visa, quiet_table):
-    """A bench with front-end imperfections off (8-bit quantisation on): (bench, gen, scope, viewscope)."""
+    """A bench with front-end imperfections off (8-bit quantisation on): (bench, gen, scope, divscope)."""
     bench = sim_bench(quiet_table)
     return (bench, visa(bench.resources["gen"]), visa(bench.resources["scope"], timeout_ms=1000),
-            visa(bench.resources["viewscope"]))
+            visa(bench.resources["divscope"]))
 
 
 def square(gen, low: float, high: float, freq: float = 50.0, load: str = "HIGHZ") -> None:
@@ -163,7 +170,7 @@ def test_trigger_on_the_edge_with_pre_trigger_samples(sim_bench, visa, quiet_tab
     square(gen, 0.0, 1.0, freq=50.0)
     assert capture(scope, time_s=1e-3, points=1000, pre=100) == "1"
     t = times(scope)
-    assert number(scope, "TRAC:XINC?") == pytest.approx(1e-6)  # SWE:TIME / SWE:POIN
+    assert axes(scope)[0] == pytest.approx(1e-6)               # SWE:TIME / SWE:POIN
     assert t[100] == pytest.approx(0.0, abs=1e-12)             # OFFS:POIN -100: 100 pre-trigger samples
     v_c = read_volts(scope, 2)
     # smoke check of the physics against the textbook step response (the lead's tests go further); the
@@ -203,7 +210,7 @@ def test_int16_words_carry_the_8_bit_code_times_256(quiet):
     scope.write("FORM INT,16;:FORM:BORD NORM")
     codes = np.array(scope.query_binary_values("TRAC? CH2", datatype="h", is_big_endian=True))
     assert np.all(codes % 256 == 0) and len(np.unique(codes)) > 20
-    assert number(scope, "TRAC:YINC? CH2") == pytest.approx(2 * 1.25 / 65536)
+    assert axes(scope, 2)[2] == pytest.approx(2 * 1.25 / 65536)
 
 
 @pytest.mark.timeout(20)
@@ -345,17 +352,17 @@ def test_bandwidth_is_a_single_pole_low_pass_on_the_sample_grid():
 @pytest.mark.timeout(20)
 def test_realtime_mode_takes_the_instrument_time(sim_bench, visa, quiet_table):
     bench = sim_bench({**quiet_table, "realtime": True})
-    gen, scope, view = (visa(bench.resources[k]) for k in ("gen", "scope", "viewscope"))
+    gen, scope, view = (visa(bench.resources[k]) for k in ("gen", "scope", "divscope"))
     square(gen, 0.0, 1.0, freq=20.0)
     t0 = time.monotonic()
     assert capture(scope, time_s=0.1, points=1000, pre=100) == "1"
     assert time.monotonic() - t0 >= 0.09  # at least the post-trigger part of the window
-    view.write("ARM:SOUR FREE;:SPAN:HDIV 0.02;:ARM:SING")  # a 0.2 s window, free running
-    assert view.query("ARM:STAT?") == "WAIT"
+    view.write("CATCh:SOUR FREE;:SPAN:PERD 0.02;:CATCh:ONCE")  # a 0.2 s window, free running
+    assert view.query("CATCh:STAT?") == "WAIT"
     deadline = time.monotonic() + 5
-    while view.query("ARM:STAT?") != "DONE" and time.monotonic() < deadline:
+    while view.query("CATCh:STAT?") != "DONE" and time.monotonic() < deadline:
         time.sleep(0.02)
-    assert view.query("ARM:STAT?") == "DONE"
+    assert view.query("CATCh:STAT?") == "DONE"
 
 
 # --- blocks on the wire and their faults -------------------------------------------------------------------
@@ -413,37 +420,37 @@ def test_garbled_header_and_dropped_block_faults(quiet):
 
 # --- the second dialect ------------------------------------------------------------------------------------
 
-def test_viewscope_gives_the_same_volts_as_the_digitizer(quiet):
+def test_divscope_gives_the_same_volts_as_the_digitizer(quiet):
     _, gen, scope, view = quiet
     square(gen, 0.0, 1.0)
     assert capture(scope, time_s=1e-3, points=1000, pre=100, range_v=1.6, offset_v=0.8) == "1"
     dig = read_volts(scope, 2)
     # the same window and span in per-division terms: 10 × 1e-4 s, 10 % lead; 8 × 0.4 V = ±1.6 V about 0.8 V
-    view.write("SPAN:HDIV 1e-4;POIN 1000;LEAD 0.1;:VIEW2:VDIV 0.4;CENT 0.8;:ARM:SOUR EXT;EDGE UP;THR 0.5")
-    view.write("DUMP:WIDT 16;:ARM:SING")
-    assert view.query("ARM:STAT?") == "DONE"
-    per_code, at_zero, dt, t_first = (scpi.parse_number(v) for v in view.query("DUMP:VIEW2:SCAL?").split(","))
-    codes = np.array(view.query_binary_values("DUMP:VIEW2:COD?", datatype="h", is_big_endian=False))
+    view.write("SPAN:PERD 1e-4;POIN 1000;LEAD 0.1;:LANE2:PERD 0.4;CENT 0.8;:CATCh:SOUR EXT;EDGE UP;THR 0.5")
+    view.write("BLOCk:WIDT 16;:CATCh:ONCE")
+    assert view.query("CATCh:STAT?") == "DONE"
+    per_code, at_zero, dt, t_first = (scpi.parse_number(v) for v in view.query("BLOCk:LANE2:SCAL?").split(","))
+    codes = np.array(view.query_binary_values("BLOCk:LANE2:COD?", datatype="h", is_big_endian=False))
     assert np.max(np.abs(codes * per_code + at_zero - dig)) < 1e-6
-    assert (dt, t_first) == pytest.approx((number(scope, "TRAC:XINC?"), number(scope, "TRAC:XOR?")))
-    view.write("DUMP:WIDT 8")
-    codes8 = np.array(view.query_binary_values("DUMP:VIEW2:COD?", datatype="b"))
+    assert (dt, t_first) == pytest.approx(axes(scope, 2)[:2])
+    view.write("BLOCk:WIDT 8")
+    codes8 = np.array(view.query_binary_values("BLOCk:LANE2:COD?", datatype="b"))
     assert np.array_equal(codes8.astype(int) * 256, codes.astype(int))
 
 
 @pytest.mark.timeout(20)
-def test_viewscope_state_poll_and_its_opc_does_not_wait(quiet):
+def test_divscope_state_poll_and_its_opc_does_not_wait(quiet):
     _, gen, _, view = quiet
-    assert view.query("ARM:STAT?") == "IDLE"
+    assert view.query("CATCh:STAT?") == "IDLE"
     gen.write("FUNC SQU;FREQ 50;:VOLT:LOW 0;HIGH 1")  # output off
-    view.write("ARM:SOUR EXT;EDGE DOWN;THR 0.5;:ARM:SING")
-    assert view.query("ARM:STAT?") == "WAIT"
+    view.write("CATCh:SOUR EXT;EDGE DOWN;THR 0.5;:CATCh:ONCE")
+    assert view.query("CATCh:STAT?") == "WAIT"
     assert view.query("*OPC?") == "1"  # this dialect's *OPC? does not cover the acquisition
-    view.write("DUMP:VIEW1:COD?")
+    view.write("BLOCk:LANE1:COD?")
     assert errors(view) == [-230]
     gen.query("OUTP ON;*OPC?")
-    assert view.query("ARM:STAT?") == "DONE"
-    view.write("DUMP:WIDT 12")
+    assert view.query("CATCh:STAT?") == "DONE"
+    view.write("BLOCk:WIDT 12")
     assert errors(view) == [-224]
 
 
@@ -489,9 +496,9 @@ def test_acqd_sim_json_serves_until_sigterm(visa):
                             stderr=subprocess.PIPE, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
     try:
         resources = json.loads(proc.stdout.readline())
-        assert sorted(resources) == ["gen", "scope", "viewscope"]
+        assert sorted(resources) == ["divscope", "gen", "scope"]
         models = {name: visa(resource).query("*IDN?").split(",")[1] for name, resource in resources.items()}
-        assert models == {"gen": "FG", "scope": "DIG", "viewscope": "VIEWSCOPE"}
+        assert models == {"gen": "FG", "scope": "DIG", "divscope": "DIVSCOPE"}
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=20) == 0
     finally:

@@ -65,7 +65,7 @@ from .generator import Generator
 from .plant import Plant
 from .scope import N_CHANNELS, DigitizerScope
 from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
-from .viewscope import ViewScope
+from .divscope import DivScope
 
 TABLE = "bench.simulated"
 DRIFT_TABLE = f"{TABLE}.drift"
@@ -261,7 +261,7 @@ class ServedBench:
 
 
 class SimBench(ServedBench):
-    """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``viewscope``, around one DUT plant."""
+    """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``divscope``, around one DUT plant."""
 
     def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
         super().__init__(host)
@@ -273,7 +273,7 @@ class SimBench(ServedBench):
         self.plant_source: Callable[[], Plant] = self._drifted_plant if self.config.drift else lambda: self._plant
         self.generator: Generator | None = None
         self.scope: DigitizerScope | None = None
-        self.viewscope: ViewScope | None = None
+        self.divscope: DivScope | None = None
         self._started_s: float | None = None
 
     def plant_now(self) -> Plant:
@@ -314,9 +314,9 @@ class SimBench(ServedBench):
                                   f"{exc.field} {exc.problem}") from None
 
     def create_instruments(self) -> dict[str, SCPIInstrument]:
-        scope_seed, view_seed = np.random.SeedSequence(self.config.seed).spawn(2)
+        scope_seed, divscope_seed = np.random.SeedSequence(self.config.seed).spawn(2)
         self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
         self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
-        self.viewscope = ViewScope(self, np.random.default_rng(view_seed))
+        self.divscope = DivScope(self, np.random.default_rng(divscope_seed))
         self._started_s = time.monotonic()
-        return {"gen": self.generator, "scope": self.scope, "viewscope": self.viewscope}
+        return {"gen": self.generator, "scope": self.scope, "divscope": self.divscope}

@@ -22,12 +22,12 @@ come from. What a client can observe, and so what is promised:
   not have queues −221 naming the inputs it has, and sends nothing.
 * Samples come back bit for bit through the client's decoding and scaling. REAL,32 carries the float32
   of each stored value, which must be that value (a scope's REAL,32 volts are). INTeger,8 and INTeger,16
-  carry codes (v − YORigin) / YINCrement at the channel's range and offset as the client set them, which
-  must be whole, fit the word and give back v exactly as code × YINCrement + YORigin. ASCii carries the
+  carry codes (v − volts_at_code_0) / volts_per_code at the channel's range and offset as the client set them, which
+  must be whole, fit the word and give back v exactly as code × volts_per_code + volts_at_code_0. ASCii carries the
   shortest decimal that reads back as the same double, so it carries any record. A record the data
   format cannot carry exactly is −221 at INITiate (nothing armed), or at ``TRACe?`` if the format was
   changed after arming — never silently different data.
-* XINCrement? and XORigin? answer the record's sample interval and −(pre-trigger samples) × interval,
+* ``TRACe:AXES?`` answers the record's sample interval and −(pre-trigger samples) × interval,
   so the client rebuilds the record's time base exactly.
 * When the records run out, INITiate queues −300 "replay: all N records of <store> served" and the
   acquisition stays armed and never completes, like a trigger that never comes: ``*OPC?`` does not

@@ -326,13 +326,7 @@ class DigitizerScope(SCPIInstrument):
             query=lambda inst: inst.settings.data_format),
         setting("FORMat:BORDer", "byte_order", Choice(("NORMal", "SWAPped"))),
         Cmd("TRACe[:DATA]", query="_trace", query_params=(ChannelRef(),)),
-        Cmd("TRACe:YINCrement", query=lambda inst, ch: Number().format(inst._scaling(ch)[0]),
-            query_params=(ChannelRef(),)),
-        Cmd("TRACe:YORigin", query=lambda inst, ch: Number().format(inst._scaling(ch)[1]),
-            query_params=(ChannelRef(),)),
-        Cmd("TRACe:XINCrement", query=lambda inst: Number().format(inst._request().sample_interval_s)),
-        Cmd("TRACe:XORigin", query=lambda inst: Number().format(
-            inst._request().first_index * inst._request().sample_interval_s)),
+        Cmd("TRACe:AXES", query="_axes", query_params=(ChannelRef(),)),
         Cmd("TRACe:POINts", query=lambda inst: str(inst._request().n_samples)),
     )
 
@@ -389,8 +383,14 @@ class DigitizerScope(SCPIInstrument):
     def _request(self) -> CaptureRequest:
         return completed(self.acquisition.record).request
 
-    def _scaling(self, channel: int) -> tuple[float, float]:
-        return channel_scaling(self.acquisition.record, channel, self.settings.data_format)
+    def _axes(self, channel: int) -> str:
+        """``TRACe:AXES? CH<n>``: both axes of a channel's trace in one reply (one round trip, not four):
+        ``seconds_per_sample,seconds_at_first_sample,volts_per_code,volts_at_code_0``. The first sample's
+        time is relative to the trigger, so it is negative when the window holds a pre-trigger baseline."""
+        request = self._request()
+        per_code, at_zero = channel_scaling(self.acquisition.record, channel, self.settings.data_format)
+        values = (request.sample_interval_s, request.first_index * request.sample_interval_s, per_code, at_zero)
+        return ",".join(Number().format(v) for v in values)
 
     def _trace(self, channel: int) -> bytes | str:
         return channel_data(self.acquisition.record, channel, self.bench.front_end, self.settings.data_format,

@@ -1,5 +1,5 @@
-"""The second scope dialect ``acqd-sim,VIEWSCOPE``: per-division settings, integer codes only, its own
-arming and a state poll (``ARM:STATe?``) instead of ``*OPC?``.
+"""The second scope dialect ``acqd-sim,DIVSCOPE``: per-division settings, integer codes only, its own
+arming and a state poll (``CATCh:STATe?``) instead of ``*OPC?``.
 
 It is deliberately unlike the SCPI-1999 digitizer, so that the driver layer is exercised on a dialect it
 cannot map one to one. Underneath it is the same acquisition engine and front end, so the same capture
@@ -23,44 +23,44 @@ WIDTHS = {8: "INT,8", 16: "INT,16"}
 
 
 @dataclass
-class ViewChannel:
-    vdiv_v: float = 0.1
+class DivChannel:
+    volts_per_division: float = 0.1
     centre_v: float = 0.0
     coupling: str = "DC"
 
 
 @dataclass
-class ViewSettings:
+class DivSettings:
     """The ``*RST`` state."""
 
-    hdiv_s: float = 1e-4
+    seconds_per_division: float = 1e-4
     points: int = 1000
     lead: float = 0.1
-    channels: list[ViewChannel] = field(default_factory=lambda: [ViewChannel() for _ in range(N_CHANNELS)])
+    channels: list[DivChannel] = field(default_factory=lambda: [DivChannel() for _ in range(N_CHANNELS)])
     source: str = "EXTernal"
     edge: str = "UP"
     threshold_v: float = 0.0
     width: int = 8
 
 
-class ViewScope(SCPIInstrument):
-    MODEL = "VIEWSCOPE"
+class DivScope(SCPIInstrument):
+    MODEL = "DIVSCOPE"
     COMMANDS = (
-        setting("VIEW<1-4>:VDIVision", "vdiv_v", Number("V", 1e-4, 20.0, default=0.1)),
-        setting("VIEW<1-4>:CENTer", "centre_v", Number("V", -100.0, 100.0, default=0.0)),
-        setting("VIEW<1-4>:COUPling", "coupling", Choice(("DC", "AC"))),
-        setting("SPAN:HDIVision", "hdiv_s", Number("S", 1e-10, 100.0, default=1e-4)),
+        setting("LANE<1-4>:PERDiv", "volts_per_division", Number("V", 1e-4, 20.0, default=0.1)),
+        setting("LANE<1-4>:CENTer", "centre_v", Number("V", -100.0, 100.0, default=0.0)),
+        setting("LANE<1-4>:COUPling", "coupling", Choice(("DC", "AC"))),
+        setting("SPAN:PERDiv", "seconds_per_division", Number("S", 1e-10, 100.0, default=1e-4)),
         setting("SPAN:POINts", "points", Integer(minimum=16, maximum=MAX_POINTS, default=1000)),
         setting("SPAN:LEAD", "lead", Number("", 0.0, 0.9, default=0.1)),
-        setting("ARM:SOURce", "source", Choice(("EXTernal", "FREE"))),
-        setting("ARM:EDGE", "edge", Choice(("UP", "DOWN"))),
-        setting("ARM:THReshold", "threshold_v", Number("V", -100.0, 100.0, default=0.0)),
-        Cmd("ARM:SINGle", set="_arm"),
-        Cmd("ARM:HALT", set=lambda inst: inst.acquisition.abort()),
-        Cmd("ARM:STATe", query=lambda inst: inst.acquisition.state),
-        setting("DUMP:WIDTh", "width", Integer(minimum=8, maximum=16, default=8, allowed=tuple(WIDTHS))),
-        Cmd("DUMP:VIEW<1-4>:CODes", query="_codes"),
-        Cmd("DUMP:VIEW<1-4>:SCALing", query="_scaling"),
+        setting("CATCh:SOURce", "source", Choice(("EXTernal", "FREE"))),
+        setting("CATCh:EDGE", "edge", Choice(("UP", "DOWN"))),
+        setting("CATCh:THReshold", "threshold_v", Number("V", -100.0, 100.0, default=0.0)),
+        Cmd("CATCh:ONCE", set="_arm"),
+        Cmd("CATCh:HALT", set=lambda inst: inst.acquisition.abort()),
+        Cmd("CATCh:STATe", query=lambda inst: inst.acquisition.state),
+        setting("BLOCk:WIDTh", "width", Integer(minimum=8, maximum=16, default=8, allowed=tuple(WIDTHS))),
+        Cmd("BLOCk:LANE<1-4>:CODes", query="_codes"),
+        Cmd("BLOCk:LANE<1-4>:SCALing", query="_scaling"),
     )
 
     def __init__(self, bench: Bench, rng: np.random.Generator) -> None:
@@ -68,8 +68,8 @@ class ViewScope(SCPIInstrument):
         self.bench = bench
         self.acquisition = Acquisition(bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
 
-    def make_settings(self) -> ViewSettings:
-        return ViewSettings()
+    def make_settings(self) -> DivSettings:
+        return DivSettings()
 
     def reset(self) -> None:
         self.acquisition.abort()
@@ -78,10 +78,10 @@ class ViewScope(SCPIInstrument):
     def _arm(self) -> None:
         s = self.settings
         self.acquisition.arm(CaptureRequest(
-            sample_interval_s=HORIZONTAL_DIVISIONS * s.hdiv_s / s.points, n_samples=s.points,
+            sample_interval_s=HORIZONTAL_DIVISIONS * s.seconds_per_division / s.points, n_samples=s.points,
             first_index=-round(s.lead * s.points), external=s.source == "EXTernal", rising=s.edge == "UP",
             level_v=s.threshold_v,
-            channels=tuple(ChannelSetup(c.centre_v, VERTICAL_DIVISIONS / 2 * c.vdiv_v, c.coupling)
+            channels=tuple(ChannelSetup(c.centre_v, VERTICAL_DIVISIONS / 2 * c.volts_per_division, c.coupling)
                            for c in s.channels)))
 
     def _codes(self, channel: int) -> bytes:

@@ -333,7 +333,7 @@ def test_job_store_that_is_not_a_database(tmp_path: Path) -> None:
 
 
 def test_interval_campaign_restarted_after_a_kill_records_the_missed_slots(tmp_path: Path) -> None:
-    # Slots every 0.25 s; the daemon is down for about 1.5 s, so slots pass unrun: with coalesce, the latest
+    # Slots every 0.25 s; the daemon is down for about 1.5 s, so slots pass unrun: with run_latest, the latest
     # of them runs at once and the others are recorded missed, each slot number exactly once.
     profile = write_profile(tmp_path / "gap.toml", 'name = "gap"\nevery_s = 0.25\nslots = 24\n')
     data = tmp_path / "data"
@@ -351,13 +351,13 @@ def test_interval_campaign_restarted_after_a_kill_records_the_missed_slots(tmp_p
     missed = [n for n, s in states.items() if s == "missed"]
     assert len(missed) >= 4  # 1.5 s of downtime alone spans six slot times
     notes = [note for (note,) in ledger_rows(data, "SELECT note FROM acqd_slots WHERE state = 'missed'")]
-    assert all(note.startswith("coalesced into slot ") for note in notes), notes
+    assert all(note.startswith("run late as slot ") for note in notes), notes
     tags = stored_tags(data / "gap.h5")
     done = sorted(n for n, s in states.items() if s == "done")
     assert sorted(slot for _, slot, _ in tags) == done and [i for i, _, _ in tags] == list(range(len(done)))
     events = [json.loads(line) for line in (data / "runlog.jsonl").read_text().splitlines() if line.startswith("{")]
     logged = sum(e["count"] for e in events if e["event"] == "slot_missed")
-    assert logged == len(missed) and all(e["policy"] == "coalesce" for e in events if e["event"] == "slot_missed")
+    assert logged == len(missed) and all(e["policy"] == "run_latest" for e in events if e["event"] == "slot_missed")
 
 
 def test_record_stored_but_not_in_the_ledger_is_not_taken_again(tmp_path: Path) -> None:

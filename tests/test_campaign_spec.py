@@ -23,14 +23,14 @@ def profile_with(tmp_path: Path, campaign: str, name: str = "night.toml"):
 def test_interval_campaign_with_sweep_expands_to_one_step_per_setting_and_edge(tmp_path: Path) -> None:
     spec = load_campaign(profile_with(tmp_path, 'every_s = 600\nslots = 48\n'
                                                 '[campaign.sweep]\nhigh_v = [0.5, 1.0]\nedge = ["rising", "falling"]\n'))
-    assert (spec.name, spec.schedule, spec.every_s, spec.slots, spec.misfire) == ("night", "interval", 600.0, 48,
-                                                                                  "coalesce")
+    assert (spec.name, spec.schedule, spec.every_s, spec.slots, spec.late_slots) == ("night", "interval", 600.0, 48,
+                                                                                  "run_latest")
     # Cartesian product in the order written: (0.5, rising), (0.5, falling), (1.0, rising), (1.0, falling)
     assert [(s.profile.stimulus.high_v, s.profile.stimulus.edges) for s in spec.steps] == [
         (0.5, ("rising",)), (0.5, ("falling",)), (1.0, ("rising",)), (1.0, ("falling",))]
     assert [s.number for s in spec.steps] == [1, 2, 3, 4]
     assert spec.steps[2].label == "high_v=1 V, rising"
-    assert spec.misfire_grace_s == 300.0  # default: half the interval
+    assert spec.lateness_limit_s == 300.0  # default: half the interval
 
 
 def test_without_sweep_each_profile_edge_is_a_step(tmp_path: Path) -> None:
@@ -68,8 +68,8 @@ BAD = [
     ('every_s = 60\nuntil = "tomorrow"\n', ["campaign.until", "ISO 8601"]),
     ("every_s = 60\nuntil = 2026-12-03\n", ["campaign.until", "date without a time"]),
     ("every_s = 60\nstart = 2026-12-03T06:00:00Z\nuntil = 2026-12-03T05:00:00Z\n", ["campaign.until", "after start"]),
-    ('every_s = 60\nslots = 3\nmisfire = "later"\n', ["campaign.misfire", "coalesce, skip"]),
-    ("every_s = 60\nslots = 3\nmisfire_grace_s = 5\n", ["campaign.misfire_grace_s", "only with misfire"]),
+    ('every_s = 60\nslots = 3\nlate_slots = "later"\n', ["campaign.late_slots", "run_latest, skip"]),
+    ("every_s = 60\nslots = 3\nlateness_limit_s = 5\n", ["campaign.lateness_limit_s", "only with late_slots"]),
     ("every_s = 60\nslots = 3\nretries = -1\n", ["campaign.retries", "from 0 to 100"]),
     ('every_s = 60\nslots = 3\nname = "night run"\n', ["campaign.name", "letters, digits"]),
     ("every_s = 60\nslots = 3\nevery_hours = 2\n", ["campaign.every_hours", "unknown key"]),
@@ -165,28 +165,28 @@ def test_back_to_back_grid() -> None:
 
 
 @pytest.mark.parametrize("policy,late_s,runs,missed", [
-    ("coalesce", 2.0, True, (3, 4)),
-    ("coalesce", 500.0, True, (3, 4)),  # however late: the latest due slot runs once
-    ("skip", 2.0, True, (3, 4)),  # within misfire_grace_s = 5 s: slot 5 still runs
+    ("run_latest", 2.0, True, (3, 4)),
+    ("run_latest", 500.0, True, (3, 4)),  # however late: the latest due slot runs once
+    ("skip", 2.0, True, (3, 4)),  # within lateness_limit_s = 5 s: slot 5 still runs
     ("skip", 10.0, False, (3, 5)),  # too late: slot 5 is missed as well
 ])
-def test_misfire_policy_decides_and_records(tmp_path: Path, policy: str, late_s: float, runs: bool,
+def test_late_slot_policy_decides_and_records(tmp_path: Path, policy: str, late_s: float, runs: bool,
                                             missed: tuple[int, int]) -> None:
     from acqd.campaign.ledger import Ledger
     from acqd.campaign.runlog import RunLog, read_runlog
     from acqd.campaign.runner import CampaignRunner, StopFlag
 
-    grace = "misfire_grace_s = 5\n" if policy == "skip" else ""
-    spec = load_campaign(profile_with(tmp_path, f'every_s = 60\nslots = 10\nmisfire = "{policy}"\n{grace}'))
+    grace = "lateness_limit_s = 5\n" if policy == "skip" else ""
+    spec = load_campaign(profile_with(tmp_path, f'every_s = 60\nslots = 10\nlate_slots = "{policy}"\n{grace}'))
     ledger, log = Ledger(tmp_path / "campaigns.sqlite"), RunLog(tmp_path / "runlog.jsonl")
     runner = CampaignRunner(spec, tmp_path, ledger, log, StopFlag())
     runner.grid = IntervalGrid(T0, 60.0, slots=10, until=None)
     # Slots 1 and 2 ran; now slot 5 is due (slots 3 and 4 passed while the daemon was down).
-    assert runner._apply_misfire(2, 5, T0 + timedelta(minutes=4, seconds=late_s)) is runs
+    assert runner._apply_late_slots(2, 5, T0 + timedelta(minutes=4, seconds=late_s)) is runs
     (row,) = ledger.slots(spec.name)
     assert (row.first_slot, row.slot, row.state) == (*missed, "missed")
     assert row.scheduled_utc == (T0 + timedelta(minutes=2)).isoformat(timespec="microseconds")  # slot 3's time
-    assert row.note.startswith("coalesced into slot 5" if runs else "skipped: 10 s late")
+    assert row.note.startswith("run late as slot 5" if runs else "skipped: 10 s late")
     (event,) = [e for e in read_runlog(tmp_path / "runlog.jsonl") if e["event"] == "slot_missed"]
     assert (event["slots"], event["count"], event["policy"]) == (list(missed), missed[1] - missed[0] + 1, policy)
     ledger.close()

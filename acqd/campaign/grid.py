@@ -2,7 +2,7 @@
 
 Slots are numbered from 1 by their place in the schedule, not by how many ran: slot n of an interval
 campaign is due at anchor + (n-1)·every_s whatever happened before it. So after a night with the daemon
-down for an hour, the slots of that hour are the *same* numbered slots, handled by the misfire policy and
+down for an hour, the slots of that hour are the *same* numbered slots, handled by the late-slot policy and
 recorded, and the slots after it keep their times. The scheduler (APScheduler) only wakes the daemon; the
 grid decides which slot a wake-up is for, so a wake-up that APScheduler dropped or delayed (a slot that
 overran the next one, a restart) cannot shift or lose a slot.

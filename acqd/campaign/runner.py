@@ -221,7 +221,7 @@ class CampaignRunner:
                               grid.total, len(self.spec.steps), iso(now), None)
             self.ledger.add_campaign(row)
             self._log("campaign_start", profile=row.profile, schedule=self._schedule_text(), slots=grid.total,
-                      steps_per_slot=len(self.spec.steps), misfire=self.spec.misfire, store=row.store)
+                      steps_per_slot=len(self.spec.steps), late_slots=self.spec.late_slots, store=row.store)
         else:
             if row.profile_sha256 != self.spec.profile.sha256:
                 self.ledger.update_profile(self.name, self.spec.profile.sha256)
@@ -300,24 +300,24 @@ class CampaignRunner:
             due = self.grid.due(now, done)
             if due <= done:
                 break
-            if self._apply_misfire(done, due, now):
+            if self._apply_late_slots(done, due, now):
                 self._run_slot(due, self.grid.time_of(due), resumed=False)
         self._idle()
 
-    def _apply_misfire(self, done: int, due: int, now: datetime) -> bool:
+    def _apply_late_slots(self, done: int, due: int, now: datetime) -> bool:
         """Record slots ``done+1 .. due-1`` missed; with ``skip``, ``due`` too when it is too late. True
         when ``due`` is to run now."""
         scheduled = self.grid.time_of(due)
         late_s = (now - scheduled).total_seconds() if scheduled else 0.0
-        run = not (self.spec.misfire == "skip" and late_s > self.spec.misfire_grace_s)
+        run = not (self.spec.late_slots == "skip" and late_s > self.spec.lateness_limit_s)
         last_missed = due if not run else due - 1
         if last_missed > done:
             first = done + 1
-            why = (f"coalesced into slot {due}" if run else
-                   f"skipped: {late_s:.3g} s late, over misfire_grace_s = {self.spec.misfire_grace_s:g} s")
+            why = (f"run late as slot {due}" if run else
+                   f"skipped: {late_s:.3g} s late, over lateness_limit_s = {self.spec.lateness_limit_s:g} s")
             self.ledger.mark_missed(self.name, first, last_missed, self.grid.time_of(first), now, why)
             self._log("slot_missed", slots=[first, last_missed], count=last_missed - first + 1,
-                      policy=self.spec.misfire, note=why)
+                      policy=self.spec.late_slots, note=why)
         return run
 
     def _run_slot(self, slot: int, scheduled: datetime | None, *, resumed: bool) -> None:

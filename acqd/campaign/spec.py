@@ -11,9 +11,9 @@ Schema (every error names the file, line, key and what is allowed; unknown keys 
     # start = 2026-12-02T22:00:00+01:00   # first slot no earlier than this; default: when first started
     slots = 48                    # how many slots ...
     # until = 2026-12-03T06:00:00+01:00   # ... or until when (exactly one of the two)
-    misfire = "coalesce"          # a slot whose time passed while the daemon was down or busy:
-                                  #   coalesce = run it once now, late; skip = record it missed
-    # misfire_grace_s = 300       # skip only: how late a slot may still start (default: half the interval,
+    late_slots = "run_latest"     # a slot whose time passed while the daemon was down or busy:
+                                  #   run_latest = run it once now, late; skip = record it missed
+    # lateness_limit_s = 300      # skip only: how late a slot may still start (default: half the interval,
                                   #   60 s for cron)
     retries = 3                   # failed attempts retried per slot, each after reconnecting the bench
     retry_backoff_s = 2.0         # wait before the first retry; doubles on each further one
@@ -46,7 +46,7 @@ from ..profile import Profile, StimulusPlan
 from ..record import EDGES, LOADS
 
 SCHEDULES = ("interval", "cron", "back_to_back")
-MISFIRE_POLICIES = ("coalesce", "skip")
+LATE_SLOT_POLICIES = ("run_latest", "skip")
 SWEEP_NUMBERS = {"low_v": "V", "high_v": "V", "frequency_hz": "Hz"}
 SWEEP_KEYS = (*SWEEP_NUMBERS, "edge", "load")
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
@@ -77,8 +77,8 @@ class CampaignSpec:
     start: datetime | None
     slots: int | None
     until: datetime | None
-    misfire: str
-    misfire_grace_s: float
+    late_slots: str
+    lateness_limit_s: float
     retries: int
     retry_backoff_s: float
     keep_open_s: float
@@ -114,14 +114,14 @@ def load_campaign(profile: Profile) -> CampaignSpec:
         t.boolean("back_to_back")
     start = t.moment("start")
     slots, until = _extent(t, start)
-    misfire = t.string("misfire", "coalesce", choices=MISFIRE_POLICIES)
-    grace = _grace(t, schedule, misfire, every_s)
+    late_slots = t.string("late_slots", "run_latest", choices=LATE_SLOT_POLICIES)
+    grace = _grace(t, schedule, late_slots, every_s)
     retries = t.integer("retries", 3, min=0, max=100)
     backoff = t.number("retry_backoff_s", 2.0, min=0.0, unit="s")
     keep_open = t.number("keep_open_s", 60.0, min=0.0, unit="s")
     steps = _steps(t.table("sweep", {}), profile)
     t.done()
-    return CampaignSpec(name, profile, schedule, every_s, cron, zone, start, slots, until, misfire, grace,
+    return CampaignSpec(name, profile, schedule, every_s, cron, zone, start, slots, until, late_slots, grace,
                         retries, backoff, keep_open, steps, canonical_json(profile.campaign))
 
 
@@ -194,12 +194,12 @@ def _extent(t: Table, start: datetime | None) -> tuple[int | None, datetime | No
     return None, until
 
 
-def _grace(t: Table, schedule: str, misfire: str, every_s: float | None) -> float:
-    if not t.has("misfire_grace_s"):
+def _grace(t: Table, schedule: str, late_slots: str, every_s: float | None) -> float:
+    if not t.has("lateness_limit_s"):
         return every_s / 2 if every_s is not None else CRON_GRACE_S
-    if schedule == "back_to_back" or misfire != "skip":
-        raise t.error("misfire_grace_s", "only with misfire = \"skip\" on an every_s or cron schedule")
-    return t.number("misfire_grace_s", positive=True, unit="s")
+    if schedule == "back_to_back" or late_slots != "skip":
+        raise t.error("lateness_limit_s", "only with late_slots = \"skip\" on an every_s or cron schedule")
+    return t.number("lateness_limit_s", positive=True, unit="s")
 
 
 def _steps(sweep: Table, profile: Profile) -> tuple[Step, ...]:

@@ -115,13 +115,13 @@ def load_campaign(profile: Profile) -> CampaignSpec:
     start = t.moment("start")
     slots, until = _extent(t, start)
     late_slots = t.string("late_slots", "run_latest", choices=LATE_SLOT_POLICIES)
-    grace = _grace(t, schedule, late_slots, every_s)
+    lateness_limit = _lateness_limit(t, schedule, late_slots, every_s)
     retries = t.integer("retries", 3, min=0, max=100)
     backoff = t.number("retry_backoff_s", 2.0, min=0.0, unit="s")
     keep_open = t.number("keep_open_s", 60.0, min=0.0, unit="s")
     steps = _steps(t.table("sweep", {}), profile)
     t.done()
-    return CampaignSpec(name, profile, schedule, every_s, cron, zone, start, slots, until, late_slots, grace,
+    return CampaignSpec(name, profile, schedule, every_s, cron, zone, start, slots, until, late_slots, lateness_limit,
                         retries, backoff, keep_open, steps, canonical_json(profile.campaign))
 
 
@@ -194,7 +194,7 @@ def _extent(t: Table, start: datetime | None) -> tuple[int | None, datetime | No
     return None, until
 
 
-def _grace(t: Table, schedule: str, late_slots: str, every_s: float | None) -> float:
+def _lateness_limit(t: Table, schedule: str, late_slots: str, every_s: float | None) -> float:
     if not t.has("lateness_limit_s"):
         return every_s / 2 if every_s is not None else CRON_GRACE_S
     if schedule == "back_to_back" or late_slots != "skip":

@@ -50,7 +50,7 @@ LATE_SLOT_POLICIES = ("run_latest", "skip")
 SWEEP_NUMBERS = {"low_v": "V", "high_v": "V", "frequency_hz": "Hz"}
 SWEEP_KEYS = (*SWEEP_NUMBERS, "edge", "load")
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
-CRON_GRACE_S = 60.0
+CRON_LATENESS_LIMIT_S = 60.0
 
 
 @dataclass(frozen=True)
@@ -196,7 +196,7 @@ def _extent(t: Table, start: datetime | None) -> tuple[int | None, datetime | No
 
 def _lateness_limit(t: Table, schedule: str, late_slots: str, every_s: float | None) -> float:
     if not t.has("lateness_limit_s"):
-        return every_s / 2 if every_s is not None else CRON_GRACE_S
+        return every_s / 2 if every_s is not None else CRON_LATENESS_LIMIT_S
     if schedule == "back_to_back" or late_slots != "skip":
         raise t.error("lateness_limit_s", "only with late_slots = \"skip\" on an every_s or cron schedule")
     return t.number("lateness_limit_s", positive=True, unit="s")

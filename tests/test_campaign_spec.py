@@ -188,6 +188,7 @@ def test_late_slot_policy_decides_and_records(tmp_path: Path, policy: str, late_
     assert row.scheduled_utc == (T0 + timedelta(minutes=2)).isoformat(timespec="microseconds")  # slot 3's time
     assert row.note.startswith("run late as slot 5" if runs else "skipped: 10 s late")
     (event,) = [e for e in read_runlog(tmp_path / "runlog.jsonl") if e["event"] == "slot_missed"]
-    assert (event["slots"], event["count"], event["policy"]) == (list(missed), missed[1] - missed[0] + 1, policy)
+    assert (event["first_slot"], event["last_slot"], event["count"], event["policy"]) == (
+        *missed, missed[1] - missed[0] + 1, policy)  # slots 3 to 5 inclusive: first and last, not a list of two
     ledger.close()
     log.close()

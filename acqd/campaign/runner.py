@@ -316,7 +316,7 @@ class CampaignRunner:
             why = (f"run late as slot {due}" if run else
                    f"skipped: {late_s:.3g} s late, over lateness_limit_s = {self.spec.lateness_limit_s:g} s")
             self.ledger.mark_missed(self.name, first, last_missed, self.grid.time_of(first), now, why)
-            self._log("slot_missed", slots=[first, last_missed], count=last_missed - first + 1,
+            self._log("slot_missed", first_slot=first, last_slot=last_missed, count=last_missed - first + 1,
                       policy=self.spec.late_slots, note=why)
         return run
 

@@ -13,8 +13,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .frontend import ChannelSetup
-from .scope import (MAX_POINTS, N_CHANNELS, Acquisition, Bench, CaptureRequest, channel_data, channel_scaling,
-                    completed)
+from .scope import (MAX_POINTS, N_CHANNELS, Acquisition, Bench, CaptureRequest, channel_data, number_list,
+                    trace_axes)
 from .server import Choice, Cmd, Integer, Number, SCPIInstrument, setting
 
 VERTICAL_DIVISIONS = 8
@@ -91,7 +91,5 @@ class DivScope(SCPIInstrument):
 
     def _scaling(self, channel: int) -> str:
         """``volts_per_code,volts_at_code_0,seconds_per_sample,seconds_at_first_sample``."""
-        per_code, at_zero = channel_scaling(self.acquisition.record, channel, WIDTHS[self.settings.width])
-        request = completed(self.acquisition.record).request
-        values = (per_code, at_zero, request.sample_interval_s, request.first_index * request.sample_interval_s)
-        return ",".join(Number().format(v) for v in values)
+        dt, t_first, per_code, at_zero = trace_axes(self.acquisition.record, channel, WIDTHS[self.settings.width])
+        return number_list((per_code, at_zero, dt, t_first))

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import asyncio
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Protocol
 
@@ -258,6 +258,20 @@ def channel_scaling(record: Captured | None, channel: int, fmt: str) -> tuple[fl
     return (1.0, 0.0) if bits is None else (setup.volts_per_code(bits), setup.centre_v)
 
 
+def trace_axes(record: Captured | None, channel: int, fmt: str) -> tuple[float, float, float, float]:
+    """(seconds per sample, seconds at the first sample, volts per code, volts at code 0) of one channel's
+    data. The first sample's time is relative to the trigger: negative when the window holds a pre-trigger
+    baseline."""
+    request = completed(record).request
+    per_code, at_zero = channel_scaling(record, channel, fmt)
+    return request.sample_interval_s, request.first_index * request.sample_interval_s, per_code, at_zero
+
+
+def number_list(values: Iterable[float]) -> str:
+    """A comma-separated reply of numbers, each as the simulated instruments format one."""
+    return ",".join(Number().format(v) for v in values)
+
+
 def channel_data(record: Captured | None, channel: int, fe: FrontEndSettings, fmt: str,
                  byteorder: str) -> bytes | str:
     """One channel's samples in a data format: a definite block, or NR3 text for ASCii."""
@@ -384,13 +398,8 @@ class DigitizerScope(SCPIInstrument):
         return completed(self.acquisition.record).request
 
     def _axes(self, channel: int) -> str:
-        """``TRACe:AXES? CH<n>``: both axes of a channel's trace in one reply (one round trip, not four):
-        ``seconds_per_sample,seconds_at_first_sample,volts_per_code,volts_at_code_0``. The first sample's
-        time is relative to the trigger, so it is negative when the window holds a pre-trigger baseline."""
-        request = self._request()
-        per_code, at_zero = channel_scaling(self.acquisition.record, channel, self.settings.data_format)
-        values = (request.sample_interval_s, request.first_index * request.sample_interval_s, per_code, at_zero)
-        return ",".join(Number().format(v) for v in values)
+        """``TRACe:AXES? CH<n>``: both axes of a channel's trace in one reply (one round trip, not four)."""
+        return number_list(trace_axes(self.acquisition.record, channel, self.settings.data_format))
 
     def _trace(self, channel: int) -> bytes | str:
         return channel_data(self.acquisition.record, channel, self.bench.front_end, self.settings.data_format,

@@ -90,7 +90,7 @@ class MathChannel:
 @dataclass(frozen=True)
 class AcquisitionPlan:
     window_s: float
-    pretrigger_share: float
+    pretrigger_fraction: float
     samples: int
     averages: int
     channels: tuple[ChannelPlan, ...]
@@ -224,7 +224,7 @@ def _stimulus(t: Table, limits: Limits) -> StimulusPlan:
 
 def _acquisition(t: Table) -> AcquisitionPlan:
     window = t.number("window_s", positive=True, unit="s")
-    share = t.number("pretrigger_share", 0.2, min=0.0, max=0.9)
+    fraction = t.number("pretrigger_fraction", 0.2, min=0.0, max=0.9)
     samples = t.integer("samples", min=16, max=10_000_000)
     averages = t.integer("averages", 1, min=1, max=10_000)
     channels_table = t.table("channels")
@@ -237,7 +237,7 @@ def _acquisition(t: Table) -> AcquisitionPlan:
     names = [c.name for c in channels]
     if len(set(names)) != len(names):
         raise t.error("channels", f"channel names must be unique, got {names}")
-    plan = AcquisitionPlan(window, share, samples, averages, tuple(channels),
+    plan = AcquisitionPlan(window, fraction, samples, averages, tuple(channels),
                            t.number("trigger_level_v", None, unit="V"),
                            t.number("timeout_s", None, positive=True, unit="s"))
     t.done()

@@ -33,7 +33,7 @@ class GeneratorRole(Protocol):
 class ScopeRole(Protocol):
     identity: str
 
-    def configure_timebase(self, window_s: float, n_samples: int, pretrigger_share: float) -> None: ...
+    def configure_timebase(self, window_s: float, n_samples: int, pretrigger_fraction: float) -> None: ...
     def configure_channel(self, channel: str, range_v: float, offset_v: float, coupling: str) -> None: ...
     def configure_trigger(self, source: str, slope: str, level_v: float) -> None: ...
     def arm(self) -> None: ...
@@ -81,7 +81,7 @@ def output_guard(generator: GeneratorRole) -> Iterator[None]:
 
 def configure_scope(profile: Profile, scope: ScopeRole) -> None:
     acq = profile.acquisition
-    scope.configure_timebase(acq.window_s, acq.samples, acq.pretrigger_share)
+    scope.configure_timebase(acq.window_s, acq.samples, acq.pretrigger_fraction)
     for ch in acq.channels:
         scope.configure_channel(ch.input, ch.range_v, ch.offset_v, ch.coupling)
 

@@ -58,7 +58,7 @@ from acqd.steptest import run_step_test
 from acqd.store import RecordStore
 
 SIMULATED = {"seed": 1, "noise_v_rms": 0.002, "dut": {"model": "series_rlc", "r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9},
-             "probes": {"CH1": "v_src", "CH3": "v_c"}}
+             "wiring": {"CH1": "v_src", "CH3": "v_c"}}
 IN_PROCESS = """
 [bench]
 kind = "simulated"
@@ -74,7 +74,7 @@ model = "series_rlc"
 r_ohm = 22.0
 l_h = 3.3e-3
 c_f = 100e-9
-[bench.simulated.probes]
+[bench.simulated.wiring]
 CH1 = "v_src"
 CH3 = "v_c"
 """
@@ -195,7 +195,7 @@ def main() -> int:
     try:
         resources = parent.recv()
         timing = "in instrument time" if args.instrument_time else "as fast as the CPU allows"
-        return measure(args, CHILD_PROCESS.format(gen=resources["gen"], scope=resources["scope"]),
+        return measure(args, CHILD_PROCESS.format(gen=resources["generator"], scope=resources["scope"]),
                        f"simulated bench in a child process, {timing}")
     finally:
         parent.send("done")

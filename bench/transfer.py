@@ -56,7 +56,7 @@ def serve(conn: Any, quantise: bool) -> None:
     """Child process: the simulated bench, with the scope's block replies cached per record."""
     from acqd.sim.bench import SimBench, SimBenchConfig
 
-    config = SimBenchConfig(noise_v_rms=1e-3, jitter_s=0.0, quantise=quantise, probes={"CH2": "v_c"})
+    config = SimBenchConfig(noise_v_rms=1e-3, jitter_s=0.0, quantise=quantise, wiring={"CH2": "v_c"})
     bench = SimBench(config).start()
     scope = bench.scope
     original = scope._trace
@@ -174,7 +174,7 @@ def compare(quantise: bool, sizes: list[int], repeats: int) -> None:
     server.start()
     try:
         resources = parent.recv()
-        generator = open_instrument(resources["gen"], "scpi-generator")
+        generator = open_instrument(resources["generator"], "scpi-generator")
         generator.apply_stimulus(Stimulus("square", 0.0, 1.0, 1e3, "rising"))
         generator.output(True)
         scope = open_instrument(resources["scope"], "scpi-digitizer", timeout_s=120.0)

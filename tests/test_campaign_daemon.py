@@ -92,7 +92,7 @@ r_ohm = 22.0
 l_h = 3.3e-3
 c_f = 100e-9
 
-[bench.simulated.probes]
+[bench.simulated.wiring]
 CH1 = "v_src"
 CH3 = "v_c"
 """
@@ -394,11 +394,11 @@ def test_faults_are_retried_after_reconnecting_and_a_hopeless_slot_is_recorded_f
     from acqd.sim.bench import SimBench
 
     bench: SimBench = sim_bench(seed=5, dut={"model": "series_rlc", "r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9},
-                                probes={"CH1": "v_src", "CH3": "v_c"})
+                                wiring={"CH1": "v_src", "CH3": "v_c"})
     scope = bench.instruments["scope"]
     profile = write_profile(tmp_path / "faulty.toml", 'name = "faulty"\nback_to_back = true\nslots = 6\n'
                                                       "retries = 2\nretry_backoff_s = 0.05\n",
-                            resources=(bench.resources["gen"], bench.resources["scope"]))
+                            resources=(bench.resources["generator"], bench.resources["scope"]))
     profile.write_text(profile.read_text().replace("[bench.scope]\n", "[bench.scope]\ntimeout_s = 1.0\n"))
     data = tmp_path / "data"
 
@@ -459,8 +459,8 @@ def test_simulated_drift_is_recovered_by_acqd_drift(tmp_path: Path, capsys: pyte
     per_hour, time_scale, r_nominal = 0.2, 3600.0, 22.0
     profile = write_profile(tmp_path / "aging.toml", 'name = "aging"\nback_to_back = true\nslots = 16\n')
     text = profile.read_text()
-    text = text.replace("[bench.simulated.probes]", f'[bench.simulated.drift]\nparameter = "r_ohm"\n'
-                        f"per_hour = {per_hour}\ntime_scale = {time_scale}\n\n[bench.simulated.probes]")
+    text = text.replace("[bench.simulated.wiring]", f'[bench.simulated.drift]\nparameter = "r_ohm"\n'
+                        f"per_hour = {per_hour}\ntime_scale = {time_scale}\n\n[bench.simulated.wiring]")
     text = text.replace("[dut.channels]", '[dut.fit]\nfree = ["r_ohm"]\n\n[dut.channels]')
     profile.write_text(text)
     data = tmp_path / "data"

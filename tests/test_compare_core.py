@@ -75,11 +75,11 @@ def test_stimulus_channel_places_a_resolved_edge_between_samples():
     stim = Stimulus("square", 0.0, 1.0, 200.0, "rising", edge_time_s=4 * dt)
     rec = make_record(nodes, tb, stim, {"v_src": "v_src", "v_c": "v_c"})
     plain = compare(rec, KT9, {"v_src": "v_src", "v_c": "v_c"})
-    aligned = compare(rec, KT9, {"v_src": {"probe": "v_src", "stimulus": True}, "v_c": "v_c"})
+    aligned = compare(rec, KT9, {"v_src": {"signal": "v_src", "stimulus": True}, "v_c": "v_c"})
     assert aligned.stimulus["t50_s"] == pytest.approx(delay, abs=0.01 * dt)
     assert aligned.channel("v_src").nrmse < 1e-4 < plain.channel("v_src").nrmse
     assert "placed by channel v_src" in aligned.stimulus["timing"]
-    fitted = compare(rec, {**KT9, "r_ohm": 30.0}, {"v_src": {"probe": "v_src", "stimulus": True}, "v_c": "v_c"},
+    fitted = compare(rec, {**KT9, "r_ohm": 30.0}, {"v_src": {"signal": "v_src", "stimulus": True}, "v_c": "v_c"},
                      fit={"free": ["r_ohm"]})  # the edge instant is fitted with R, and only R is judged
     assert fitted.fit.nuisance == ("edge_t50_s",) and fitted.fit.values["r_ohm"] == pytest.approx(22.0, rel=1e-4)
     assert fitted.stimulus["t50_s"] == pytest.approx(delay, abs=0.01 * dt)
@@ -89,7 +89,7 @@ def test_an_unresolved_edge_is_placed_to_the_whole_sample():
     # An ideal step's samples only say between which two samples it happened (IEEE 181 has no sub-sample
     # information without a transition): a 3-sample trigger offset is found, to the sample.
     rec = kt9(delay_s=3 * TB.sample_interval_s)
-    aligned = compare(rec, KT9, {"v_src": {"probe": "v_src", "stimulus": True}, "v_c": "v_c"})
+    aligned = compare(rec, KT9, {"v_src": {"signal": "v_src", "stimulus": True}, "v_c": "v_c"})
     assert aligned.stimulus["t50_s"] == pytest.approx(3 * TB.sample_interval_s, abs=1e-15)
     assert aligned.channel("v_c").nrmse < 1e-10
 
@@ -111,7 +111,7 @@ def test_gain_and_offset_map_a_scaled_channel():
     # measured = 0.1 × v_c + 0.05 V; modelled with gain 0.1 and offset 0.05 it must match to rounding.
     rec = kt9()
     rec.channels[2] = type(rec.channels[2])("v_c", "V", 0.1 * rec.channels[2].samples + 0.05, "CH3")
-    result = compare(rec, KT9, {"v_c": {"probe": "v_c", "gain": 0.1, "offset": 0.05}})
+    result = compare(rec, KT9, {"v_c": {"signal": "v_c", "gain": 0.1, "offset": 0.05}})
     assert result.channel("v_c").nrmse < 1e-9
 
 
@@ -182,7 +182,7 @@ overshoot_pct = [40.0, 65.0]
     ({"r_ohm": -1.0}, "r_ohm", "greater than 0"),
     ({"model": "series_lcr"}, "model", "must be one of"),
     ({"channels": {"v_c": "v_x"}}, "channels.v_c", "model output"),
-    ({"channels": {"v_c": {"probe": "v_c", "gain": 0.0}}}, "channels.v_c.gain", "must not be 0"),
+    ({"channels": {"v_c": {"signal": "v_c", "gain": 0.0}}}, "channels.v_c.gain", "must not be 0"),
     ({"fit": {"free": ["r_ohm"], "hold": ["c_f"]}}, "fit.hold", "free parameters"),
     ({"tolerances": {"channels": {"v_r": {"nrmse_max": 0.1}}}, "channels": {"v_c": "v_c"}},
      "tolerances.channels.v_r", "not a mapped channel"),

@@ -1,6 +1,6 @@
 """Driver files: loading, validation (one line naming file and field), expressions, search, the CLI.
 
-No instrument is needed here except for ``acqd probe``. References: Python's own tomllib and arithmetic,
+No instrument is needed here except for ``acqd identify``. References: Python's own tomllib and arithmetic,
 ``re``, and the SCPI / IEEE 488.2 clauses cited beside each check.
 """
 
@@ -67,12 +67,12 @@ def test_commands_follow_the_per_division_and_share_conventions():
     window, n, share, range_v = 2e-4, 2000, 0.2, 1.0
     # Reference: plain Python arithmetic of the DEVELOPERS.md tables: 10 horizontal divisions span the
     # window, 8 vertical divisions span offset ± range; the DIG's pre-trigger is a negative sample offset.
-    sent = view.commands("timebase", window_s=window, n_samples=n, pretrigger_share=share)
+    sent = view.commands("timebase", window_s=window, n_samples=n, pretrigger_fraction=share)
     assert scpi.parse_number(sent[0].split()[1]) == window / 10
     assert sent[1:] == [f"SPAN:POINts {n}", f"SPAN:LEAD {scpi.format_number(share)}"]
     sent = view.commands("channel", channel="CH3", range_v=range_v, offset_v=0.5, coupling="dc")
     assert sent[0] == f"LANE3:PERDiv {scpi.format_number(2 * range_v / 8)}"
-    assert dig.commands("timebase", window_s=window, n_samples=n, pretrigger_share=share)[2] == \
+    assert dig.commands("timebase", window_s=window, n_samples=n, pretrigger_fraction=share)[2] == \
         f"SWEep:OFFSet:POINts {-round(share * n)}"
     # SCPI-1999 Vol 1 §7.2: a numeric value is NR1/NR2/NR3 text, parsed back to the same double here.
     level = dig.commands("trigger", source="external", slope="falling", level_v=0.1)
@@ -127,7 +127,7 @@ def test_malformed_toml_names_the_file(tmp_path):
      "only calls like round(x)"),
     ("divscope", '"window_s / 10"', '"window.s / 10"', "operations.timebase.computed", "not allowed"),
     ("divscope", '"window_s / 10"', '"span_s / 10"', "operations.timebase.computed", "names allowed here"),
-    ("scpi-digitizer", "max_pretrigger_share = 1.0", "", "limits.max_pretrigger_share", "missing"),
+    ("scpi-digitizer", "max_pretrigger_fraction = 1.0", "", "limits.max_pretrigger_fraction", "missing"),
     ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float}\\n*RST"',
      "operations.frequency.commands[0]", "one line"),
 ])
@@ -144,10 +144,10 @@ def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new
 
 # --- expressions --------------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("text", ["window_s / 10", "-round(pretrigger_share * n_samples)",
+@pytest.mark.parametrize("text", ["window_s / 10", "-round(pretrigger_fraction * n_samples)",
                                   "max(abs(a - 3), 2) * (a + 1)", "min(a, 2.5)"])
 def test_expression_values_equal_python_arithmetic(text):
-    values = {"window_s": 2e-4, "pretrigger_share": 0.2, "n_samples": 2000, "a": -1.5}
+    values = {"window_s": 2e-4, "pretrigger_fraction": 0.2, "n_samples": 2000, "a": -1.5}
     expression = Expression.parse(text, values)
     # Reference: Python evaluating the same text (test-only, on constant inputs).
     assert expression.evaluate(values) == eval(text, {"round": round, "abs": abs, "min": min, "max": max}, values)
@@ -187,18 +187,18 @@ def test_cli_drivers_lists_the_shipped_files(capsys):
     assert all(name in out for name in SHIPPED)
 
 
-def test_cli_probe_names_the_fitting_driver(sim_bench, capsys):
+def test_cli_identify_names_the_fitting_driver(sim_bench, capsys):
     bench = sim_bench()
-    assert acqd_main(["probe", bench.resources["divscope"]]) == 0
+    assert acqd_main(["identify", bench.resources["divscope"]]) == 0
     assert "driver: divscope" in capsys.readouterr().out
 
 
-def test_cli_probe_unreachable_is_one_line_exit_2(capsys):
+def test_cli_identify_unreachable_is_one_line_exit_2(capsys):
     import socket
     sock = socket.socket()
     sock.bind(("127.0.0.1", 0))
     resource = f"TCPIP0::127.0.0.1::{sock.getsockname()[1]}::SOCKET"
     sock.close()
-    assert acqd_main(["probe", resource, "--timeout-s", "1"]) == 2
+    assert acqd_main(["identify", resource, "--timeout-s", "1"]) == 2
     err = capsys.readouterr().err.strip()
     assert err.count("\n") == 0 and resource in err and "unreachable" in err

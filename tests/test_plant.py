@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from acqd.models import Probe, series_rlc
+from acqd.models import Signal, series_rlc
 from acqd.sim.plant import Plant
 
 # Values of our own choosing for an under-damped series RLC (zeta about 0.3).
@@ -30,7 +30,7 @@ def test_step_from_rest_matches_closed_form(first_offset_s: float) -> None:
     first = -pre * dt + first_offset_s  # a trigger between samples (jitter) must not break exactness
     vc, il = plant.window(emf_before=0.0, emf_after=2.0, half_period_s=None, sample_interval_s=dt,
                           n_samples=n, first_sample_s=first, edge_time_s=0.0,
-                          probes=[Probe("v_c"), Probe("i_l")])
+                          signals=[Signal("v_c"), Signal("i_l")])
     t = first + np.arange(n) * dt
     vc_ref, il_ref = closed_form_step(t, 2.0, R_OHM + RS_OHM)  # the 50 ohm source adds to R (STANDARDS.md §5)
     assert np.max(np.abs(vc - vc_ref)) < 1e-9
@@ -42,7 +42,7 @@ def test_difference_probe_is_resistor_voltage() -> None:
     plant = Plant(series_rlc(R_OHM, L_H, C_F, RS_OHM))
     vr, il = plant.window(emf_before=0.0, emf_after=1.0, half_period_s=None, sample_interval_s=1e-7,
                           n_samples=2000, first_sample_s=-1e-5, edge_time_s=0.0,
-                          probes=[Probe.parse("v_src - v_rl"), Probe("i_l")])
+                          signals=[Signal.parse("v_src - v_rl"), Signal("i_l")])
     np.testing.assert_allclose(vr, R_OHM * il, atol=1e-12)
 
 
@@ -61,7 +61,7 @@ def test_square_wave_steady_state_matches_lsim() -> None:
     k_edge = (2 * periods - 1) * steps_per_half  # the last high→low edge
     pre = 300
     (vc,) = plant.window(emf_before=1.0, emf_after=0.0, half_period_s=half, sample_interval_s=dt,
-                         n_samples=1000, first_sample_s=-pre * dt, edge_time_s=0.0, probes=[Probe("v_c")])
+                         n_samples=1000, first_sample_s=-pre * dt, edge_time_s=0.0, signals=[Signal("v_c")])
     ref = y[k_edge - pre:k_edge - pre + 1000, model.output_index("v_c")]
     assert np.max(np.abs(vc - ref)) < 1e-6  # 40 periods of lsim converge to the periodic state
 
@@ -78,13 +78,13 @@ def test_edge_ramp_is_followed_exactly() -> None:
     sys = signal.StateSpace(model.A, model.B, model.C, model.D)
     _, y, _ = signal.lsim(sys, u, t_fine, interp=True)  # reference: scipy.signal.lsim, linear interpolation
     (vs,) = plant.window(emf_before=0.0, emf_after=1.0, half_period_s=None, sample_interval_s=dt,
-                         n_samples=2000, first_sample_s=-1e-5, edge_time_s=edge, probes=[Probe("v_src")])
+                         n_samples=2000, first_sample_s=-1e-5, edge_time_s=edge, signals=[Signal("v_src")])
     ref = y[::fine, model.output_index("v_src")][:2000]
     assert np.max(np.abs(vs - ref)) < 1e-9
 
 
 def test_probe_parse_rejects_malformed() -> None:
     with pytest.raises(ValueError):
-        Probe.parse("v_c - ")
+        Signal.parse("v_c - ")
     with pytest.raises(ValueError):
-        Probe.parse("a - b - c")
+        Signal.parse("a - b - c")

@@ -38,7 +38,7 @@ CASES = [
     ("window_s = 1.5e-3", "windw_s = 1.5e-3", ["acquisition.windw_s", "unknown key", "did you mean 'window_s'"]),
     ("samples = 15000", "samples = 15000.5", ["acquisition.samples", "whole number"]),
     ("samples = 15000", "samples = 4", ["acquisition.samples", "from 16"]),
-    ("pretrigger_share = 0.2", "pretrigger_share = 1.5", ["pretrigger_share", "at most 0.9"]),
+    ("pretrigger_fraction = 0.2", "pretrigger_fraction = 1.5", ["pretrigger_fraction", "at most 0.9"]),
     ('edge = "rising"', 'edge = "up"', ["stimulus.edge", "rising, falling, both"]),
     ('load = "high_z"', 'load = "50"', ["stimulus.load", "high_z, matched"]),
     ('kind = "simulated"', 'kind = "virtual"', ["bench.kind", "simulated, visa"]),

@@ -58,7 +58,7 @@ edge = "rising"
 
 [acquisition]
 window_s = {WINDOW_S}
-pretrigger_share = {SHARE}
+pretrigger_fraction = {SHARE}
 samples = {SAMPLES}
 averages = 1
 [acquisition.channels.CH1]
@@ -102,7 +102,7 @@ def take_records(profile: Profile, scope_driver: str | Path, repeats: int) -> li
     """Step tests on the profile's simulated bench (noise, jitter and the 8-bit ADC on)."""
     config = SimBenchConfig.from_mapping(profile.bench.simulated, str(profile.path))
     with SimBench(config) as bench, \
-            open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
+            open_instrument(bench.resources["generator"], "scpi-generator") as gen, \
             open_instrument(bench.resources["scope"], scope_driver) as scope:
         return [record for _ in range(repeats) for record in run_step_test(profile, gen, scope)]
 
@@ -167,7 +167,7 @@ def opened():
 def configure_like(scope, record: Record, profile: Profile) -> None:
     """The profile's acquisition settings (the ones the record was taken with)."""
     acq = profile.acquisition
-    scope.configure_timebase(acq.window_s, acq.samples, acq.pretrigger_share)
+    scope.configure_timebase(acq.window_s, acq.samples, acq.pretrigger_fraction)
     for ch in acq.channels:
         scope.configure_channel(ch.input, ch.range_v, ch.offset_v, ch.coupling)
     scope.configure_trigger("external", record.stimulus.edge, 0.5)
@@ -184,7 +184,7 @@ def one_line(exc: BaseException) -> str:
 def test_the_step_test_on_replay_gives_back_each_record_bit_for_bit(night, replay, opened, tmp_path):
     path, records = night
     bench = replay(path)
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     scope = opened(bench.resources["scope"], "scpi-digitizer")
     profile = write_profile(tmp_path)
     again = [record for _ in range(N_NIGHT) for record in run_step_test(profile, gen, scope)]
@@ -201,7 +201,7 @@ def test_identity_is_one_the_digitizer_driver_accepts(night, replay, visa):
     assert re.search(pattern, idn)
     assert idn.split(",")[2] == "REPLAY-night"  # serial field: replay of store "night"
     assert len(idn) <= 72  # IEEE 488.2 §10.14 (from memory): at most 72 characters
-    assert visa(bench.resources["gen"]).query("*IDN?").split(",")[:2] == ["acqd-sim", "FG"]
+    assert visa(bench.resources["generator"]).query("*IDN?").split(",")[:2] == ["acqd-sim", "FG"]
 
 
 def test_selected_records_in_the_order_given_then_the_acquisition_never_completes(night, replay, opened, visa,
@@ -261,7 +261,7 @@ def test_integer_and_ascii_formats_carry_the_record_exactly(tmp_path, replay, op
     profile = write_profile(tmp_path)
     records = stored(take_records(profile, driver, 1), tmp_path / "formats.h5")
     bench = replay(tmp_path / "formats.h5")
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     scope = opened(bench.resources["scope"], driver)
     (again,) = run_step_test(profile, gen, scope)
     assert_same_record(again, records[0])
@@ -293,7 +293,7 @@ def test_an_averaged_record_needs_ascii(tmp_path, replay, opened):
         scope.arm()
     assert "-221" in one_line(caught.value) and "not float32 (a mean of 2 acquisitions)" in str(caught.value)
 
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     ascii_scope = opened(bench.resources["scope"], formatted_driver(tmp_path, "ASCii", "ASC"))
     (again,) = run_step_test(profile, gen, ascii_scope)
     assert_same_record(again, averaged)
@@ -336,7 +336,7 @@ def test_acqd_replay_json_serves_until_sigterm(night, visa):
                             env={**os.environ, "PYTHONUNBUFFERED": "1"})
     try:
         resources = json.loads(proc.stdout.readline())
-        assert sorted(resources) == ["gen", "scope"]
+        assert sorted(resources) == ["generator", "scope"]
         assert visa(resources["scope"]).query("*IDN?").startswith("acqd-sim,DIG,REPLAY-night,")
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=20) == 0

@@ -64,7 +64,7 @@ def opened():
 @pytest.fixture
 def generator(bench, opened) -> Generator:
     """0 → 1 V square at 100 Hz, output on: each half period (5 ms) is 15 × the 2 % settling time 8L/R."""
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
     gen.output(True)
     return gen
@@ -97,7 +97,7 @@ def test_same_code_both_dialects_gives_the_textbook_step(bench, opened, generato
 
 
 def test_generator_applies_in_order_and_reads_back(bench, opened):
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     log = bench.generator.command_log
     before = len(log)
     gen.apply_stimulus(Stimulus("square", -0.5, 2.0, 250.0, "falling", load="matched"))
@@ -121,7 +121,7 @@ def test_generator_applies_in_order_and_reads_back(bench, opened):
     (Stimulus("square", 0.0, float("nan"), 100.0, "rising"), "stimulus.high_v"),
 ])
 def test_refused_stimulus_sends_nothing(bench, opened, stimulus, field):
-    gen = opened(bench.resources["gen"], "scpi-generator")
+    gen = opened(bench.resources["generator"], "scpi-generator")
     log = bench.generator.command_log
     before = len(log)
     with pytest.raises(SafetyError) as info:
@@ -180,7 +180,7 @@ def test_scope_settings_read_back_in_role_units(bench, opened, driver):
     scope.configure_trigger("external", "falling", 0.25)
     settings = scope.read_settings()
     assert settings["window_s"] == pytest.approx(WINDOW_S, rel=1e-12)
-    assert (settings["n_samples"], settings["pretrigger_share"]) == (N, pytest.approx(SHARE, rel=1e-12))
+    assert (settings["n_samples"], settings["pretrigger_fraction"]) == (N, pytest.approx(SHARE, rel=1e-12))
     assert (settings["trigger_slope"], settings["trigger_level_v"]) == ("falling", 0.25)
     channel = settings["channels"]["CH3"]
     assert (channel["range_v"], channel["offset_v"], channel["coupling"]) == \

@@ -86,7 +86,7 @@ def test_trigger_is_at_t0_with_the_baseline_before_it(tmp_path: Path, edge: str)
         (record,) = run_step_test(profile, bench.generator, bench.scope)
     t = record.timebase.times()
     pre = record.timebase.pretrigger_samples
-    assert pre == round(profile.acquisition.pretrigger_share * profile.acquisition.samples)
+    assert pre == round(profile.acquisition.pretrigger_fraction * profile.acquisition.samples)
     assert t[pre] == 0.0 and np.all(t[:pre] < 0)
     v_src = record.channel("v_src").samples
     before, after = (0.0, 1.0) if edge == "rising" else (1.0, 0.0)
@@ -214,7 +214,7 @@ def test_sigterm_switches_the_output_off_and_keeps_the_file(tmp_path: Path) -> N
 
 BAD_WITH_BENCH = [
     (('driver = "scpi-digitizer"', 'driver = "no-such-scope"'), ["bench.scope.driver", "no-such-scope"]),
-    (('CH3 = "v_c"', 'CH3 = "v_q"'), ["probes.CH3", "v_q"]),
+    (('CH3 = "v_c"', 'CH3 = "v_q"'), ["wiring.CH3", "v_q"]),
     (("r_ohm = 22.4", "r_ohm = -22.4"), ["bench.simulated.dut", "r_ohm", "greater than 0"]),
 ]
 

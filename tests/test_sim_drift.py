@@ -58,7 +58,7 @@ def fitted_c_ratio(t: np.ndarray, v: np.ndarray) -> float:
 def capturing(bench: SimBench) -> Iterator[Scope]:
     """The scope of ``bench`` set to capture v_C (CH2 on the demo bench), a 0 → 1 V, 100 Hz square wave on
     (half period 5 ms ≫ 8L/R = 0.34 ms)."""
-    with open_instrument(bench.resources["gen"], "scpi-generator") as gen, \
+    with open_instrument(bench.resources["generator"], "scpi-generator") as gen, \
             open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
         gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
         gen.output(True)
@@ -145,7 +145,7 @@ def test_bad_drift_tables_are_one_line_naming_the_key(drift, field, words):
 
 
 def test_the_allowed_parameters_are_those_of_the_dut_model():
-    table = {"dut": {"model": "rc_lowpass", "r_ohm": 1e3, "c_f": 1e-9}, "probes": {"CH1": "v_c"},
+    table = {"dut": {"model": "rc_lowpass", "r_ohm": 1e3, "c_f": 1e-9}, "wiring": {"CH1": "v_c"},
              "drift": {"parameter": "l_h", "per_hour": 0.01}}
     with pytest.raises(ConfigError) as caught:
         SimBenchConfig.from_mapping(table, "bench.toml")

@@ -77,7 +77,7 @@ def times(scope) -> np.ndarray:
 def quiet(sim_bench, visa, quiet_table):
     """A bench with front-end imperfections off (8-bit quantisation on): (bench, gen, scope, divscope)."""
     bench = sim_bench(quiet_table)
-    return (bench, visa(bench.resources["gen"]), visa(bench.resources["scope"], timeout_ms=1000),
+    return (bench, visa(bench.resources["generator"]), visa(bench.resources["scope"], timeout_ms=1000),
             visa(bench.resources["divscope"]))
 
 
@@ -147,7 +147,7 @@ def test_rst_switches_the_output_off(quiet):
 def test_command_log_records_every_message_in_order(sim_bench, visa, tmp_path):
     log_file = tmp_path / "gen.log"
     bench = sim_bench(command_log=str(log_file))
-    gen = visa(bench.resources["gen"])
+    gen = visa(bench.resources["generator"])
     sent = ["*RST", "FREQ 2.5kHz;VOLT 1", "VOLT:HIGH 99", "OUTP ON"]
     t_start = time.monotonic()  # the same clock the log uses
     for message in sent:
@@ -166,7 +166,7 @@ def test_command_log_records_every_message_in_order(sim_bench, visa, tmp_path):
 
 def test_trigger_on_the_edge_with_pre_trigger_samples(sim_bench, visa, quiet_table):
     bench = sim_bench({**quiet_table, "quantise": False})
-    gen, scope = visa(bench.resources["gen"]), visa(bench.resources["scope"])
+    gen, scope = visa(bench.resources["generator"]), visa(bench.resources["scope"])
     square(gen, 0.0, 1.0, freq=50.0)
     assert capture(scope, time_s=1e-3, points=1000, pre=100) == "1"
     t = times(scope)
@@ -193,7 +193,7 @@ def test_negative_slope_captures_the_falling_edge(quiet):
                                         ("INT,16", "NORM"), ("INT,16", "SWAP"), ("ASC", "NORM")])
 def test_every_format_and_byte_order_gives_the_same_volts(sim_bench, visa, fmt, order):
     bench = sim_bench()  # the demo bench: noise, jitter, bandwidth and the 8-bit ADC all on
-    gen, scope = visa(bench.resources["gen"]), visa(bench.resources["scope"])
+    gen, scope = visa(bench.resources["generator"]), visa(bench.resources["scope"])
     square(gen, 0.0, 1.0)
     assert capture(scope) == "1"
     reference = read_volts(scope, 2, "REAL,32", "NORM")
@@ -293,7 +293,7 @@ def test_ac_coupling_removes_the_mean(quiet):
 
 def test_sine_free_run_amplitude_follows_the_frequency_response(sim_bench, visa, quiet_table):
     bench = sim_bench({**quiet_table, "quantise": False})
-    gen, scope = visa(bench.resources["gen"]), visa(bench.resources["scope"])
+    gen, scope = visa(bench.resources["generator"]), visa(bench.resources["scope"])
     gen.write("FUNC SIN;FREQ 8000;VOLT 1;VOLT:OFFS 0;:OUTP ON")
     scope.write("TRIG:SOUR IMM;:SWE:TIME 1e-3;POIN 5000;:VOLT2:RANG 5;:INIT")
     scope.query("*OPC?")
@@ -323,7 +323,7 @@ def test_trigger_jitter_moves_the_edge_between_acquisitions(sim_bench, visa, qui
     crossings = {}
     for jitter in (0.0, 3e-6):
         bench = sim_bench({**quiet_table, "jitter_s": jitter})
-        gen, scope = visa(bench.resources["gen"]), visa(bench.resources["scope"])
+        gen, scope = visa(bench.resources["generator"]), visa(bench.resources["scope"])
         square(gen, 0.0, 1.0)
         found = []
         for _ in range(12):
@@ -352,7 +352,7 @@ def test_bandwidth_is_a_single_pole_low_pass_on_the_sample_grid():
 @pytest.mark.timeout(20)
 def test_realtime_mode_takes_the_instrument_time(sim_bench, visa, quiet_table):
     bench = sim_bench({**quiet_table, "realtime": True})
-    gen, scope, view = (visa(bench.resources[k]) for k in ("gen", "scope", "divscope"))
+    gen, scope, view = (visa(bench.resources[k]) for k in ("generator", "scope", "divscope"))
     square(gen, 0.0, 1.0, freq=20.0)
     t0 = time.monotonic()
     assert capture(scope, time_s=0.1, points=1000, pre=100) == "1"
@@ -460,9 +460,9 @@ def test_divscope_state_poll_and_its_opc_does_not_wait(quiet):
     ({"noise": 0.1}, "bench.simulated.noise", "allowed here"),
     ({"noise_v_rms": -1}, "bench.simulated.noise_v_rms", "at least 0"),
     ({"realtime": "yes"}, "bench.simulated.realtime", "true or false"),
-    ({"probes": {"CH5": "v_c"}}, "bench.simulated.probes.CH5", "CH1, CH2, CH3, CH4"),
-    ({"probes": {"CH1": "v_x"}}, "bench.simulated.probes.CH1", "v_src, v_rl, v_c, i_l"),
-    ({"probes": {"CH1": "v_c - - v_rl"}}, "bench.simulated.probes.CH1", "not a probe"),
+    ({"wiring": {"CH5": "v_c"}}, "bench.simulated.wiring.CH5", "CH1, CH2, CH3, CH4"),
+    ({"wiring": {"CH1": "v_x"}}, "bench.simulated.wiring.CH1", "v_src, v_rl, v_c, i_l"),
+    ({"wiring": {"CH1": "v_c - - v_rl"}}, "bench.simulated.wiring.CH1", "not a signal"),
     ({"dut": {"model": "tube_amp"}}, "model", "allowed"),
 ])
 def test_bad_bench_tables_name_the_key_and_what_is_allowed(table, field, words):
@@ -474,9 +474,9 @@ def test_bad_bench_tables_name_the_key_and_what_is_allowed(table, field, words):
 
 def test_profile_tables(tmp_path, capsys):
     profile = tmp_path / "p.toml"
-    profile.write_text('[bench.simulated]\nseed = 5\nrealtime = true\n[bench.simulated.probes]\nCH4 = "i_l"\n')
+    profile.write_text('[bench.simulated]\nseed = 5\nrealtime = true\n[bench.simulated.wiring]\nCH4 = "i_l"\n')
     config = load_config(str(profile))
-    assert (config.seed, config.realtime, dict(config.probes)) == (5, True, {"CH4": "i_l"})
+    assert (config.seed, config.realtime, dict(config.wiring)) == (5, True, {"CH4": "i_l"})
     bare = tmp_path / "bare.toml"
     bare.write_text("[stimulus]\nhigh_v = 1.0\n")
     assert main(["sim", str(bare)]) == 2
@@ -496,9 +496,9 @@ def test_acqd_sim_json_serves_until_sigterm(visa):
                             stderr=subprocess.PIPE, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
     try:
         resources = json.loads(proc.stdout.readline())
-        assert sorted(resources) == ["divscope", "gen", "scope"]
+        assert sorted(resources) == ["divscope", "generator", "scope"]
         models = {name: visa(resource).query("*IDN?").split(",")[1] for name, resource in resources.items()}
-        assert models == {"gen": "FG", "scope": "DIG", "divscope": "DIVSCOPE"}
+        assert models == {"generator": "FG", "scope": "DIG", "divscope": "DIVSCOPE"}
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=20) == 0
     finally:

@@ -19,7 +19,7 @@ CME, EXE, DDE, QYE, PON = 32, 16, 8, 4, 128  # IEEE 488.2 §11.5.1 standard even
 
 @pytest.fixture
 def gen(sim_bench, visa):
-    g = visa(sim_bench().resources["gen"])
+    g = visa(sim_bench().resources["generator"])
     g.write("*RST;*CLS")
     return g
 
@@ -217,7 +217,7 @@ def test_error_queue_overflow_keeps_the_oldest_and_ends_with_350(gen):
 
 
 def test_power_on_esr_then_read_and_clear(sim_bench, visa):
-    g = visa(sim_bench().resources["gen"])
+    g = visa(sim_bench().resources["generator"])
     # IEEE 488.2 §11.5.1: power-on sets PON; *ESR? reads and clears
     assert int(g.query("*ESR?")) == PON
     assert int(g.query("*ESR?")) == 0
@@ -271,7 +271,7 @@ def test_common_queries(gen):
 def test_new_message_interrupts_a_pending_query(sim_bench, visa):
     # IEEE 488.2 §6.3.2.3: a message arriving before the reply is read discards it, -410 Query INTERRUPTED
     bench = sim_bench()
-    gen, scope = visa(bench.resources["gen"]), visa(bench.resources["scope"], timeout_ms=300)
+    gen, scope = visa(bench.resources["generator"]), visa(bench.resources["scope"], timeout_ms=300)
     gen.write("VOLT:LOW 0;HIGH 1;:OUTP ON")
     scope.write("TRIG:SOUR EXT;LEV 5;:INIT")  # a level outside the stimulus: no completion
     with pytest.raises(VisaIOError):
@@ -285,7 +285,7 @@ def test_new_message_interrupts_a_pending_query(sim_bench, visa):
 @pytest.mark.timeout(20)
 def test_slow_reply_fault_and_interruption(sim_bench, visa):
     bench = sim_bench()
-    gen = visa(bench.resources["gen"], timeout_ms=150)
+    gen = visa(bench.resources["generator"], timeout_ms=150)
     bench.generator.faults.reply_delay_s = 0.5
     with pytest.raises(VisaIOError):
         gen.query("*IDN?")
@@ -301,11 +301,11 @@ def _raw(resource: str) -> socket.socket:
 @pytest.mark.timeout(20)
 def test_unterminated_messages_at_close(sim_bench, visa):
     bench = sim_bench()
-    with _raw(bench.resources["gen"]) as raw:
+    with _raw(bench.resources["generator"]) as raw:
         raw.sendall(b"FREQ 5000")  # no terminator: discarded, not executed
-    with _raw(bench.resources["gen"]) as raw:
+    with _raw(bench.resources["generator"]) as raw:
         raw.sendall(b"*IDN?")      # a query that can never be answered: -420 Query UNTERMINATED
-    gen = visa(bench.resources["gen"])
+    gen = visa(bench.resources["generator"])
     for _ in range(50):  # the server sees the closes asynchronously
         if len(bench.generator.errors) == 2:
             break

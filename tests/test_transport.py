@@ -32,7 +32,7 @@ def number(reply: str) -> float:
 def bench(sim_bench, quiet_table):
     """Quiet, unquantised bench with a 1 kHz sine on: the scope's float32 samples hold every byte value."""
     bench = sim_bench({**quiet_table, "quantise": False})
-    with Session(bench.resources["gen"]) as gen:
+    with Session(bench.resources["generator"]) as gen:
         for command in ("FUNCtion SINusoid", "FREQuency 1E3", "VOLTage 1", "OUTPut ON"):
             gen.write(command)
     return bench
@@ -61,11 +61,11 @@ def capture(scope: Session, points: int) -> None:
 
 
 def test_identity_is_the_idn_reply(bench, session, visa):
-    s = session(bench.resources["gen"])
+    s = session(bench.resources["generator"])
     # Reference: pyvisa-py's plain query. IEEE 488.2 §10.14 (from memory): four comma-separated fields.
-    assert s.identity == visa(bench.resources["gen"]).query("*IDN?")
+    assert s.identity == visa(bench.resources["generator"]).query("*IDN?")
     assert len(s.identity.split(",")) == 4
-    assert identify(bench.resources["gen"]) == s.identity
+    assert identify(bench.resources["generator"]) == s.identity
 
 
 @pytest.mark.parametrize("direct_socket", [True, False])
@@ -85,7 +85,7 @@ def test_block_bytes_equal_pyvisa_plain_read(bench, session, visa, direct_socket
 
 
 def test_error_queue_is_read_oldest_first_until_empty(bench, session):
-    s = session(bench.resources["gen"])
+    s = session(bench.resources["generator"])
     s.write("FREQuency 5E9")   # beyond 1 MHz: −222 data out of range
     s.write("NOSUCHHEADER 1")  # −113 undefined header
     # SCPI-1999 Vol 2 §21.8: SYSTem:ERRor? returns the oldest entry first, 0,"No error" once empty.
@@ -96,7 +96,7 @@ def test_error_queue_is_read_oldest_first_until_empty(bench, session):
 def test_late_reply_without_draining_is_one_step_late(bench, visa):
     """The problem the drain solves, shown with plain pyvisa-py so the next test can fail."""
     gen = bench.generator
-    plain = visa(bench.resources["gen"], timeout_ms=200)
+    plain = visa(bench.resources["generator"], timeout_ms=200)
     plain.write("FREQuency 1234")
     gen.faults.reply_delay_s = 0.4
     with pytest.raises(Exception):
@@ -108,12 +108,12 @@ def test_late_reply_without_draining_is_one_step_late(bench, visa):
 
 def test_timeout_drains_so_the_next_reply_is_the_right_one(bench, session):
     gen = bench.generator
-    s = session(bench.resources["gen"], timeout_s=0.2, drain_timeout_s=1.0)
+    s = session(bench.resources["generator"], timeout_s=0.2, drain_timeout_s=1.0)
     s.write("FREQuency 1234")
     gen.faults.reply_delay_s = 0.4
     with pytest.raises(InstrumentTimeout) as info:
         s.query("OUTPut:IMPedance?")
-    assert bench.resources["gen"] in one_line(info.value) and "OUTPut:IMPedance?" in str(info.value)
+    assert bench.resources["generator"] in one_line(info.value) and "OUTPut:IMPedance?" in str(info.value)
     gen.faults.reply_delay_s = 0.0
     assert number(s.query("FREQuency?")) == 1234.0
     # The drain's *CLS removed the −410 the interrupted query left (IEEE 488.2 §6.3.2.3).
@@ -122,7 +122,7 @@ def test_timeout_drains_so_the_next_reply_is_the_right_one(bench, session):
 
 def test_drain_discards_a_reply_that_did_arrive(bench, session):
     gen = bench.generator
-    s = session(bench.resources["gen"], timeout_s=0.2)
+    s = session(bench.resources["generator"], timeout_s=0.2)
     s.write("FREQuency 4321")
     gen.faults.reply_delay_s = 0.4
     with pytest.raises(InstrumentTimeout):
@@ -161,14 +161,14 @@ def test_garbled_block_header_is_one_line_and_the_session_recovers(bench, sessio
 
 
 def test_reconnect_keeps_talking(bench, session):
-    s = session(bench.resources["gen"])
+    s = session(bench.resources["generator"])
     s.write("FREQuency 777")
     s.reconnect()
     assert number(s.query("FREQuency?")) == 777.0
 
 
 def test_nagle_is_off_on_the_socket(bench, session):
-    s = session(bench.resources["gen"])
+    s = session(bench.resources["generator"])
     sock = s._backend_session().interface
     # A short command then a query would otherwise wait for the peer's delayed ACK (RFC 896 / RFC 1122).
     assert sock.getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY) != 0

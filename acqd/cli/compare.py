@@ -41,9 +41,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     g.add_argument("--hold", metavar="NAME[,NAME]", help="which free parameter to hold first if not identifiable")
     g.add_argument("--weighting", choices=WEIGHTINGS, help="residuals per channel over its noise RMS or its range")
     g = p.add_argument_group("channel mapping")
-    g.add_argument("--map", metavar="CHANNEL=PROBE", action="append", default=[],
+    g.add_argument("--map", metavar="CHANNEL=SIGNAL", action="append", default=[],
                    help="a record channel is a model output, or 'a - b' of two")
-    g.add_argument("--gain", metavar="CHANNEL=G", action="append", default=[], help="channel = G × probe + offset")
+    g.add_argument("--gain", metavar="CHANNEL=G", action="append", default=[], help="channel = G × signal + offset")
     g.add_argument("--offset", metavar="CHANNEL=V", action="append", default=[], help="in the channel's unit")
     g.add_argument("--stimulus-channel", metavar="CHANNEL", help="a mapped channel that places the edge in time")
     g = p.add_argument_group("tolerances")
@@ -152,12 +152,12 @@ class _Table:
         self.options[".".join(keys)] = option
 
     def channel(self, name: str, option: str) -> dict[str, Any]:
-        """The table entry of a mapped channel (a bare probe string becomes {probe = ...})."""
+        """The table entry of a mapped channel (a bare signal string becomes {signal = ...})."""
         channels = self.data.get("channels", {})
         if name not in channels:
-            raise ConfigError(CLI, option, f"channel {name!r} is not mapped; add --map {name}=PROBE")
+            raise ConfigError(CLI, option, f"channel {name!r} is not mapped; add --map {name}=SIGNAL")
         if isinstance(channels[name], str):
-            channels[name] = {"probe": channels[name]}
+            channels[name] = {"signal": channels[name]}
         return channels[name]
 
     def parse(self) -> CompareSpec:
@@ -201,8 +201,8 @@ def _apply_options(table: _Table, args: argparse.Namespace) -> None:
     if args.weighting:
         table.set(("fit", "weighting"), args.weighting, "--weighting")
     for text in args.map:
-        name, probe = _pair("--map", text)
-        table.set(("channels", name), {"probe": probe}, f"--map {name}")
+        name, signal = _pair("--map", text)
+        table.set(("channels", name), {"signal": signal}, f"--map {name}")
     for option, key in (("--gain", "gain"), ("--offset", "offset")):
         for text in getattr(args, key):
             name, value = _pair(option, text)
@@ -246,13 +246,13 @@ def format_result(result: CompareResult, label: str) -> str:
     when = f" ({result.record['utc']})" if result.record["utc"] else ""
     lines = [f"{label}{when} vs {result.model}: EMF {stim['before_v']:g} -> {stim['after_v']:g} V, "
              f"timing {stim['timing']}",
-             f"{'channel':<10} {'probe':<14} {'NRMSE %':>8} {'max|err|':>10} {'overshoot % m/s':>17} "
+             f"{'channel':<10} {'signal':<14} {'NRMSE %':>8} {'max|err|':>10} {'overshoot % m/s':>17} "
              f"{'settling s m/s':>21}"]
     for ch in result.channels:
         m, s = ch.measured, ch.simulated
         over = f"{_step_text(m, 'overshoot_pct')}/{_step_text(s, 'overshoot_pct')}"
         settle = f"{_step_text(m, 'settling_duration_s')}/{_step_text(s, 'settling_duration_s')}"
-        lines.append(f"{ch.channel:<10} {ch.probe:<14} {100 * ch.nrmse:>8.3f} {ch.max_abs_error:>10.3g} "
+        lines.append(f"{ch.channel:<10} {ch.signal:<14} {100 * ch.nrmse:>8.3f} {ch.max_abs_error:>10.3g} "
                      f"{over:>17} {settle:>21}")
     if result.fit:
         fit = result.fit

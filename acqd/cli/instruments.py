@@ -1,6 +1,6 @@
-"""``acqd drivers`` and ``acqd probe``: which driver files exist, and which one fits an instrument.
+"""``acqd drivers`` and ``acqd identify``: which driver files exist, and which one fits an instrument.
 
-``probe`` is the first thing to run against a new bench: it proves the resource answers and names the
+``identify`` is the first thing to run against a new bench: it proves the resource answers and names the
 driver to put in the profile, or says that none fits (then a new driver file is the way forward:
 DEVELOPERS.md, "How to add a driver").
 """
@@ -23,11 +23,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     drivers = subparsers.add_parser("drivers", help="list the driver files found (name, role, *IDN? match, limits)")
     drivers.set_defaults(func=_drivers)
 
-    probe = subparsers.add_parser("probe", help="ask an instrument for *IDN? and name the driver that fits")
-    probe.add_argument("resource", metavar="RESOURCE", help="VISA resource, e.g. TCPIP0::192.0.2.10::5025::SOCKET")
-    probe.add_argument("--backend", default=DEFAULT_BACKEND, help=f"pyvisa backend (default {DEFAULT_BACKEND})")
-    probe.add_argument("--timeout-s", type=float, default=5.0, metavar="S", help="reply timeout in seconds")
-    probe.set_defaults(func=_probe)
+    ident = subparsers.add_parser("identify", help="ask an instrument for *IDN? and name the driver that fits")
+    ident.add_argument("resource", metavar="RESOURCE", help="VISA resource, e.g. TCPIP0::192.0.2.10::5025::SOCKET")
+    ident.add_argument("--backend", default=DEFAULT_BACKEND, help=f"pyvisa backend (default {DEFAULT_BACKEND})")
+    ident.add_argument("--timeout-s", type=float, default=5.0, metavar="S", help="reply timeout in seconds")
+    ident.set_defaults(func=_identify)
 
 
 def _limits_text(limits: dict[str, Any]) -> str:
@@ -52,7 +52,7 @@ def _drivers(args: argparse.Namespace) -> int:
     return 0
 
 
-def _probe(args: argparse.Namespace) -> int:
+def _identify(args: argparse.Namespace) -> int:
     idn = identify(args.resource, backend=args.backend, timeout_s=args.timeout_s)
     info = match_driver(idn)
     console = Console(highlight=False)

@@ -39,7 +39,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _serving_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     parser.add_argument("--json", action="store_true",
-                        help="print the resources as one JSON line first: {\"gen\": ..., \"scope\": ..., ...}")
+                        help="print the resources as one JSON line first: {\"generator\": ..., \"scope\": ..., ...}")
     parser.add_argument("--allow-remote", action="store_true",
                         help="allow listening on an address other than loopback")
 

@@ -2,7 +2,7 @@
 
 The flow: the nominal model (with the generator's source resistance from the record unless the table
 gives one) is driven by the stimulus edge from rest; each mapped channel is predicted as
-gain × probe + offset; free parameters are identified when asked; then every channel gets its errors and
+gain × signal + offset; free parameters are identified when asked; then every channel gets its errors and
 IEEE 181 step parameters, and the tolerances give the verdict. The result is plain data (``to_dict``,
 ``to_json``) plus the traces for figures, which are not serialised.
 """
@@ -23,11 +23,11 @@ from ..record import Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
 from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms
-from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Probe, spec_from_parts
+from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
 from .stimulus import Edge, align_edge, edge_response, steady_state
 from .verdict import Verdict, judge
 
-STEP_MIN_SHARE = 1e-3  # a probe whose rest value moves less than this share of its range has no step
+STEP_MIN_SHARE = 1e-3  # a signal whose rest value moves less than this share of its range has no step
 ALIGN_SEARCH_SAMPLES = 10
 EDGE_PARAMETER = "edge_t50_s"  # the edge instant, fitted with the parameters when a stimulus channel is mapped
 WEIGHT_FLOOR_SHARE = 1e-6  # a channel's weight never drops below this share of its range (noise-free data)
@@ -122,7 +122,7 @@ class _Setup:
 
     def rows(self, model: StateSpace) -> tuple[np.ndarray, np.ndarray]:
         """(P, Q) so that the predicted channels are x·Pᵀ + u·Q (gains applied, offsets not)."""
-        rows = [m.probe.row(model) for m in self.mapping]
+        rows = [m.signal.row(model) for m in self.mapping]
         gains = np.array([m.gain for m in self.mapping])
         return np.array([r[0] for r in rows]) * gains[:, None], np.array([r[1] for r in rows]) * gains
 
@@ -146,7 +146,7 @@ class _Setup:
 
 
 def _default_mapping(spec: CompareSpec, record: Record, model: StateSpace) -> tuple[ChannelMap, ...]:
-    mapping = tuple(ChannelMap(name, Probe(name)) for name in record.channel_names if name in model.outputs)
+    mapping = tuple(ChannelMap(name, Signal(name)) for name in record.channel_names if name in model.outputs)
     if not mapping:
         raise ConfigError(spec.source, "channels", f"no record channel is named like a model output "
                           f"({', '.join(model.outputs)}); record channels are {', '.join(record.channel_names)}: "
@@ -216,9 +216,9 @@ def _fit(setup: _Setup, edge: Edge) -> FitResult:
     return fit_parameters(residuals_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,), len(setup.mapping))
 
 
-def _polarity(model: StateSpace, probe: Probe, gain: float, edge: Edge, span: float) -> str | None:
-    """Direction of the probe's step between the two rest states; None when it returns to where it was."""
-    c, d = probe.row(model)
+def _polarity(model: StateSpace, signal: Signal, gain: float, edge: Edge, span: float) -> str | None:
+    """Direction of the signal's step between the two rest states; None when it returns to where it was."""
+    c, d = signal.row(model)
     x0, x1 = model.steady_state(edge.before_v), model.steady_state(edge.after_v)
     change = gain * (c @ (x1 - x0) + d * (edge.after_v - edge.before_v))
     if abs(change) <= STEP_MIN_SHARE * span:
@@ -228,7 +228,7 @@ def _polarity(model: StateSpace, probe: Probe, gain: float, edge: Edge, span: fl
 
 def _measured_states(setup: _Setup, model: StateSpace, u: np.ndarray) -> dict[str, np.ndarray]:
     """States reconstructed from the mapped channels by least squares (e.g. i_L = v_R / R), for the states
-    the channels determine; a state outside the row space of the probes cannot be reconstructed."""
+    the channels determine; a state outside the row space of the signals cannot be reconstructed."""
     p, q = setup.rows(model)
     offsets = np.array([m.offset for m in setup.mapping])
     z = setup.measured - offsets[:, None] - np.outer(q, u)
@@ -297,8 +297,8 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
     spans = np.ptp(predicted, axis=1)
     channels = []
     for m, unit, meas, sim, span in zip(setup.mapping, setup.units, setup.measured, predicted, spans):
-        channels.append(channel_result(m.channel, m.probe.text, unit, m.gain, m.offset, setup.times, meas, sim,
-                                       _polarity(model, m.probe, m.gain, edge, span), edge.start_s,
+        channels.append(channel_result(m.channel, m.signal.text, unit, m.gain, m.offset, setup.times, meas, sim,
+                                       _polarity(model, m.signal, m.gain, edge, span), edge.start_s,
                                        spec.tolerances.settling_band_pct))
     verdict, notes = judge(channels, fit, spec.tolerances)
     traces = Traces(setup.times, u, {m.channel: y for m, y in zip(setup.mapping, setup.measured)},

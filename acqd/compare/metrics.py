@@ -22,10 +22,10 @@ BASELINE_WARN_SHARE = 0.02  # a pre-trigger baseline off by more than 2 % of the
 
 @dataclass(frozen=True)
 class ChannelResult:
-    """How one measured channel compares with its model probe; step parameters where the probe steps."""
+    """How one measured channel compares with its model signal; step parameters where the signal steps."""
 
     channel: str
-    probe: str
+    signal: str
     unit: str
     gain: float
     offset: float
@@ -89,7 +89,7 @@ def _steps(times: np.ndarray, measured: np.ndarray, simulated: np.ndarray, polar
         return None, sim, f"measured trace: {exc}"
 
 
-def channel_result(channel: str, probe: str, unit: str, gain: float, offset: float, times: np.ndarray,
+def channel_result(channel: str, signal: str, unit: str, gain: float, offset: float, times: np.ndarray,
                    measured: np.ndarray, simulated: np.ndarray, polarity: str | None, quiet_until_s: float,
                    band_pct: float) -> ChannelResult:
     """Errors, noise, baseline check and IEEE 181 step parameters of one mapped channel."""
@@ -101,5 +101,5 @@ def channel_result(channel: str, probe: str, unit: str, gain: float, offset: flo
     quiet = times < quiet_until_s
     baseline = float(np.mean(error[quiet])) if quiet.sum() >= MIN_BASELINE_SAMPLES else None
     meas_step, sim_step, note = _steps(times, measured, simulated, polarity, band_pct, noise)
-    return ChannelResult(channel, probe, unit, gain, offset, rms, rms / span if span > 0 else float("inf"),
+    return ChannelResult(channel, signal, unit, gain, offset, rms, rms / span if span > 0 else float("inf"),
                          float(abs(error[k])), float(times[k]), noise, baseline, meas_step, sim_step, note)

@@ -18,8 +18,8 @@ Schema (every key but ``model`` is optional; an unknown key is an error, as ever
 
     [dut.channels]                    # record channel = model output, or a table; default: the record's
     v_c = "v_c"                       #   channels whose names are model outputs, gain 1, offset 0
-    v_r = { probe = "v_src - v_rl", gain = 1.0, offset = 0.0 }
-    v_src = { probe = "v_src", stimulus = true }   # places the edge in time (see compare.stimulus)
+    v_r = { signal = "v_src - v_rl", gain = 1.0, offset = 0.0 }
+    v_src = { signal = "v_src", stimulus = true }   # places the edge in time (see compare.stimulus)
 
     [dut.tolerances]
     nrmse_max = 0.05                  # every mapped channel
@@ -29,7 +29,7 @@ Schema (every key but ``model`` is optional; an unknown key is an error, as ever
     overshoot_pct = [25.0, 45.0]
     settling_s_max = 6e-4
 
-A measured channel is modelled as ``gain × probe + offset``, where the probe is one model output or the
+A measured channel is modelled as ``gain × signal + offset``, where the signal is one model output or the
 difference ``a - b`` of two (a floating voltage, such as the drop across a series resistor).
 """
 
@@ -42,7 +42,7 @@ from typing import Any
 
 
 from ..config import Table
-from ..models import BUILDERS, PARAMETERS, Probe, StateSpace, build_model, model_parameters
+from ..models import BUILDERS, PARAMETERS, Signal, StateSpace, build_model, model_parameters
 
 IDENTITY_KEYS = ("name", "serial")
 WEIGHTINGS = ("noise", "amplitude")
@@ -59,10 +59,10 @@ DEFAULT_HOLD = {
 
 @dataclass(frozen=True)
 class ChannelMap:
-    """A record channel modelled as ``gain × probe + offset``; ``stimulus`` marks the edge-timing channel."""
+    """A record channel modelled as ``gain × signal + offset``; ``stimulus`` marks the edge-timing channel."""
 
     channel: str
-    probe: Probe
+    signal: Signal
     gain: float = 1.0
     offset: float = 0.0
     stimulus: bool = False
@@ -190,13 +190,13 @@ def _fit(t: Table, model: str, nominal: Mapping[str, Any]) -> FitSpec:
     return spec
 
 
-def parse_probe(text: Any, model: StateSpace) -> Probe | None:
-    """The probe ``text`` names, or None when it is not 'output' or 'output - output' of ``model``."""
+def parse_signal(text: Any, model: StateSpace) -> Signal | None:
+    """The signal ``text`` names, or None when it is not 'output' or 'output - output' of ``model``."""
     try:
-        probe = Probe.parse(text)
+        signal = Signal.parse(text)
     except ValueError:
         return None
-    return probe if probe.fits(model) else None
+    return signal if signal.fits(model) else None
 
 
 def _channels(dut: Table, model: StateSpace) -> tuple[ChannelMap, ...]:
@@ -205,19 +205,19 @@ def _channels(dut: Table, model: StateSpace) -> tuple[ChannelMap, ...]:
     for name in list(t.data):
         entry = t.raw(name)
         entry_table = t.table(name) if isinstance(entry, Mapping) else None
-        text = entry_table.raw("probe") if entry_table else entry
-        probe = parse_probe(text, model)
-        if probe is None:
-            where, key = (entry_table, "probe") if entry_table else (t, name)
+        text = entry_table.raw("signal") if entry_table else entry
+        signal = parse_signal(text, model)
+        if signal is None:
+            where, key = (entry_table, "signal") if entry_table else (t, name)
             raise where.error(key, f"must name a model output or 'a - b' of two; outputs are "
                                    f"{', '.join(model.outputs)}, not {text!r}")
         if entry_table is None:
-            mapped.append(ChannelMap(name, probe))
+            mapped.append(ChannelMap(name, signal))
             continue
         gain = entry_table.number("gain", 1.0)
         if gain == 0:
             raise entry_table.error("gain", "must not be 0")
-        mapped.append(ChannelMap(name, probe, gain, entry_table.number("offset", 0.0),
+        mapped.append(ChannelMap(name, signal, gain, entry_table.number("offset", 0.0),
                                  entry_table.boolean("stimulus", False)))
         entry_table.done()
     if not mapped:

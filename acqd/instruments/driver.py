@@ -38,7 +38,7 @@ OPERATIONS: dict[str, dict[str, tuple[str, ...]]] = {
         "levels": ("low_v", "high_v"),
     },
     "scope": {
-        "timebase": ("window_s", "n_samples", "pretrigger_share"),
+        "timebase": ("window_s", "n_samples", "pretrigger_fraction"),
         "channel": ("channel", "range_v", "offset_v", "coupling"),
         "trigger": ("source", "slope", "level_v"),
         "arm": (),
@@ -345,7 +345,7 @@ def _limits(t: Table, role: str) -> dict[str, Any]:
     else:
         limits = {"min_samples": t.integer("min_samples", min=1)}
         limits["max_samples"] = t.integer("max_samples", min=limits["min_samples"])
-        limits["max_pretrigger_share"] = t.number("max_pretrigger_share", min=0.0, max=1.0)
+        limits["max_pretrigger_fraction"] = t.number("max_pretrigger_fraction", min=0.0, max=1.0)
     t.done()
     return limits
 

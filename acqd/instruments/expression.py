@@ -1,4 +1,4 @@
-"""Small arithmetic expressions in driver files: ``"window_s / 10"``, ``"-round(pretrigger_share * n_samples)"``.
+"""Small arithmetic expressions in driver files: ``"window_s / 10"``, ``"-round(pretrigger_fraction * n_samples)"``.
 
 Instruments disagree on the units of a setting (per division or per window, pre-trigger as a sample offset
 or as a share); the role speaks one language and the driver file converts. A driver file is data, so the

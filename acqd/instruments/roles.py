@@ -168,18 +168,18 @@ class Scope(_Role):
         self.channels = list(driver.channels)
         self._configured: list[str] = []
 
-    def configure_timebase(self, window_s: float, n_samples: int, pretrigger_share: float) -> None:
+    def configure_timebase(self, window_s: float, n_samples: int, pretrigger_fraction: float) -> None:
         limits, src = self.driver.limits, self.driver.source
         _require(src, "window_s", window_s, "must be a positive number of seconds", lambda v: v > 0)
         if isinstance(n_samples, bool) or not isinstance(n_samples, int) \
                 or not limits["min_samples"] <= n_samples <= limits["max_samples"]:
             raise ConfigError(src, "limits.n_samples", f"n_samples = {n_samples!r} is outside "
                                                       f"{limits['min_samples']} – {limits['max_samples']}")
-        _require(src, "limits.max_pretrigger_share", pretrigger_share,
-                 f"pretrigger_share must lie in 0 – {limits['max_pretrigger_share']:g}",
-                 lambda v: 0 <= v <= limits["max_pretrigger_share"])
+        _require(src, "limits.max_pretrigger_fraction", pretrigger_fraction,
+                 f"pretrigger_fraction must lie in 0 – {limits['max_pretrigger_fraction']:g}",
+                 lambda v: 0 <= v <= limits["max_pretrigger_fraction"])
         self._send(self.driver.commands("timebase", window_s=window_s, n_samples=n_samples,
-                                        pretrigger_share=pretrigger_share), "time base")
+                                        pretrigger_fraction=pretrigger_fraction), "time base")
 
     def configure_channel(self, channel: str, range_v: float, offset_v: float, coupling: str) -> None:
         """``range_v`` is half the span: the channel shows offset_v ± range_v."""
@@ -292,14 +292,14 @@ def open_instrument(resource: str, driver: str | Path, *, backend: str = DEFAULT
     """Load the driver, connect, check ``*IDN?`` against it, run its setup; the role the driver declares.
 
     The driver file is validated before the instrument is touched; an identity the driver does not accept
-    closes the connection and says which driver would fit (``acqd probe``).
+    closes the connection and says which driver would fit (``acqd identify``).
     """
     drv = load_driver(find_driver(driver))
     session = Session(resource, backend=backend, timeout_s=timeout_s).open()
     try:
         if not drv.matches(session.identity):
             raise InstrumentError(resource, f"identifies as {session.identity!r}, which driver {drv.name} does "
-                                            f"not accept (idn = {drv.idn.pattern!r}); `acqd probe {resource}` "
+                                            f"not accept (idn = {drv.idn.pattern!r}); `acqd identify {resource}` "
                                             f"names a driver that fits")
         role = Generator(session, drv) if drv.role == "generator" else Scope(session, drv)
         role.setup()

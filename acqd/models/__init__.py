@@ -1,10 +1,10 @@
 """State-space models: the shared physics of the simulated bench and the comparator."""
 
 from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
-from .probe import Probe
+from .signal import Signal
 from .spec import BUILDERS, PARAMETERS, ParameterInfo, build_model, model_parameters
 from .statespace import Discrete, StateSpace, discretise, propagate, simulate
 
 __all__ = ["StateSpace", "Discrete", "discretise", "propagate", "simulate",
            "series_rlc", "parallel_rlc", "rc_lowpass", "series_rl", "second_order",
-           "Probe", "BUILDERS", "PARAMETERS", "ParameterInfo", "build_model", "model_parameters"]
+           "Signal", "BUILDERS", "PARAMETERS", "ParameterInfo", "build_model", "model_parameters"]

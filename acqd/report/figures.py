@@ -44,7 +44,7 @@ def channel_figure(result: CompareResult) -> Figure:
         top.plot(t, tr.measured[name], **_MEASURED)
         top.plot(t, tr.simulated[name], **_SIMULATED)
         top.set_ylabel(f"{name} ({tr.units[name] or '-'})")
-        top.set_title(f"{name} ↔ model {ch.probe}: NRMSE {100 * ch.nrmse:.2f} %", fontsize=9, loc="left")
+        top.set_title(f"{name} ↔ model {ch.signal}: NRMSE {100 * ch.nrmse:.2f} %", fontsize=9, loc="left")
         top.legend(loc="lower right", fontsize=8)
         bottom.plot(t, tr.measured[name] - tr.simulated[name], color="tab:red", lw=0.8)
         bottom.axhline(0.0, color="0.5", lw=0.6)

@@ -71,11 +71,11 @@ def _summary_row(entry: _Entry) -> str:
 
 
 def _channel_table(res: CompareResult) -> str:
-    head = ("<tr><th>channel</th><th>probe</th><th>NRMSE</th><th>max |error|</th><th>overshoot % meas / sim</th>"
+    head = ("<tr><th>channel</th><th>signal</th><th>NRMSE</th><th>max |error|</th><th>overshoot % meas / sim</th>"
             "<th>transition s meas / sim</th><th>settling s meas / sim</th><th>ringing Hz meas / sim</th></tr>")
     rows = []
     for ch in res.channels:
-        cells = (ch.channel, ch.probe, f"{100 * ch.nrmse:.3f} %",
+        cells = (ch.channel, ch.signal, f"{100 * ch.nrmse:.3f} %",
                  f"{ch.max_abs_error:.4g} {ch.unit} at {ch.max_abs_error_time_s:.4g} s",
                  *(_pair(ch.measured, ch.simulated, attr) for attr in
                    ("overshoot_pct", "transition_duration_s", "settling_duration_s", "damped_frequency_hz")))

@@ -1,7 +1,7 @@
-"""The simulated bench: a generator driving a DUT plant, probed by two scopes, each a SCPI server on TCP.
+"""The simulated bench: a generator driving a DUT plant, watched by two scopes, each a SCPI server on TCP.
 
 Wiring: the generator's open-circuit voltage (EMF, behind its 50 Ω) is the plant's input; scope channels
-CH1..CH4 see the probes the profile names (a model output or the difference of two); both scopes'
+CH1..CH4 see the signals the profile wires them to (a model output or the difference of two); both scopes'
 EXTernal trigger sees the stimulus at the generator terminal. The plant is asked for "now" at every
 capture (``plant_source``), so a drifting plant can replace the fixed one without touching the scopes.
 
@@ -19,7 +19,7 @@ edge_time_s   ≥ 0    generator 10-90 % edge time (a linear ramp of edge_time_s
 command_log   path   append every program message the generator receives (monotonic time, text)
 dut           table  the DUT model, as acqd.models.build_model reads it; its source resistance must be
                      the generator's 50 Ω for the physics to match the bench
-probes        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
+wiring        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
 drift         table  a slow change of one DUT parameter (below); absent: the DUT never changes
 
 ``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
@@ -59,7 +59,7 @@ import numpy as np
 
 from ..config import Table
 from ..errors import ConfigError
-from ..models import BUILDERS, PARAMETERS, Probe, StateSpace, build_model
+from ..models import BUILDERS, PARAMETERS, Signal, StateSpace, build_model
 from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant
@@ -74,7 +74,7 @@ SECONDS_PER_HOUR = 3600.0
 DEMO_DUT: Mapping[str, Any] = MappingProxyType({"model": "series_rlc", "r_ohm": 27.0, "l_h": 3.3e-3,
                                                 "c_f": 68e-9})
 # CH1 the generator terminal, CH2 the capacitor, CH3 across the series resistor (floating: a difference).
-DEMO_PROBES: Mapping[str, str] = MappingProxyType({"CH1": "v_src", "CH2": "v_c", "CH3": "v_src - v_rl"})
+DEMO_WIRING: Mapping[str, str] = MappingProxyType({"CH1": "v_src", "CH2": "v_c", "CH3": "v_src - v_rl"})
 
 
 @dataclass(frozen=True)
@@ -115,16 +115,16 @@ class SimBenchConfig:
     edge_time_s: float = 20e-9
     command_log: str | None = None
     dut: Mapping[str, Any] = field(default_factory=lambda: dict(DEMO_DUT))
-    probes: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_PROBES))
+    wiring: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_WIRING))
     drift: DriftConfig | None = None
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
     drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
 
     def __post_init__(self) -> None:
-        """Build the DUT model now, so a bad ``dut``, probe or drift fails when the profile is read."""
+        """Build the DUT model now, so a bad ``dut``, wiring or drift fails when the profile is read."""
         object.__setattr__(self, "model", build_model(self.dut, self.dut_source))
-        _check_probes(self.probes, self.model, self.source)
+        _check_wiring(self.wiring, self.model, self.source)
         if self.drift is not None:
             object.__setattr__(self, "drift_nominal", _drift_nominal(self.drift, self.dut, self.source))
 
@@ -148,7 +148,7 @@ class SimBenchConfig:
             edge_time_s=table.number("edge_time_s", d.edge_time_s, min=0, unit="s, 10-90 %"),
             command_log=table.string("command_log", None),
             dut=dict(table.table("dut", dict(DEMO_DUT)).data),
-            probes=dict(table.table("probes", dict(DEMO_PROBES)).data),
+            wiring=dict(table.table("wiring", dict(DEMO_WIRING)).data),
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
         )
         table.done()
@@ -158,8 +158,8 @@ class SimBenchConfig:
         return FrontEndSettings(bandwidth_hz=self.bandwidth_hz, noise_v_rms=self.noise_v_rms,
                                 jitter_s=self.jitter_s, quantise=self.quantise, clip=self.clip)
 
-    def parsed_probes(self) -> dict[int, Probe]:
-        return {int(name[2:]): Probe.parse(text) for name, text in self.probes.items()}
+    def parsed_wiring(self) -> dict[int, Signal]:
+        return {int(name[2:]): Signal.parse(text) for name, text in self.wiring.items()}
 
 
 def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], source: str) -> float:
@@ -177,18 +177,18 @@ def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], source: str) -> f
     return float(inspect.signature(BUILDERS[model]).parameters[drift.parameter].default)
 
 
-def _check_probes(probes: Mapping[str, Any], model: StateSpace, source: str) -> None:
+def _check_wiring(wiring: Mapping[str, Any], model: StateSpace, source: str) -> None:
     allowed_channels = [f"CH{n}" for n in range(1, N_CHANNELS + 1)]
-    for name, text in probes.items():
-        field_name = f"{TABLE}.probes.{name}"
+    for name, text in wiring.items():
+        field_name = f"{TABLE}.wiring.{name}"
         if name not in allowed_channels:
             raise ConfigError(source, field_name, f"not a scope channel; allowed: {', '.join(allowed_channels)}")
         try:
-            fits = Probe.parse(text).fits(model)
+            fits = Signal.parse(text).fits(model)
         except ValueError:
             fits = False
         if not fits:
-            raise ConfigError(source, field_name, f"{text!r} is not a probe of this DUT; write an output or "
+            raise ConfigError(source, field_name, f"{text!r} is not a signal of this DUT; write an output or "
                                                   f"'a - b' of outputs: {', '.join(model.outputs)}")
 
 
@@ -210,7 +210,7 @@ class ServedBench:
 
     @property
     def resources(self) -> dict[str, str]:
-        """VISA resource strings by name, e.g. ``{"gen": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ...}``."""
+        """VISA resource strings by name, e.g. ``{"generator": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ...}``."""
         return {name: server.resource for name, server in self._servers.items()}
 
     @property
@@ -268,7 +268,7 @@ class SimBench(ServedBench):
         self.config = config or SimBenchConfig()
         self.realtime = self.config.realtime
         self.front_end = self.config.front_end()
-        self.probes = self.config.parsed_probes()
+        self.wiring = self.config.parsed_wiring()
         self._plant = Plant(self.config.model)
         self.plant_source: Callable[[], Plant] = self._drifted_plant if self.config.drift else lambda: self._plant
         self.generator: Generator | None = None
@@ -319,4 +319,4 @@ class SimBench(ServedBench):
         self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
         self.divscope = DivScope(self, np.random.default_rng(divscope_seed))
         self._started_s = time.monotonic()
-        return {"gen": self.generator, "scope": self.scope, "divscope": self.divscope}
+        return {"generator": self.generator, "scope": self.scope, "divscope": self.divscope}

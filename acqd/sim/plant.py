@@ -16,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import expm
 
-from ..models.probe import Probe
+from ..models.signal import Signal
 from ..models.statespace import StateSpace, discretise, propagate
 
 
@@ -30,15 +30,15 @@ class Plant:
 
     def window(self, *, emf_before: float, emf_after: float, half_period_s: float | None,
                sample_interval_s: float, n_samples: int, first_sample_s: float,
-               edge_time_s: float, probes: Sequence[Probe]) -> list[np.ndarray]:
-        """Each probe's value at first_sample_s + k·dt, t = 0 being the start of the captured edge."""
+               edge_time_s: float, signals: Sequence[Signal]) -> list[np.ndarray]:
+        """Each signal's value at first_sample_s + k·dt, t = 0 being the start of the captured edge."""
         dt = float(sample_interval_s)
         times = first_sample_s + np.arange(n_samples) * dt
         wave = _SquareWave(emf_before, emf_after, half_period_s, edge_time_s)
         x_start = self._state_at(times[0], wave)
         states = self._states_on_grid(times, wave, x_start)
         u = wave.value(times)
-        return [states @ c + u * d for c, d in (probe.row(self.model) for probe in probes)]
+        return [states @ c + u * d for c, d in (signal.row(self.model) for signal in signals)]
 
     def _state_at(self, t: float, wave: _SquareWave) -> np.ndarray:
         """State at time t from the periodic steady state, propagated with the level that holds there.

@@ -277,7 +277,7 @@ class ReplayBench(ServedBench):
         self.source = RecordSource(self.path, self.selection)
         self.generator = Generator()
         self.scope = ReplayScope(self)
-        return {"gen": self.generator, "scope": self.scope}
+        return {"generator": self.generator, "scope": self.scope}
 
     async def astop(self) -> None:
         await super().astop()

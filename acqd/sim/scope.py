@@ -30,7 +30,7 @@ from typing import Protocol
 import numpy as np
 
 from .. import scpi
-from ..models import Probe, StateSpace
+from ..models import Signal, StateSpace
 from . import frontend
 from .frontend import ChannelSetup, FrontEndSettings
 from .generator import Generator
@@ -48,7 +48,7 @@ class Bench(Protocol):
     generator: Generator
     realtime: bool
     front_end: FrontEndSettings
-    probes: Mapping[int, Probe]  # channel number → what it is connected to
+    wiring: Mapping[int, Signal]  # channel number → what it is connected to
 
     def plant_now(self) -> Plant: ...
 
@@ -106,16 +106,16 @@ def terminal_levels(plant: Plant, emf_low: float, emf_high: float) -> tuple[floa
     return settled(emf_low), settled(emf_high)
 
 
-def sine_steady_state(model: StateSpace, probes: Sequence[Probe], offset_emf: float, amplitude_emf: float,
+def sine_steady_state(model: StateSpace, signals: Sequence[Signal], offset_emf: float, amplitude_emf: float,
                       frequency_hz: float, times_s: np.ndarray) -> list[np.ndarray]:
-    """Each probe for u = offset + amplitude·sin(ωt) once transients have gone: DC gain plus H(jω)."""
+    """Each signal for u = offset + amplitude·sin(ωt) once transients have gone: DC gain plus H(jω)."""
     omega = 2 * np.pi * frequency_hz
     n = len(model.states)
     response = np.linalg.solve(1j * omega * np.eye(n) - model.A, model.B[:, 0])  # states per unit input
     rest = model.steady_state(offset_emf)
     phasor = np.exp(1j * omega * times_s)
     result = []
-    for c, d in (probe.row(model) for probe in probes):
+    for c, d in (signal.row(model) for signal in signals):
         dc = c @ rest + d * offset_emf
         result.append(dc + amplitude_emf * np.imag((c @ response + d) * phasor))
     return result
@@ -211,17 +211,17 @@ class Acquisition:
     def _exact(self, request: CaptureRequest, edge: _Edge | None, first_s: float) -> list[np.ndarray]:
         """Noise-free value at every sample of every channel (zeros where nothing is connected)."""
         n, dt = request.n_samples, request.sample_interval_s
-        probes = [self.bench.probes.get(ch) for ch in range(1, N_CHANNELS + 1)]
-        connected = [p for p in probes if p is not None]
-        values = iter(self._probe_values(connected, edge, first_s, dt, n) if connected else [])
-        return [next(values) if p is not None else np.zeros(n) for p in probes]
+        signals = [self.bench.wiring.get(ch) for ch in range(1, N_CHANNELS + 1)]
+        connected = [p for p in signals if p is not None]
+        values = iter(self._signal_values(connected, edge, first_s, dt, n) if connected else [])
+        return [next(values) if p is not None else np.zeros(n) for p in signals]
 
-    def _probe_values(self, probes: list[Probe], edge: _Edge | None, first_s: float, dt: float,
-                      n: int) -> list[np.ndarray]:
+    def _signal_values(self, signals: list[Signal], edge: _Edge | None, first_s: float, dt: float,
+                       n: int) -> list[np.ndarray]:
         gen = self.bench.generator
         s = gen.settings
         plant = self.bench.plant_now()
-        common = dict(sample_interval_s=dt, n_samples=n, edge_time_s=gen.ramp_s, probes=probes)
+        common = dict(sample_interval_s=dt, n_samples=n, edge_time_s=gen.ramp_s, signals=signals)
         if edge is not None:
             return plant.window(emf_before=edge.before_emf, emf_after=edge.after_emf,
                                 half_period_s=edge.half_period_s, first_sample_s=first_s + edge.trigger_delay_s,
@@ -233,7 +233,7 @@ class Acquisition:
         phase_s = float(self.rng.uniform(0.0, 2 * s.half_period_s()))
         if s.shape == "SINusoid":
             times = first_s + phase_s + np.arange(n) * dt
-            return sine_steady_state(plant.model, probes, (emf_low + emf_high) / 2, (emf_high - emf_low) / 2,
+            return sine_steady_state(plant.model, signals, (emf_low + emf_high) / 2, (emf_high - emf_low) / 2,
                                      s.frequency_hz, times)
         half = None if s.shape == "DC" else s.half_period_s()
         return plant.window(emf_before=emf_low, emf_after=emf_high, half_period_s=half,

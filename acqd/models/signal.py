@@ -1,6 +1,6 @@
 """What a scope channel sees of a model: one output, or the difference of two (a floating voltage such as
 the drop across a series resistor). One definition for the simulated bench and the comparator, so a
-profile's probe text means the same to both."""
+profile's signal text means the same to both."""
 
 from __future__ import annotations
 
@@ -11,22 +11,22 @@ import numpy as np
 
 from .statespace import StateSpace
 
-_PROBE = re.compile(r"^\s*([A-Za-z_]\w*)\s*(?:-\s*([A-Za-z_]\w*)\s*)?$")
+_SIGNAL = re.compile(r"^\s*([A-Za-z_]\w*)\s*(?:-\s*([A-Za-z_]\w*)\s*)?$")
 
 
 @dataclass(frozen=True)
-class Probe:
+class Signal:
     """``plus`` − ``minus`` of a model's outputs; ``minus`` None for an earth-referenced node."""
 
     plus: str
     minus: str | None = None
 
     @classmethod
-    def parse(cls, text: str) -> Probe:
+    def parse(cls, text: str) -> Signal:
         """``"v_c"`` or ``"v_src - v_rl"``; ValueError for anything else."""
-        match = _PROBE.match(text) if isinstance(text, str) else None
+        match = _SIGNAL.match(text) if isinstance(text, str) else None
         if not match:
-            raise ValueError(f"probe {text!r} must be a node name or 'node_a - node_b'")
+            raise ValueError(f"signal {text!r} must be a node name or 'node_a - node_b'")
         return cls(match.group(1), match.group(2))
 
     @property
@@ -41,7 +41,7 @@ class Probe:
         return all(node in model.outputs for node in (self.plus, self.minus) if node is not None)
 
     def row(self, model: StateSpace) -> tuple[np.ndarray, float]:
-        """(C row, D entry) of the probed quantity, so its value is x·c + d·u; KeyError for an unknown node."""
+        """(C row, D entry) of the quantity, so its value is x·c + d·u; KeyError for an unknown node."""
         i = model.output_index(self.plus)
         c, d = model.C[i].copy(), float(model.D[i, 0])
         if self.minus is not None:

@@ -1,0 +1,87 @@
+"""How a person reads a quantity: symbols and SI prefixes for what files and JSON keep as keys.
+
+Files, JSON and profiles keep the keys (``r_ohm``, ``l_h``, ``settling_s``) because scripts read them;
+everything a person reads — terminal tables, the HTML report, figure axes — goes through here, so
+``0.0032484 H`` is shown as ``3.248 mH`` and ``r_ohm`` as ``R`` in one way everywhere. The prefixes
+are the SI Brochure's (BIPM, 9th edition, table 7), femto to tera, the range a bench meets.
+"""
+
+from __future__ import annotations
+
+import math
+
+PREFIXES = {-15: "f", -12: "p", -9: "n", -6: "µ", -3: "m", 0: "", 3: "k", 6: "M", 9: "G", 12: "T"}
+
+# Units spelt in keys and files, as a person writes them.
+UNIT_SYMBOLS = {"ohm": "Ω", "rad_s": "rad/s", "pct": "%", "1": "", "v": "V", "h": "H", "f": "F", "s": "s",
+                "hz": "Hz", "a": "A"}
+# Units that take no prefix: ratios and percentages read as they are.
+UNPREFIXED = {"", "%", "V/V", "dB"}
+
+# Display names of parameter and metric keys; a key not listed shows its name without the unit suffix.
+LABELS = {
+    "r_ohm": "R", "l_h": "L", "c_f": "C", "source_resistance_ohm": "Rₛ", "wn_rad_s": "ωₙ", "zeta": "ζ",
+    "gain": "gain", "overshoot_pct": "overshoot", "undershoot_pct": "undershoot",
+    "settling_s": "settling time", "rise_time_s": "rise time", "fall_time_s": "fall time",
+    "peak_time_s": "peak time", "ringing_hz": "ringing frequency", "nrmse": "NRMSE",
+}
+# Key suffixes that carry a unit, longest first so "_rad_s" wins over "_s".
+_SUFFIXES = ("_rad_s", "_ohm", "_pct", "_hz", "_h", "_f", "_s", "_v", "_a")
+
+
+def unit_symbol(unit: str) -> str:
+    """``"ohm"`` → ``"Ω"``; a unit already written as a symbol comes back unchanged."""
+    return UNIT_SYMBOLS.get(unit.lower(), unit)
+
+
+def key_unit(key: str) -> str:
+    """The unit symbol a key's suffix carries (``l_h`` → ``H``, ``zeta`` → ``""``)."""
+    for suffix in _SUFFIXES:
+        if key.endswith(suffix):
+            return unit_symbol(suffix[1:])
+    return ""
+
+
+def label(key: str) -> str:
+    """What a person calls the quantity a key names: ``r_ohm`` → ``R``, ``delay_s`` → ``delay``."""
+    if key in LABELS:
+        return LABELS[key]
+    for suffix in _SUFFIXES:
+        if key.endswith(suffix):
+            return key[: -len(suffix)].replace("_", " ")
+    return key.replace("_", " ")
+
+
+def si(value: float, unit: str = "", digits: int = 4) -> str:
+    """``value`` with ``digits`` significant figures and an SI prefix on ``unit``: ``3.248 mH``.
+
+    Zero (of either sign) reads ``0``; a value whose rounding is zero never shows a minus sign, so a
+    level that sits at −0.0001 V on a 1 V step reads ``0 V``, not ``-0.000 V``.
+    """
+    symbol = unit_symbol(unit)
+    space = " " if symbol else ""
+    if not math.isfinite(value):
+        return f"{value}{space}{symbol}"
+    if value == 0:
+        return f"0{space}{symbol}"
+    if symbol in UNPREFIXED:
+        return f"{_significant(value, digits)}{space}{symbol}"
+    exponent = 3 * math.floor(math.log10(abs(value)) / 3)
+    exponent = min(max(exponent, min(PREFIXES)), max(PREFIXES))
+    mantissa = value / 10.0 ** exponent
+    if abs(float(f"{mantissa:.{digits}g}")) >= 1000 and exponent < max(PREFIXES):
+        exponent, mantissa = exponent + 3, mantissa / 1000
+    return f"{_significant(mantissa, digits)} {PREFIXES[exponent]}{symbol}"
+
+
+def _significant(value: float, digits: int) -> str:
+    """``digits`` significant figures, trailing zeros kept (a reading's precision shows), no ``-0``."""
+    text = f"{value:#.{digits}g}".rstrip(".")
+    if "e" in text:
+        text = f"{value:.{digits}g}"
+    return text[1:] if text.startswith("-") and float(text) == 0 else text
+
+
+def quantity(key: str, value: float, digits: int = 4) -> str:
+    """``"R = 22.00 Ω"`` for a parameter key and its SI value."""
+    return f"{label(key)} = {si(value, key_unit(key), digits)}"

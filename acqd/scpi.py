@@ -173,6 +173,26 @@ def command(template: str, **values: Any) -> str:
     return template.format(**formatted)
 
 
+def single_message_problem(text: str) -> str | None:
+    """Why ``text`` is not one program message unit, or None when it is.
+
+    A ``;`` outside a quoted string starts a second message unit (IEEE 488.2 §7.1, (m)), and a line
+    feed ends the message: a driver template holding either would send commands the driver does not
+    declare and shift every later reply by one. Quoted strings (§7.7.5) may hold both.
+    """
+    quote = None
+    for char in text:
+        if quote:
+            quote = None if char == quote else quote
+        elif char in "\"'":
+            quote = char
+        elif char == ";":
+            return "holds ';', which starts a second command; write one command per list entry"
+        elif char in "\r\n":
+            return "must be one line (a line break would end the message)"
+    return "has an unclosed quoted string" if quote else None
+
+
 # ---------------------------------------------------------------------------------------------------
 # Parsing replies
 # ---------------------------------------------------------------------------------------------------

@@ -130,6 +130,20 @@ def test_malformed_toml_names_the_file(tmp_path):
     ("scpi-digitizer", "max_pretrigger_fraction = 1.0", "", "limits.max_pretrigger_fraction", "missing"),
     ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float}\\n*RST"',
      "operations.frequency.commands[0]", "one line"),
+    # A second message unit after ';' (IEEE 488.2 §7.1, program message unit separator, from memory) would
+    # reach the wire undeclared and shift every later reply by one.
+    ("scpi-generator", '"FREQuency {frequency_hz:float}"', '";*RST;:SYST:ERR?"',
+     "operations.frequency.commands[0]", "second command"),
+    ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float};*RST"',
+     "operations.frequency.commands[0]", "second command"),
+    # Limits no bench generator has: a typo of 1e308 V must not open the door to any level.
+    ("scpi-generator", "high_z = 10.0", "high_z = 1e308", "limits.max_level_v.high_z", "at most 60"),
+    ("scpi-generator", "max_frequency_hz = 1e6", "max_frequency_hz = 1e300", "limits.max_frequency_hz",
+     "at most"),
+    ("scpi-digitizer", "max_samples = 10_000_000", "max_samples = 10_000_000_000", "limits.max_samples",
+     "to 10000000"),
+    ("scpi-digitizer", 'channels = { CH1 = 1', 'hooks = { after_fetch = "os:system" }\nchannels = { CH1 = 1',
+     "driver.hooks.after_fetch", "not allowed"),
 ])
 def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new, field, says):
     # Each variant is still valid TOML (reference: tomllib parses it), so the loader's own checks are what
@@ -140,6 +154,37 @@ def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new
         load_driver(path)
     text = one_line(info.value)
     assert text.startswith(str(path)) and field in text and says in text, text
+
+
+def test_quoted_semicolon_is_one_command():
+    # IEEE 488.2 §7.7.5 string program data (from memory): a ';' inside quotes is data, not a separator.
+    from acqd import scpi
+    assert scpi.single_message_problem('DISPlay:TEXT "ready; armed"') is None
+    assert scpi.single_message_problem('DISPlay:TEXT "ready"; *RST') is not None
+
+
+def test_a_refused_hook_runs_no_code(tmp_path, monkeypatch):
+    # The module would leave a file behind if it were imported; refused by name, it must never be.
+    marker = tmp_path / "imported"
+    (tmp_path / "bench_quirks.py").write_text(f"open({str(marker)!r}, 'w').close()\n"
+                                              "def fix(volts, timebase, *, channel, session):\n"
+                                              "    return volts, timebase\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.delenv("ACQD_HOOK_MODULES", raising=False)
+    path = variant(tmp_path, "scpi-digitizer", 'channels = { CH1 = 1',
+                   'hooks = { after_fetch = "bench_quirks:fix" }\nchannels = { CH1 = 1')
+    with pytest.raises(ConfigError, match="ACQD_HOOK_MODULES"):
+        load_driver(path)
+    assert not marker.exists()
+    monkeypatch.setenv("ACQD_HOOK_MODULES", "bench_quirks")
+    assert load_driver(path).hooks["after_fetch"].__name__ == "fix" and marker.exists()
+
+
+def test_own_hooks_module_is_allowed_without_the_environment(tmp_path, monkeypatch):
+    monkeypatch.delenv("ACQD_HOOK_MODULES", raising=False)
+    path = variant(tmp_path, "scpi-digitizer", 'channels = { CH1 = 1',
+                   'hooks = { after_fetch = "acqd.instruments.hooks:invert" }\nchannels = { CH1 = 1')
+    assert load_driver(path).hooks["after_fetch"].__name__ == "invert"
 
 
 # --- expressions --------------------------------------------------------------------------------------

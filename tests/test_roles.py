@@ -220,6 +220,7 @@ def test_after_fetch_hook_is_called(bench, opened, generator, tmp_path, monkeypa
         "def invert(volts, timebase, *, channel, session):\n"
         "    return -volts, timebase\n")
     monkeypatch.syspath_prepend(str(tmp_path))
+    monkeypatch.setenv("ACQD_HOOK_MODULES", "quirk_hook")
     hooked = driver_variant(tmp_path, 'channels = { CH1 = 1', 'hooks = { after_fetch = "quirk_hook:invert" }\n'
                                                              'channels = { CH1 = 1')
     plain, _ = acquire(opened(bench.resources["scope"], "scpi-digitizer"))

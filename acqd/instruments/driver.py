@@ -13,6 +13,7 @@ from __future__ import annotations
 import importlib
 import math
 import numbers
+import os
 import re
 import string
 from collections.abc import Callable, Mapping
@@ -62,6 +63,18 @@ REPLY_TYPES = ("float", "int", "bool", "text")
 NUMERIC = ("float", "int")
 SCALING_RULE = ("volts_per_code", "volts_at_code_0", "sample_interval_s", "first_sample_s")
 HOOK_POINTS = ("after_fetch",)
+# Sanity caps on a driver's own limits. 60 V d.c. is the usual bound of extra-low voltage that may be
+# touched (common practice; local codes rule): a driver claiming more is refused, so a typo such as 1e308
+# cannot let a dangerous level through. 10 GHz is beyond any bench function generator; the sample cap
+# is the profile's own.
+SANE_MAX_LEVEL_V = 60.0
+SANE_MAX_FREQUENCY_HZ = 10e9
+SANE_MAX_SAMPLES = 10_000_000
+# Hooks are code: a driver file may name one only from acqd's own hooks module or from the modules the
+# operator lists in this environment variable (module names, separated by commas). Nothing is imported
+# before the name is allowed, so a rejected hook runs no code.
+HOOK_ALLOW_ENVIRONMENT = "ACQD_HOOK_MODULES"
+OWN_HOOK_MODULE = "acqd.instruments.hooks"
 
 
 # ---------------------------------------------------------------------------------------------------
@@ -295,10 +308,21 @@ def _hooks(t: Table) -> dict[str, Callable[..., Any]]:
     return hooks
 
 
+def allowed_hook_modules() -> tuple[str, ...]:
+    """acqd's own hooks module and those the operator allowed in ``ACQD_HOOK_MODULES``."""
+    listed = os.environ.get(HOOK_ALLOW_ENVIRONMENT, "")
+    return (OWN_HOOK_MODULE, *(name.strip() for name in listed.split(",") if name.strip()))
+
+
 def _import_hook(t: Table, point: str, target: str) -> Callable[..., Any]:
     module_name, _, attribute = target.partition(":")
-    if not module_name or not attribute:
+    if not module_name or not attribute or not all(part.isidentifier() for part in module_name.split(".")) \
+            or not attribute.isidentifier():
         raise t.error(point, f"must be 'package.module:function', not {target!r}")
+    allowed = allowed_hook_modules()
+    if module_name not in allowed:
+        raise t.error(point, f"module {module_name!r} is not allowed; allowed: {', '.join(allowed)} "
+                             f"(add a module to the {HOOK_ALLOW_ENVIRONMENT} environment variable)")
     try:
         function = getattr(importlib.import_module(module_name), attribute)
     except (ImportError, AttributeError) as exc:
@@ -335,16 +359,21 @@ def _enums(t: Table, role: str) -> dict[str, dict[str, str]]:
 
 
 def _limits(t: Table, role: str) -> dict[str, Any]:
+    """The instrument's hard limits, each capped at a physical sanity value: a driver file is trusted to
+    narrow what acqd may send, never to widen it past what a bench function generator or scope can be."""
     if role == "generator":
         levels = t.table("max_level_v")
-        limits: dict[str, Any] = {"max_level_v": {load: levels.number(load, positive=True, unit="V")
+        limits: dict[str, Any] = {"max_level_v": {load: levels.number(load, positive=True, max=SANE_MAX_LEVEL_V,
+                                                                      unit="V")
                                                   for load in LOADS}}
         levels.done()
-        limits["min_frequency_hz"] = t.number("min_frequency_hz", positive=True, unit="Hz")
-        limits["max_frequency_hz"] = t.number("max_frequency_hz", min=limits["min_frequency_hz"], unit="Hz")
+        limits["min_frequency_hz"] = t.number("min_frequency_hz", positive=True, max=SANE_MAX_FREQUENCY_HZ,
+                                              unit="Hz")
+        limits["max_frequency_hz"] = t.number("max_frequency_hz", min=limits["min_frequency_hz"],
+                                              max=SANE_MAX_FREQUENCY_HZ, unit="Hz")
     else:
-        limits = {"min_samples": t.integer("min_samples", min=1)}
-        limits["max_samples"] = t.integer("max_samples", min=limits["min_samples"])
+        limits = {"min_samples": t.integer("min_samples", min=1, max=SANE_MAX_SAMPLES)}
+        limits["max_samples"] = t.integer("max_samples", min=limits["min_samples"], max=SANE_MAX_SAMPLES)
         limits["max_pretrigger_fraction"] = t.number("max_pretrigger_fraction", min=0.0, max=1.0)
     t.done()
     return limits
@@ -379,8 +408,8 @@ class _TemplateReader:
 
         if not isinstance(raw, str) or not raw.strip():
             raise fail(f"must be SCPI command text, not {raw!r}")
-        if any(c in raw for c in "\r\n"):
-            raise fail("must be one line (a line break would end the message)")
+        if problem := scpi.single_message_problem(raw):
+            raise fail(problem)
         types: dict[str, str] = {}
         plain = []
         try:

@@ -16,6 +16,7 @@ import numpy as np
 
 from .config import Table, load_toml
 from .record import EDGES, LOADS, Stimulus
+from .visa import DEFAULT_BACKEND, NAMED_BACKENDS
 
 SHAPES = ("square", "pulse")
 BENCH_KINDS = ("simulated", "visa")
@@ -177,7 +178,7 @@ def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
     if kind == "simulated" and resource is not None:
         raise t.error("resource", "not allowed on the simulated bench (it picks its own ports)")
     plan = InstrumentPlan(role, driver, resource, t.number("timeout_s", 5.0, positive=True, unit="s"),
-                          t.string("backend", "@py"))
+                          t.string("backend", DEFAULT_BACKEND, choices=NAMED_BACKENDS))
     t.done()
     return plan
 

@@ -6,16 +6,22 @@ clauses for block format, error queue and message exchange (cited per test).
 
 from __future__ import annotations
 
+import shutil
 import socket
+import subprocess
 import threading
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from acqd import scpi
 from acqd.errors import ConfigError, InstrumentError
+from acqd.profile import load_profile
 from acqd.visa import InstrumentTimeout, Session, identify
+
+ROOT = Path(__file__).resolve().parent.parent
 
 
 def one_line(exc: BaseException) -> str:
@@ -226,7 +232,39 @@ def test_silent_instrument_times_out_naming_resource_and_query(silent_server):
 def test_unknown_backend_and_bad_timeout_are_one_line():
     with pytest.raises(InstrumentError) as info:
         Session("TCPIP0::127.0.0.1::1::SOCKET", backend="@nosuch").open()
-    assert "@nosuch" in one_line(info.value)
+    assert "@nosuch" in one_line(info.value) and "allowed: @py, @ivi" in one_line(info.value)
     with pytest.raises(ConfigError) as info:
         Session("TCPIP0::127.0.0.1::1::SOCKET", timeout_s=-1)
     assert "timeout_s" in one_line(info.value)
+
+
+@pytest.fixture
+def constructor_library(tmp_path):
+    """A real shared library whose ELF constructor leaves a marker file: proof of whether it was loaded."""
+    compiler = shutil.which("cc") or shutil.which("gcc")
+    if compiler is None:
+        pytest.skip("no C compiler to build the test library")
+    marker = tmp_path / "loaded"
+    source = tmp_path / "lib.c"
+    source.write_text('#include <stdio.h>\n__attribute__((constructor)) static void mark(void) '
+                      f'{{ FILE *f = fopen("{marker}", "w"); if (f) fclose(f); }}\n')
+    library = tmp_path / "libsomething.so"
+    subprocess.run([compiler, "-shared", "-fPIC", "-o", str(library), str(source)], check=True)
+    return library, marker
+
+
+def test_a_library_path_from_a_profile_is_never_loaded(constructor_library, tmp_path):
+    library, marker = constructor_library
+    profile = tmp_path / "p.toml"
+    text = (ROOT / "profiles" / "demo-bridge-filter.toml").read_text()
+    profile.write_text(text.replace('kind = "simulated"', 'kind = "visa"').replace(
+        'driver = "scpi-generator"', f'driver = "scpi-generator"\nresource = "TCPIP0::127.0.0.1::1::SOCKET"'
+        f'\nbackend = "{library}"', 1).replace(
+        'driver = "scpi-digitizer"', 'driver = "scpi-digitizer"\nresource = "TCPIP0::127.0.0.1::2::SOCKET"', 1))
+    with pytest.raises(ConfigError) as info:
+        load_profile(profile)
+    assert "bench.generator.backend" in one_line(info.value) and "@py" in one_line(info.value)
+    # The transport refuses the same string on its own, before pyvisa could dlopen it.
+    with pytest.raises(InstrumentError, match="not allowed"):
+        Session("TCPIP0::127.0.0.1::1::SOCKET", backend=str(library)).open()
+    assert not marker.exists()

@@ -8,6 +8,7 @@ DEVELOPERS.md, "How to add a driver").
 from __future__ import annotations
 
 import argparse
+from pathlib import Path
 from typing import Any
 
 from rich.console import Console
@@ -16,7 +17,7 @@ from rich.table import Table
 
 from ..instruments import driver_dirs, list_drivers, match_driver
 from ..instruments.search import ENVIRONMENT
-from ..visa import DEFAULT_BACKEND, identify
+from ..visa import DEFAULT_BACKEND, NAMED_BACKENDS, identify
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -25,7 +26,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
     ident = subparsers.add_parser("identify", help="ask an instrument for *IDN? and name the driver that fits")
     ident.add_argument("resource", metavar="RESOURCE", help="VISA resource, e.g. TCPIP0::192.0.2.10::5025::SOCKET")
-    ident.add_argument("--backend", default=DEFAULT_BACKEND, help=f"pyvisa backend (default {DEFAULT_BACKEND})")
+    library = ident.add_mutually_exclusive_group()
+    library.add_argument("--backend", default=DEFAULT_BACKEND, choices=NAMED_BACKENDS,
+                         help=f"pyvisa backend by name (default {DEFAULT_BACKEND})")
+    library.add_argument("--visa-library", type=Path, metavar="PATH",
+                         help="a VISA shared library file to load instead (native code: only from here)")
     ident.add_argument("--timeout-s", type=float, default=5.0, metavar="S", help="reply timeout in seconds")
     ident.set_defaults(func=_identify)
 
@@ -53,7 +58,7 @@ def _drivers(args: argparse.Namespace) -> int:
 
 
 def _identify(args: argparse.Namespace) -> int:
-    idn = identify(args.resource, backend=args.backend, timeout_s=args.timeout_s)
+    idn = identify(args.resource, backend=args.visa_library or args.backend, timeout_s=args.timeout_s)
     info = match_driver(idn)
     console = Console(highlight=False)
     console.print(f"{escape(args.resource)}: {escape(idn)}")

@@ -5,6 +5,6 @@ the error queue, draining a late reply after a timeout, reconnecting, and turnin
 failure into one ``InstrumentError`` line that names the resource.
 """
 
-from .session import DEFAULT_BACKEND, InstrumentTimeout, Session, identify
+from .session import DEFAULT_BACKEND, NAMED_BACKENDS, InstrumentTimeout, Session, identify
 
-__all__ = ["DEFAULT_BACKEND", "InstrumentTimeout", "Session", "identify"]
+__all__ = ["DEFAULT_BACKEND", "NAMED_BACKENDS", "InstrumentTimeout", "Session", "identify"]

@@ -19,6 +19,7 @@ import socket
 import time
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any
 
 import pyvisa
@@ -29,6 +30,10 @@ from ..errors import ConfigError, InstrumentError
 from .blocks import PublicReader, SocketReader, read_block
 
 DEFAULT_BACKEND = "@py"
+# The backends a profile may name: pyvisa-py, and the IVI VISA library installed on the system. Any
+# other backend string makes pyvisa load a shared library or a package, i.e. run native code: that is
+# never taken from a profile, only from the command line as an explicit VISA library file (a Path).
+NAMED_BACKENDS = ("@py", "@ivi")
 # IEEE 488.2 §7.5 / §8.5 (from memory): NL terminates program and response messages.
 TERMINATION = "\n"
 # IEEE 488.2 common queries and the SCPI error queue (SCPI-1999 Vol 2 §21.8); fixed text, no values.
@@ -46,12 +51,19 @@ class InstrumentTimeout(InstrumentError):
     """No (complete) reply within the timeout; the session has already been drained or reconnected."""
 
 
-def _resource_manager(backend: str, resource: str) -> pyvisa.ResourceManager:
+def _resource_manager(backend: str | Path, resource: str) -> pyvisa.ResourceManager:
     """pyvisa's resource manager for ``backend``: one shared object per backend, re-created by pyvisa if
     someone closed it — so it is asked for at every open instead of being kept here. It is never closed
-    here either: closing it would close every session opened through it, ours and other code's."""
+    here either: closing it would close every session opened through it, ours and other code's.
+
+    ``backend`` is one of NAMED_BACKENDS, or a Path to a VISA library file that the command line named
+    explicitly; a string that is neither is refused before pyvisa can load anything."""
+    if not isinstance(backend, Path) and backend not in NAMED_BACKENDS:
+        raise InstrumentError(resource, f"VISA backend {backend!r} is not allowed; allowed: "
+                                        f"{', '.join(NAMED_BACKENDS)} (a VISA library file is given on the "
+                                        f"command line only, with --visa-library PATH)")
     try:
-        return pyvisa.ResourceManager(backend)
+        return pyvisa.ResourceManager(str(backend) if isinstance(backend, Path) else backend)
     except (ValueError, OSError) as exc:
         raise InstrumentError(resource, f"VISA backend {backend!r} is not available ({exc}); "
                                         f"the default is {DEFAULT_BACKEND!r} (pyvisa-py)") from None
@@ -74,7 +86,7 @@ class Session:
     release ever change the two attributes that read relies on).
     """
 
-    def __init__(self, resource: str, *, backend: str = DEFAULT_BACKEND, timeout_s: float = 5.0,
+    def __init__(self, resource: str, *, backend: str | Path = DEFAULT_BACKEND, timeout_s: float = 5.0,
                  drain_timeout_s: float | None = None, direct_socket: bool = True) -> None:
         self.resource = resource
         self.backend = backend
@@ -344,7 +356,7 @@ class Session:
         return max(1, round(seconds * 1000))
 
 
-def identify(resource: str, *, backend: str = DEFAULT_BACKEND, timeout_s: float = 5.0) -> str:
+def identify(resource: str, *, backend: str | Path = DEFAULT_BACKEND, timeout_s: float = 5.0) -> str:
     """The instrument's ``*IDN?`` reply, on a connection opened and closed for the purpose."""
     with Session(resource, backend=backend, timeout_s=timeout_s) as session:
         return session.identity

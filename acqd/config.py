@@ -33,6 +33,10 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         return tomllib.loads(text), text
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(path), "", f"not valid TOML: {exc}") from None
+    except RecursionError:
+        raise ConfigError(str(path), "", "not valid here: tables or lists nested too deeply") from None
+    except ValueError as exc:  # e.g. an integer literal longer than Python converts (4300 digits)
+        raise ConfigError(str(path), "", f"not valid TOML: {exc}") from None
 
 
 class Table:
@@ -76,29 +80,29 @@ class Table:
         value = self.raw(key, default)
         if value is None:
             return value
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise self.error(key, f"must be a finite number{_unit(unit)}, not {value!r}")
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not _finite(value):
+            raise self.error(key, f"must be a finite number{_unit(unit)}, not {_shown(value)}")
         if positive and value <= 0:
-            raise self.error(key, f"must be greater than 0{_unit(unit)}, not {value!r}")
+            raise self.error(key, f"must be greater than 0{_unit(unit)}, not {_shown(value)}")
         if min is not None and value < min:
-            raise self.error(key, f"must be at least {min:g}{_unit(unit)}, not {value!r}")
+            raise self.error(key, f"must be at least {min:g}{_unit(unit)}, not {_shown(value)}")
         if max is not None and value > max:
-            raise self.error(key, f"must be at most {max:g}{_unit(unit)}, not {value!r}")
+            raise self.error(key, f"must be at most {max:g}{_unit(unit)}, not {_shown(value)}")
         return float(value)
 
     def integer(self, key: str, default: Any = ..., *, min: int | None = None, max: int | None = None) -> int:
         value = self.raw(key, default)
         if isinstance(value, bool) or not isinstance(value, int):
-            raise self.error(key, f"must be a whole number, not {value!r}")
+            raise self.error(key, f"must be a whole number, not {_shown(value)}")
         if (min is not None and value < min) or (max is not None and value > max):
             span = f"from {min} to {max}" if max is not None else f"at least {min}"
-            raise self.error(key, f"must be {span}, not {value}")
+            raise self.error(key, f"must be {span}, not {_shown(value)}")
         return value
 
     def boolean(self, key: str, default: Any = ...) -> bool:
         value = self.raw(key, default)
         if not isinstance(value, bool):
-            raise self.error(key, f"must be true or false, not {value!r}")
+            raise self.error(key, f"must be true or false, not {_shown(value)}")
         return value
 
     def string(self, key: str, default: Any = ..., *, choices: Iterable[str] | None = None) -> str:
@@ -106,9 +110,9 @@ class Table:
         if value is None:
             return value
         if not isinstance(value, str) or not value.strip():
-            raise self.error(key, f"must be a non-empty string, not {value!r}")
+            raise self.error(key, f"must be a non-empty string, not {_shown(value)}")
         if choices is not None and value not in (allowed := list(choices)):
-            raise self.error(key, f"must be one of {', '.join(allowed)}, not {value!r}")
+            raise self.error(key, f"must be one of {', '.join(allowed)}, not {_shown(value)}")
         return value
 
     def moment(self, key: str, default: Any = None) -> datetime | None:
@@ -121,7 +125,7 @@ class Table:
                 value = datetime.fromisoformat(value)
             except ValueError:
                 raise self.error(key, f"must be an ISO 8601 date-time such as 2026-12-03T06:00:00+01:00, "
-                                      f"not {value!r}") from None
+                                      f"not {_shown(value)}") from None
         if not isinstance(value, datetime):
             kind = "a date without a time" if isinstance(value, date) else repr(value)
             raise self.error(key, f"must be a date-time such as 2026-12-03T06:00:00+01:00, not {kind}")
@@ -142,6 +146,22 @@ class Table:
         if unknown:
             allowed = ", ".join(sorted(self._seen)) or "(none)"
             raise self.error(unknown[0], f"unknown key; allowed here: {allowed}")
+
+
+def _finite(value: int | float) -> bool:
+    """Whether a TOML number is one a float can hold: a 400-digit integer is not (and would overflow)."""
+    return math.isfinite(value) if isinstance(value, float) else abs(value) <= 1e308
+
+
+SHOWN_CHARS = 60
+
+
+def _shown(value: Any) -> str:
+    """A value as an error message quotes it: repr, cut to SHOWN_CHARS so a 10 MB string stays one line."""
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > 10 ** SHOWN_CHARS:
+        return f"a {len(str(abs(value)))}-digit number"
+    text = repr(value)
+    return text if len(text) <= SHOWN_CHARS else text[:SHOWN_CHARS - 3] + "..."
 
 
 def _unit(unit: str) -> str:

@@ -57,16 +57,24 @@ CASES = [
      ["bench.generator.resource", "not allowed on the simulated bench"]),
     ("[stimulus]", "[stimulus\n", ["not valid TOML"]),
     ('model = "series_rlc"\nr_ohm = 22.0', 'modle = "series_rlc"\nr_ohm = 22.0', ["dut.modle", "unknown key"]),
+    # Hostile input: a 400-digit level is no float (IEEE 754 binary64 tops out near 1.8e308, common
+    # practice), a 5000-digit one is beyond what Python converts; 100,000 nested arrays; a 1 MB name.
+    ("high_v = 1.0", "high_v = " + "9" * 400, ["stimulus.high_v", "finite number", "400-digit"]),
+    ("high_v = 1.0", "high_v = " + "9" * 5000, ["not valid TOML"]),
+    ("high_v = 1.0", "high_v = " + "[" * 100_000 + "]" * 100_000, ["nested too deeply"]),
+    ('edge = "rising"', 'edge = "' + "u" * 1_000_000 + '"', ["stimulus.edge", "rising, falling, both", "..."]),
+    ('driver = "scpi-generator"\n', 'driver = "scpi-generator"\nbackend = "./libsomething.so"\n',
+     ["bench.generator.backend", "@py, @ivi"]),
 ]
 
 
-@pytest.mark.parametrize("old,new,words", CASES, ids=[c[2][0] for c in CASES])
+@pytest.mark.parametrize("old,new,words", CASES, ids=[f"{c[2][0]}-{i}" for i, c in enumerate(CASES)])
 def test_malformed_profile_is_one_clear_line(tmp_path: Path, old: str, new: str, words: list[str]) -> None:
     path = variant(tmp_path, old, new)
     with pytest.raises(ConfigError) as info:
         load_profile(path)
     message = str(info.value)
-    assert "\n" not in message
+    assert "\n" not in message and len(message) < 1000
     assert message.startswith(str(path))
     for word in words:
         assert word in message, message

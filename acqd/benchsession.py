@@ -65,6 +65,11 @@ def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench
     # A bad driver name is a profile error, found before anything is started.
     drivers = [load_driver(find_driver(plan.driver, source=f"{profile.source}: bench.{plan.role}.driver"))
                for plan in plans]
+    for plan, driver in zip(plans, drivers):
+        if driver.role != plan.role:
+            raise ConfigError(profile.source, f"bench.{plan.role}.driver",
+                              f"{plan.driver!r} is a {driver.role} driver; the {plan.role} needs a {plan.role} "
+                              f"driver (acqd drivers lists each file's role)")
     with ExitStack() as stack:
         sim = None
         if replay is not None or profile.bench.kind == "simulated":

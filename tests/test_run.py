@@ -216,10 +216,12 @@ BAD_WITH_BENCH = [
     (('driver = "scpi-digitizer"', 'driver = "no-such-scope"'), ["bench.scope.driver", "no-such-scope"]),
     (('CH3 = "v_c"', 'CH3 = "v_q"'), ["wiring.CH3", "v_q"]),
     (("r_ohm = 22.4", "r_ohm = -22.4"), ["bench.simulated.dut", "r_ohm", "greater than 0"]),
+    (('driver = "scpi-digitizer"', 'driver = "scpi-generator"'), ["bench.scope.driver", "generator driver"]),
 ]
 
 
-@pytest.mark.parametrize("change,words", BAD_WITH_BENCH, ids=["unknown driver", "unknown probe node", "bad dut"])
+@pytest.mark.parametrize("change,words", BAD_WITH_BENCH,
+                         ids=["unknown driver", "unknown wiring node", "bad dut", "driver of the other role"])
 def test_bad_bench_tables_are_one_line_and_create_nothing(tmp_path: Path, capsys: pytest.CaptureFixture,
                                                            change: tuple[str, str], words: list[str]) -> None:
     path = profile_file(tmp_path, change)

@@ -464,6 +464,7 @@ def test_divscope_state_poll_and_its_opc_does_not_wait(quiet):
     ({"wiring": {"CH1": "v_x"}}, "bench.simulated.wiring.CH1", "v_src, v_rl, v_c, i_l"),
     ({"wiring": {"CH1": "v_c - - v_rl"}}, "bench.simulated.wiring.CH1", "not a signal"),
     ({"dut": {"model": "tube_amp"}}, "model", "allowed"),
+    ({"command_log": "/nonexistent-folder/gen.log"}, "bench.simulated.command_log", "does not exist"),
 ])
 def test_bad_bench_tables_name_the_key_and_what_is_allowed(table, field, words):
     with pytest.raises(ConfigError) as caught:

@@ -52,6 +52,7 @@ import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
+from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
@@ -146,7 +147,7 @@ class SimBenchConfig:
             quantise=table.boolean("quantise", d.quantise),
             clip=table.boolean("clip", d.clip),
             edge_time_s=table.number("edge_time_s", d.edge_time_s, min=0, unit="s, 10-90 %"),
-            command_log=table.string("command_log", None),
+            command_log=_command_log(table),
             dut=dict(table.table("dut", dict(DEMO_DUT)).data),
             wiring=dict(table.table("wiring", dict(DEMO_WIRING)).data),
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
@@ -175,6 +176,16 @@ def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], source: str) -> f
     if drift.parameter in dut:
         return float(dut[drift.parameter])
     return float(inspect.signature(BUILDERS[model]).parameters[drift.parameter].default)
+
+
+def _command_log(table: Table) -> str | None:
+    """The command log's path, whose folder must exist: a log the generator cannot open would make it
+    drop every message, which reads as a dead instrument ("no reply to '*IDN?'")."""
+    path = table.string("command_log", None)
+    if path is not None and not Path(path).expanduser().resolve().parent.is_dir():
+        raise table.error("command_log", f"folder {str(Path(path).parent)!r} does not exist; create it or "
+                                         f"give a path in an existing folder")
+    return path
 
 
 def _check_wiring(wiring: Mapping[str, Any], model: StateSpace, source: str) -> None:

@@ -24,6 +24,8 @@ MODEL_TABLES = {
     "state_space": {"model": "state_space", "A": [[-3e3, 1e4], [-1e4, -3e3]], "B": [[0.0], [1e4]],
                     "C": [[1.0, 0.0], [0.0, 1.0], [1.0, -1.0]], "D": [[0.0], [0.0], [0.5]],
                     "states": ["x1", "x2"], "outputs": ["x1", "x2", "mix"]},
+    "netlist": {"model": "netlist", "netlist": "V1 in 0\nR1 in a 33\nL1 a b 2.2m\nC1 b 0 68n\nR2 b 0 4.7k",
+                "source": "V1"},
 }
 
 

@@ -11,7 +11,9 @@ import numpy as np
 
 from .statespace import StateSpace
 
-_SIGNAL = re.compile(r"^\s*([A-Za-z_]\w*)\s*(?:-\s*([A-Za-z_]\w*)\s*)?$")
+# An output name: an identifier, or a netlist's v(node) / i(element).
+_NAME = r"[A-Za-z_]\w*(?:\([A-Za-z0-9_.]+\))?"
+_SIGNAL = re.compile(rf"^\s*({_NAME})\s*(?:-\s*({_NAME})\s*)?$")
 
 
 @dataclass(frozen=True)

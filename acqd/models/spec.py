@@ -17,6 +17,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
+from .netlist import netlist_model
 from .statespace import StateSpace
 
 ModelBuilder = Callable[..., StateSpace]
@@ -27,6 +28,7 @@ BUILDERS: dict[str, ModelBuilder] = {
     "rc_lowpass": rc_lowpass,
     "series_rl": series_rl,
     "second_order": second_order,
+    "netlist": netlist_model,
 }
 
 
@@ -77,8 +79,14 @@ BUILDERS["state_space"] = _matrix_model
 
 
 def model_parameters(name: str) -> list[str]:
-    """Keyword parameters a named model takes (for validation messages and fits)."""
-    return list(_signature(BUILDERS[name]).parameters)
+    """Keyword parameters a named model takes (for validation messages and fits); a netlist's element
+    values come on top of these, by element name."""
+    return [p.name for p in _signature(BUILDERS[name]).parameters.values() if p.kind is not p.VAR_KEYWORD]
+
+
+def _takes_any_name(name: str) -> bool:
+    """A builder whose parameters depend on its own data (the netlist's elements) checks names itself."""
+    return any(p.kind is p.VAR_KEYWORD for p in _signature(BUILDERS[name]).parameters.values())
 
 
 @functools.lru_cache(maxsize=None)
@@ -89,7 +97,7 @@ def _signature(builder: ModelBuilder) -> inspect.Signature:
 
 def _required(name: str) -> list[str]:
     return [p.name for p in _signature(BUILDERS[name]).parameters.values()
-            if p.default is inspect.Parameter.empty]
+            if p.default is inspect.Parameter.empty and p.kind is not p.VAR_KEYWORD]
 
 
 def build_model(spec: Mapping[str, Any], source: str, overrides: Mapping[str, float] | None = None) -> StateSpace:
@@ -100,7 +108,7 @@ def build_model(spec: Mapping[str, Any], source: str, overrides: Mapping[str, fl
     allowed = model_parameters(name)
     params = {k: v for k, v in spec.items() if k != "model"}
     for key in params:
-        if key not in allowed:
+        if key not in allowed and not _takes_any_name(name):
             raise ConfigError(source, key, f"not a parameter of model {name}; allowed: {', '.join(allowed)}")
     for key in _required(name):
         if key not in params:

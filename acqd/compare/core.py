@@ -22,7 +22,8 @@ from ..models import PARAMETERS, StateSpace
 from ..record import Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
-from .metrics import BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms
+from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
+                      record_code_step)
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
 from .stimulus import Edge, align_edge, edge_response, steady_state
 from .verdict import Verdict, judge
@@ -299,7 +300,7 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
     for m, unit, meas, sim, span in zip(setup.mapping, setup.units, setup.measured, predicted, spans):
         channels.append(channel_result(m.channel, m.signal.text, unit, m.gain, m.offset, setup.times, meas, sim,
                                        _polarity(model, m.signal, m.gain, edge, span), edge.start_s,
-                                       spec.tolerances.settling_band_pct))
+                                       spec.tolerances.settling_band_pct, record_code_step(record, m.channel)))
     verdict, notes = judge(channels, fit, spec.tolerances)
     traces = Traces(setup.times, u, {m.channel: y for m, y in zip(setup.mapping, setup.measured)},
                     {m.channel: y for m, y in zip(setup.mapping, predicted)},

@@ -11,12 +11,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .ieee181 import StepError, StepParameters, step_parameters
+from ..record import Record
+from .ieee181 import StepError, StepParameters, code_step_of, step_parameters
 from .memo import Memo
 
 NRMSE_BASIS = "peak-to-peak range (max - min) of the simulated trace"
 MIN_BASELINE_SAMPLES = 16
-MIN_LEVELS = 8  # distinct values a trace needs before its code step is read from it
 BASELINE_WARN_SHARE = 0.02  # a pre-trigger baseline off by more than 2 % of the range gets a warning
 
 
@@ -56,43 +56,58 @@ def noise_rms(times: np.ndarray, y: np.ndarray, quiet_until_s: float) -> float:
 
 def quantisation_rms(y: np.ndarray) -> float:
     """The RMS of the error a quantiser with this trace's code step makes: step / √12 (uniform quantisation
-    noise, common practice), with the step read from the data as the smallest gap between distinct values
-    (every gap is a whole number of steps: an 8-bit channel shows its code step, an average of N captures
-    a step N times finer). 0 when the trace shows fewer than ``MIN_LEVELS`` distinct values, too few to
-    tell its step (an ideal step sits on two codes whatever the step is).
+    noise, common practice), with the step read from the data (``ieee181.code_step_of``; 0 when the trace
+    shows too few distinct values to tell its step: an ideal step sits on two codes whatever the step is).
 
     Why: a quiet channel's baseline can sit on one ADC code, so its measured noise is zero, yet every sample
     of the transient still carries up to half a code of error. Unquantised data gives a tiny step and so a
     negligible value.
     """
-    levels = np.unique(y)
-    if len(levels) < MIN_LEVELS:
-        return 0.0
-    return float(np.min(np.diff(levels)) / np.sqrt(12.0))
+    return code_step_of(y) / float(np.sqrt(12.0))
+
+
+def record_code_step(record: Record, channel: str) -> float | None:
+    """The code step of a channel as the record's scope reported it, per capture: ``volts_per_code`` in
+    the read-back settings of the scope input the channel came from, divided by the number of captures
+    averaged (an average of N is N times finer). None when the record does not carry it (a driver's
+    ``[channel_readback]`` may read it back; none of the shipped ones can), or for a math channel.
+    """
+    inputs = (record.settings.get("scope") or {}).get("channels") or {}
+    value = inputs.get(record.channel(channel).source, {}).get("volts_per_code")
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
+        return None
+    return float(value) / max(1, record.averages)
 
 
 _SIMULATED_STEPS = Memo()  # a simulated trace's step parameters depend on nothing the record measured
 
 
 def _steps(times: np.ndarray, measured: np.ndarray, simulated: np.ndarray, polarity: str | None,
-           band_pct: float, noise: float) -> tuple[StepParameters | None, StepParameters | None, str]:
+           band_pct: float, noise: float, code_step: float | None
+           ) -> tuple[StepParameters | None, StepParameters | None, str]:
     if polarity is None:
         return None, None, "no step: the model's rest values before and after the edge are equal"
     try:
         sim = _SIMULATED_STEPS.get((times, simulated, polarity, band_pct),
-                                   lambda: step_parameters(times, simulated, polarity, band_pct=band_pct))
+                                   lambda: step_parameters(times, simulated, polarity, band_pct=band_pct,
+                                                           code_step=0.0))  # a model has no ADC
     except StepError as exc:
         return None, None, f"simulated trace: {exc}"
     try:
-        return step_parameters(times, measured, polarity, band_pct=band_pct, noise_rms=noise), sim, ""
+        return step_parameters(times, measured, polarity, band_pct=band_pct, noise_rms=noise,
+                               code_step=code_step), sim, ""
     except StepError as exc:
         return None, sim, f"measured trace: {exc}"
 
 
 def channel_result(channel: str, signal: str, unit: str, gain: float, offset: float, times: np.ndarray,
                    measured: np.ndarray, simulated: np.ndarray, polarity: str | None, quiet_until_s: float,
-                   band_pct: float) -> ChannelResult:
-    """Errors, noise, baseline check and IEEE 181 step parameters of one mapped channel."""
+                   band_pct: float, code_step: float | None = None) -> ChannelResult:
+    """Errors, noise, baseline check and IEEE 181 step parameters of one mapped channel.
+
+    ``code_step`` is the measured channel's resolution when the record says it (``record_code_step``);
+    None reads it from the samples' spacing.
+    """
     error = measured - simulated
     span = float(np.ptp(simulated))
     k = int(np.argmax(np.abs(error)))
@@ -100,6 +115,6 @@ def channel_result(channel: str, signal: str, unit: str, gain: float, offset: fl
     noise = noise_rms(times, measured, quiet_until_s)
     quiet = times < quiet_until_s
     baseline = float(np.mean(error[quiet])) if quiet.sum() >= MIN_BASELINE_SAMPLES else None
-    meas_step, sim_step, note = _steps(times, measured, simulated, polarity, band_pct, noise)
+    meas_step, sim_step, note = _steps(times, measured, simulated, polarity, band_pct, noise, code_step)
     return ChannelResult(channel, signal, unit, gain, offset, rms, rms / span if span > 0 else float("inf"),
                          float(abs(error[k])), float(times[k]), noise, baseline, meas_step, sim_step, note)

@@ -1,0 +1,187 @@
+"""Estimates of a step's post-transition waveform where IEEE 181-2011 leaves the method open.
+
+IEEE 181 defines state levels, overshoot and settling on the waveform as sampled; it has no ringing
+frequency or peak time, and its histogram level assumes the record ends in a settled state. On a noisy,
+8-bit record the raw maximum is a noise peak, crossings of the final level multiply, and a trace still
+approaching its final value has no flat state for a histogram to find. So these estimates read a shape
+from many samples instead of reading single samples:
+
+- ``smooth``: a running mean, only to *locate* features (never to measure them);
+- ``fit_approach``: y = S + D·e^(−t/τ), the level S a monotone (first-order) approach is heading for;
+- ``fit_damped_sinusoid``: y = S + e^(−σt)(a cos ωt + b sin ωt), the ringing of a second-order
+  response (the textbook form of every node of an underdamped series RLC after the edge);
+- ``lobe_peak``: the maximum of that same shape, fitted with the final level held to the top of the one
+  lobe that holds the peak, so an 8-bit flat top gives its middle and noise averages out over the whole
+  top of the lobe (``plateau_middle`` is the fallback when it finds no maximum).
+
+Every fit separates the linear coefficients (S, D or S, a, b: solved by linear least squares for given
+time constants, "variable projection", common practice) from the one or two nonlinear ones, which keeps
+them fast and gives them no starting values for the levels to get wrong, and runs on block means of the
+samples (``block_means``), under which both shapes keep their form.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import least_squares, minimize_scalar
+
+MIN_FIT_SAMPLES = 8
+APPROACH_TAU_RANGE = (0.02, 50.0)  # τ searched between these multiples of the first guess
+FREQUENCY_DRIFT_MAX = 0.3  # a damped fit whose ω moved more than 30 % from its seed did not find the ring
+FIT_POINTS = 600  # the damped fit runs on at most about this many block means ...
+BLOCKS_PER_PERIOD = 24  # ... each at most 1/24 of a period long
+
+
+def smooth(y: np.ndarray, width: int) -> np.ndarray:
+    """Running mean over ``width`` samples, same length as ``y`` (the ends average fewer samples)."""
+    if width <= 1:
+        return y.astype(float, copy=True)
+    sums = np.concatenate(([0.0], np.cumsum(y, dtype=float)))
+    half = width // 2
+    lo = np.clip(np.arange(len(y)) - half, 0, len(y))
+    hi = np.clip(np.arange(len(y)) + width - half, 0, len(y))
+    return (sums[hi] - sums[lo]) / (hi - lo)
+
+
+def _linear_fit(basis: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(coefficients, residuals) of y against the few, well-scaled columns of ``basis``, by the normal
+    equations (an SVD costs more than the rest of a fit's step)."""
+    gram = basis.T @ basis
+    try:
+        coef = np.linalg.solve(gram, basis.T @ y)
+    except np.linalg.LinAlgError:
+        coef = np.linalg.lstsq(basis, y, rcond=None)[0]
+    return coef, y - basis @ coef
+
+
+def block_means(t: np.ndarray, y: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Means of consecutive blocks of ``size`` samples (a ragged end dropped), at each block's mean time.
+
+    The mean over a block of e^((−σ+iω)t) is a fixed complex multiple of its value at the block's middle,
+    so block means of a damped sinusoid (or of an exponential) are the same function with other linear
+    coefficients: a fit loses next to nothing by running on them, and runs ``size`` times faster.
+    """
+    if size <= 1:
+        return t, y
+    n = len(y) // size * size
+    return t[:n].reshape(-1, size).mean(axis=1), y[:n].reshape(-1, size).mean(axis=1)
+
+
+def fit_approach(t: np.ndarray, y: np.ndarray, tau_guess_s: float) -> tuple[float, float] | None:
+    """(S, τ) of y ≈ S + D·e^(−(t − t[0])/τ) by least squares; None when the samples are too few.
+
+    τ is searched on a log scale over ``APPROACH_TAU_RANGE`` × the guess; for each τ the level and the
+    remaining distance D are the linear least-squares solution. It runs on at most ``FIT_POINTS`` block
+    means, which an exponential keeps its form under, as a damped sinusoid does (``block_means``).
+    """
+    t, y = block_means(t, y, len(t) // FIT_POINTS)
+    if len(t) < MIN_FIT_SAMPLES or not tau_guess_s > 0:
+        return None
+    x = t - t[0]
+
+    def basis(log_tau: float) -> np.ndarray:
+        return np.column_stack((np.ones_like(x), np.exp(-x / math.exp(log_tau))))
+
+    lo, hi = (math.log(tau_guess_s * k) for k in APPROACH_TAU_RANGE)
+    best = minimize_scalar(lambda u: float(np.sum(_linear_fit(basis(u), y)[1] ** 2)), bounds=(lo, hi),
+                           method="bounded").x
+    return float(_linear_fit(basis(best), y)[0][0]), math.exp(best)
+
+
+@dataclass(frozen=True)
+class DampedFit:
+    """y ≈ level + e^(−σ(t − t0))(a cos ω(t − t0) + b sin ω(t − t0)), fitted by least squares."""
+
+    level: float
+    sigma_per_s: float
+    omega_rad_s: float
+
+    @property
+    def frequency_hz(self) -> float:
+        return self.omega_rad_s / (2 * math.pi)
+
+
+def _damped_basis(x: np.ndarray, sigma: float, omega: float) -> np.ndarray:
+    envelope = np.exp(-sigma * x)
+    return np.column_stack((np.ones_like(x), envelope * np.cos(omega * x), envelope * np.sin(omega * x)))
+
+
+def fit_damped_sinusoid(t: np.ndarray, y: np.ndarray, omega_guess: float, sigma_guess: float) -> DampedFit | None:
+    """The damped sinusoid through the samples, from seeds; None when it does not converge near them
+    (ω more than 30 % from the seed, or a growing envelope).
+
+    Run on block means (``block_means``) of at most 1/``BLOCKS_PER_PERIOD`` of a period, at most
+    ``FIT_POINTS`` of them; σ and ω are fitted as multiples of the seed ω, so both are of order one.
+    """
+    if not omega_guess > 0:
+        return None
+    period_samples = 2 * math.pi / omega_guess / float(t[1] - t[0])
+    size = max(1, min(len(t) // FIT_POINTS, int(period_samples / BLOCKS_PER_PERIOD)))
+    tb, yb = block_means(t, y, size)
+    if len(tb) < MIN_FIT_SAMPLES:
+        return None
+    x = (tb - tb[0]) * omega_guess  # time in radians of the seed
+
+    def residuals(p: np.ndarray) -> np.ndarray:
+        return _linear_fit(_damped_basis(x, p[0], p[1]), yb)[1]
+
+    sol = least_squares(residuals, np.array([sigma_guess / omega_guess, 1.0]), method="lm")
+    s, w = sol.x
+    if not sol.success or s < 0 or abs(w - 1) > FREQUENCY_DRIFT_MAX:
+        return None
+    coef, _ = _linear_fit(_damped_basis(x, s, w), yb)
+    return DampedFit(float(coef[0]), float(s * omega_guess), float(w * omega_guess))
+
+
+def lobe_peak(t: np.ndarray, y: np.ndarray, level: float) -> tuple[float, float] | None:
+    """(time, value) of the maximum of y ≈ level + e^(−σt)(a cos ωt + b sin ωt) fitted by least squares
+    to the samples of one lobe above ``level`` (held fixed: it is the final state level); None when the
+    fit finds no maximum inside the lobe.
+
+    The shape of a decaying oscillation's lobe, rather than a polynomial: a step response's overshoot is
+    lopsided (it rises faster than it falls), which a parabola's vertex misplaces by up to 5 % of the
+    peak time over a window wide enough to average 1 % noise; this shape is right for the whole top of
+    the lobe, so every sample there counts. It runs on at most ``FIT_POINTS`` block means.
+    """
+    t, y = block_means(t, y, len(t) // FIT_POINTS)
+    if len(t) < MIN_FIT_SAMPLES:
+        return None
+    t0, omega = float(t[np.argmax(y)]), math.pi / float(t[-1] - t[0])  # a lobe is about half a period
+    x, z = (t - t0) * omega, y - level
+
+    def basis(p: np.ndarray) -> np.ndarray:
+        envelope = np.exp(-p[0] * x)
+        return np.column_stack((envelope * np.cos(p[1] * x), envelope * np.sin(p[1] * x)))
+
+    sol = least_squares(lambda p: _linear_fit(basis(p), z)[1], np.array([0.1, 1.0]), method="lm")
+    s, w = sol.x
+    if not sol.success or not w > 0:
+        return None
+    c, _ = _linear_fit(basis(sol.x), z)
+    # r·e^(−s x)·cos(w x − φ) has its maxima where tan(w x − φ) = −s / w; take the one nearest x = 0
+    phi = math.atan2(c[1], c[0])
+    x_peak = (phi - math.atan2(s, w)) / w
+    x_peak -= round(x_peak * w / (2 * math.pi)) * 2 * math.pi / w
+    if not x[0] <= x_peak <= x[-1]:
+        return None
+    value = level + math.hypot(c[0], c[1]) * math.exp(-s * x_peak) * math.cos(w * x_peak - phi)
+    return t0 + x_peak / omega, float(value)
+
+
+def plateau_middle(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
+    """(middle instant, value) of the longest run of samples at the maximum: an 8-bit flat top's middle,
+    never its first sample (the fallback when no lobe shape fits)."""
+    top = y == y.max()
+    edges = np.flatnonzero(np.diff(np.r_[0, top.astype(np.int8), 0]))
+    starts, ends = edges[::2], edges[1::2]
+    longest = int(np.argmax(ends - starts))
+    return float(0.5 * (t[starts[longest]] + t[ends[longest] - 1])), float(y.max())
+
+
+def run_around(inside: np.ndarray, k: int) -> tuple[int, int]:
+    """[a, b): the run of True values of ``inside`` that holds index k."""
+    before, after = np.flatnonzero(~inside[:k]), np.flatnonzero(~inside[k:])
+    return (int(before[-1]) + 1 if len(before) else 0), (k + int(after[0]) if len(after) else len(inside))

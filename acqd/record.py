@@ -8,6 +8,7 @@ Units are SI throughout; every channel carries its unit.
 from __future__ import annotations
 
 import hashlib
+import re
 import zlib
 from dataclasses import dataclass, field
 from typing import Any
@@ -18,6 +19,14 @@ from . import __version__
 
 EDGES = ("rising", "falling")
 LOADS = ("high_z", "matched")  # generator load setting: high impedance or a 50 ohm ("matched") load
+
+# Column headers of a record as a table (CSV): the name, then the unit in brackets, as on a plot's axis.
+# Written by the store's export and read by the comparator's CSV input, so the two cannot drift apart.
+TIME_COLUMN = "t [s]"
+_COLUMN_HEADER = re.compile(r"^\s*(.*?)\s*(?:\[\s*([^\]]*?)\s*\])?\s*$")
+
+# settings key that says where t = 0 of a record came from, for records not triggered by acqd (a CSV).
+TIMING_SETTING = "timing"
 
 
 @dataclass(frozen=True)
@@ -115,6 +124,17 @@ class Record:
         for ch in self.channels:
             crc = zlib.crc32(np.ascontiguousarray(ch.samples, dtype="<f8").tobytes(), crc)
         return crc
+
+
+def column_header(name: str, unit: str) -> str:
+    """``v_c [V]``; a channel without a unit (a ratio) is its bare name."""
+    return f"{name} [{unit}]" if unit else name
+
+
+def split_column_header(cell: str) -> tuple[str, str | None]:
+    """``"v_c [V]"`` → ``("v_c", "V")``; ``"v_c"`` → ``("v_c", None)`` (the header gave no unit)."""
+    name, unit = _COLUMN_HEADER.match(cell).groups()  # the pattern matches any text
+    return name, unit
 
 
 def profile_hash(text: str) -> str:

@@ -186,7 +186,7 @@ def test_csv_export_is_plain_csv_with_full_precision(tmp_path: Path) -> None:
         meta_path = export_csv(reader, 0, out)
     with open(out, newline="") as fh:  # Python's csv module as the plain-CSV parser (RFC 4180 dialect)
         rows = list(csv.reader(fh))
-    assert rows[0] == ["t_s", "v_c_V", "i_l_A", "v_r_V"]
+    assert rows[0] == ["t [s]", "v_c [V]", "i_l [A]", "v_r [V]"]
     assert len(rows) == 201
     data = np.loadtxt(out, delimiter=",", skiprows=1)  # numpy's own parser, no comment handling needed
     np.testing.assert_array_equal(data[:, 0], record.timebase.times())

@@ -15,7 +15,7 @@ import copy
 from typing import Any
 
 from ..compare import CompareResult, CompareSpec, compare_spec, parse_dut_table
-from ..compare.csvinput import read_csv_record
+from ..compare.csvinput import metadata_path, read_csv_record, read_exported_record
 from ..compare.spec import WEIGHTINGS
 from ..errors import ConfigError
 from ..models import BUILDERS
@@ -126,11 +126,17 @@ def _csv_stimulus(args: argparse.Namespace) -> Stimulus:
 
 
 def _record(args: argparse.Namespace) -> Record:
+    stimulus_given = [f"--{o.replace('_', '-')}" for o in STIMULUS_OPTIONS if getattr(args, o) is not None]
     if args.input.lower().endswith(".csv"):
         if args.record is not None:
             raise ConfigError(CLI, "--record", "only for a record store; a CSV holds one record")
+        if metadata_path(args.input).exists():  # acqd's own export: the stimulus is in the JSON beside it
+            if stimulus_given:
+                raise ConfigError(CLI, stimulus_given[0], f"{metadata_path(args.input)} gives the stimulus; "
+                                                          "leave the stimulus options out (or move the JSON away)")
+            return read_exported_record(args.input, args.time_column)
         return read_csv_record(args.input, _csv_stimulus(args), args.time_column)
-    given = [f"--{o.replace('_', '-')}" for o in (*STIMULUS_OPTIONS, "time_column") if getattr(args, o) is not None]
+    given = [*stimulus_given, *(["--time-column"] if args.time_column is not None else [])]
     if given:
         raise ConfigError(CLI, given[0], "only for a CSV input; a stored record carries its own stimulus")
     return _stored_record(args.input, args.record)
@@ -181,7 +187,9 @@ def _base_table(args: argparse.Namespace, record: Record) -> _Table:
         profile = load_profile(args.profile)
         table = _Table(profile.dut, profile.source, profile.text, "dut")
     elif "model" in (record.dut or {}):
-        table = _Table(record.dut, f"{args.input} record {record.index}", "", "dut")
+        source = (str(metadata_path(args.input)) if args.input.lower().endswith(".csv")
+                  else f"{args.input} record {record.index}")
+        table = _Table(record.dut, source, "", "dut")
     else:
         table = _Table({}, CLI, "", "")
     if args.model and table.data.get("model") not in (None, args.model):

@@ -19,7 +19,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from ..models import PARAMETERS, StateSpace
-from ..record import Record
+from ..record import TIMING_SETTING, Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
 from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
@@ -307,10 +307,10 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
                     {c.channel: c.unit for c in channels}, model.states, model.state_units, x,
                     _measured_states(setup, model, u))
     marked = [m.channel for m in setup.mapping if m.stimulus]
+    timing = (f"placed by channel {marked[0]} ({edge.t50_s - setup.edge.t50_s:+.3g} s from the trigger)" if marked
+              else record.settings.get(TIMING_SETTING, "from the record's metadata (t50 at the trigger)"))
     stimulus = {"before_v": edge.before_v, "after_v": edge.after_v, "t50_s": edge.t50_s,
-                "duration_s": edge.duration_s,
-                "timing": (f"placed by channel {marked[0]} ({edge.t50_s - setup.edge.t50_s:+.3g} s from the trigger)"
-                           if marked else "from the record's metadata (t50 at the trigger)")}
+                "duration_s": edge.duration_s, "timing": timing}
     record_info = {"index": record.index, "utc": record.utc, "channels": record.channel_names,
                    "dut": dict(spec.identity), "profile_sha256": record.profile_sha256}
     return CompareResult(record_info, spec.model, dict(setup.nominal), parameters, stimulus, channels, fit,

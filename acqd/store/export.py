@@ -4,9 +4,10 @@ Why no ``#`` comment lines at the top: the CSV format (RFC 4180) has no comments
 programs and ``csv``/``numpy.loadtxt`` without extra options read them as data. So ``OUT.csv`` holds only
 a header row and numbers, and ``OUT.csv.json`` holds what ``acqd show --json`` prints for the record.
 
-Columns: ``t_s`` (seconds from the trigger), then one per channel named ``<name>_<unit>``, matching the
-project's habit of putting the unit after the name. Numbers are written with ``repr``, the shortest text
-that reads back as exactly the same float64, so nothing is lost.
+Columns: ``t [s]`` (seconds from the trigger), then one per channel headed ``<name> [<unit>]``, the way an
+axis is labelled and the way ``acqd compare`` reads a CSV back (``acqd.record.column_header``). Numbers are
+written with ``repr``, the shortest text that reads back as exactly the same float64, so nothing is lost:
+``acqd compare OUT.csv`` on the export gives the stored record's result.
 """
 
 from __future__ import annotations
@@ -16,11 +17,8 @@ import json
 from pathlib import Path
 
 from ..errors import ConfigError
+from ..record import TIME_COLUMN, column_header
 from .reader import RecordReader
-
-
-def column_name(name: str, unit: str) -> str:
-    return f"{name}_{unit}" if unit else name
 
 
 def export_csv(reader: RecordReader, index: int, out_path: str | Path) -> Path:
@@ -32,7 +30,7 @@ def export_csv(reader: RecordReader, index: int, out_path: str | Path) -> Path:
     try:
         with open(out, "w", newline="", encoding="utf-8") as fh:
             writer = csv.writer(fh)
-            writer.writerow(["t_s", *[column_name(ch.name, ch.unit) for ch in record.channels]])
+            writer.writerow([TIME_COLUMN, *[column_header(ch.name, ch.unit) for ch in record.channels]])
             writer.writerows([repr(value) for value in row] for row in zip(*columns, strict=True))
         with open(meta_path, "w", encoding="utf-8") as fh:
             json.dump(reader.metadata(index), fh, indent=2, ensure_ascii=False)

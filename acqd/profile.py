@@ -20,6 +20,8 @@ from .visa import DEFAULT_BACKEND, NAMED_BACKENDS
 
 SHAPES = ("square", "pulse")
 BENCH_KINDS = ("simulated", "visa")
+NETLIST_FILE = "netlist_file"  # a model table's key: the netlist in a file beside the profile
+NETLIST_MAX_BYTES = 1_000_000  # a netlist is a page of text; anything larger is not one
 COUPLINGS = ("dc", "ac")
 
 
@@ -145,11 +147,11 @@ def load_profile(path: str | Path) -> Profile:
     name = top.table("profile", {}).string("name", path.stem)
     _done_profile_table(top)
     limits = _limits(top.table("limits"))
-    bench = _bench(top.table("bench"))
+    bench = _bench(top.table("bench"), path.parent)
     stimulus = _stimulus(top.table("stimulus"), limits)
     acquisition = _acquisition(top.table("acquisition"))
     math = _math(top.table("math", {}), acquisition)
-    dut = _dut(top.table("dut", {}))
+    dut = _dut(top.table("dut", {}), path.parent)
     output = _output(top.table("output", {}), path)
     campaign = dict(top.raw("campaign", {}))
     top.done()
@@ -183,7 +185,7 @@ def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
     return plan
 
 
-def _bench(t: Table) -> BenchPlan:
+def _bench(t: Table, profile_dir: Path) -> BenchPlan:
     kind = t.string("kind", choices=BENCH_KINDS)
     generator = _instrument(t.table("generator"), "generator", kind)
     scope = _instrument(t.table("scope"), "scope", kind)
@@ -193,9 +195,33 @@ def _bench(t: Table) -> BenchPlan:
     if kind == "visa" and simulated is not None:
         raise t.error("simulated", "only allowed when kind = 'simulated'")
     if simulated is not None:
-        t.table("simulated")  # type check only; the simulated bench validates its own keys
+        table = t.table("simulated")  # type check only; the simulated bench validates its own keys
+        if isinstance(simulated.get("dut"), dict):
+            simulated = {**simulated, "dut": _inline_netlist_file(table.table("dut"), profile_dir)}
     t.done()
     return BenchPlan(kind, generator, scope, simulated)
+
+
+def _inline_netlist_file(t: Table, profile_dir: Path) -> dict[str, Any]:
+    """A model table with ``netlist_file = "ladder.cir"`` (relative to the profile) gets the file's text
+    as its ``netlist``, so a record stores the circuit itself, not a path whose file may change later."""
+    data = dict(t.data)
+    if NETLIST_FILE not in data:
+        return data
+    if "netlist" in data:
+        raise t.error(NETLIST_FILE, "give the netlist inline (netlist) or as a file (netlist_file), not both")
+    path = profile_dir / t.string(NETLIST_FILE)
+    try:
+        size = path.stat().st_size
+        if size > NETLIST_MAX_BYTES:
+            raise t.error(NETLIST_FILE, f"{path} is {size} bytes; a netlist file has at most {NETLIST_MAX_BYTES}")
+        data["netlist"] = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise t.error(NETLIST_FILE, f"cannot read {path}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise t.error(NETLIST_FILE, f"{path} is not UTF-8 text") from None
+    del data[NETLIST_FILE]
+    return data
 
 
 def _stimulus(t: Table, limits: Limits) -> StimulusPlan:
@@ -278,14 +304,15 @@ def _math(t: Table, acquisition: AcquisitionPlan) -> tuple[MathChannel, ...]:
     return tuple(channels)
 
 
-def _dut(t: Table) -> dict[str, Any]:
-    """The [dut] table as it is; with a ``model`` the comparator validates it (acqd.judge), without one
-    only the device's identity may be given, so a misspelt ``model`` is not silently a DUT without one."""
+def _dut(t: Table, profile_dir: Path) -> dict[str, Any]:
+    """The [dut] table as it is (a netlist file read in); with a ``model`` the comparator validates it
+    (acqd.judge), without one only the device's identity may be given, so a misspelt ``model`` is not
+    silently a DUT without one."""
     if not t.has("model"):
         t.string("name", None)
         t.string("serial", None)
         t.done()
-    return dict(t.data)
+    return _inline_netlist_file(t, profile_dir)
 
 
 def _output(t: Table, profile_path: Path) -> OutputPlan:

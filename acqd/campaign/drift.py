@@ -28,7 +28,6 @@ from scipy import stats
 
 from ..compare import parse_dut_table
 from ..errors import AcqdError, ConfigError
-from ..models import PARAMETERS
 from ..store import open_records
 from .ledger import verdict_text
 
@@ -197,12 +196,12 @@ def _add_parameters(series: dict[str, Series], analysis: dict[str, Any], index: 
     fit = analysis.get("fit")
     if not isinstance(fit, dict):
         return
-    units = PARAMETERS.get(analysis.get("model", ""), {})
+    units = fit.get("units") if isinstance(fit.get("units"), dict) else {}  # stored with the fit, any model
     for name in fit.get("fitted") or []:
         value = (fit.get("values") or {}).get(name)
         if not _number(value):
             continue
-        s = series.setdefault(name, Series(name, "parameter", units[name].unit if name in units else ""))
+        s = series.setdefault(name, Series(name, "parameter", str(units.get(name, ""))))
         s.nominal = (fit.get("nominal") or {}).get(name, s.nominal)
         s.add(index, utc, hours, float(value), (fit.get("ci95") or {}).get(name))
 

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..models import PARAMETERS, StateSpace
+from ..models import StateSpace
 from ..record import TIMING_SETTING, Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
@@ -157,9 +157,12 @@ def _default_mapping(spec: CompareSpec, record: Record, model: StateSpace) -> tu
 
 def _setup(record: Record, spec: CompareSpec, label: str) -> _Setup:
     nominal = dict(spec.nominal)
-    if "source_resistance_ohm" in PARAMETERS.get(spec.model, {}) and "source_resistance_ohm" not in nominal:
+    if "source_resistance_ohm" in spec.parameters and "source_resistance_ohm" not in nominal:
         nominal["source_resistance_ohm"] = record.stimulus.source_resistance_ohm
     model = spec.build(nominal)
+    # Parameters the table left to the model (a netlist's own element values, a builder's default) start
+    # a fit and are reported as nominal like the rest.
+    nominal = {**{k: v for k, v in model.parameters.items() if k in spec.parameters}, **nominal}
     mapping = spec.channels if spec.channels is not None else _default_mapping(spec, record, model)
     measured, units = [], []
     for m in mapping:
@@ -200,7 +203,7 @@ def _fit(setup: _Setup, edge: Edge) -> FitResult:
     spec = setup.spec
     _, nominal_prediction, _ = setup.predict(setup.model(), edge)
     weights = _weights(setup, nominal_prediction, spec.fit.weighting)[:, None]
-    infos = PARAMETERS[spec.model]
+    infos = spec.parameters
     free = {n: Free(setup.nominal[n], infos[n].sign != "any", abs(setup.nominal[n]) or 1.0, infos[n].unit)
             for n in spec.fit.free}
     dt = setup.times[1] - setup.times[0]

@@ -42,7 +42,7 @@ from typing import Any
 
 
 from ..config import Table
-from ..models import BUILDERS, PARAMETERS, Signal, StateSpace, build_model, model_parameters
+from ..models import BUILDERS, ParameterInfo, Signal, StateSpace, build_model, model_parameters, parameter_infos
 
 IDENTITY_KEYS = ("name", "serial")
 WEIGHTINGS = ("noise", "amplitude")
@@ -107,6 +107,7 @@ class CompareSpec:
     tolerances: Tolerances
     source: str
     identity: dict[str, str] = field(default_factory=dict)
+    parameters: dict[str, ParameterInfo] = field(default_factory=dict)  # scalars a fit or tolerance may name
 
     def build(self, parameters: Mapping[str, Any] | None = None) -> StateSpace:
         """The model at ``parameters`` (the nominal values where not given). Every comparison builds it
@@ -131,14 +132,15 @@ def parse_dut_table(data: Mapping[str, Any], source: str, text: str = "", path: 
     t = Table(data, source, path, text)
     identity = {k: v for k in IDENTITY_KEYS if (v := t.string(k, None)) is not None}
     model = t.string("model", choices=sorted(BUILDERS))
-    nominal = _nominal(t, model)
     model_source, _ = t.where("model")
+    scalars = parameter_infos({key: t.raw(key, None) for key in ("model", "netlist", "source")}, model_source)
+    nominal = _nominal(t, model, scalars)
     built = build_model({"model": model, **nominal}, model_source)
-    fit = _fit(t.table("fit", {}), model, nominal)
+    fit = _fit(t.table("fit", {}), model, nominal, scalars)
     channels = _channels(t, built) if t.raw("channels", None) is not None else None
-    tolerances = _tolerances(t.table("tolerances", {}), model, channels)
+    tolerances = _tolerances(t.table("tolerances", {}), model, channels, scalars)
     t.done()
-    return CompareSpec(model, nominal, channels, fit, tolerances, source, identity)
+    return CompareSpec(model, nominal, channels, fit, tolerances, source, identity, dict(scalars))
 
 
 def spec_from_parts(model_spec: Mapping[str, Any], channels: Mapping[str, Any] | None = None,
@@ -152,10 +154,10 @@ def spec_from_parts(model_spec: Mapping[str, Any], channels: Mapping[str, Any] |
     return parse_dut_table(table, source, path="")
 
 
-def _nominal(t: Table, model: str) -> dict[str, Any]:
-    scalars = PARAMETERS.get(model, {})
+def _nominal(t: Table, model: str, scalars: Mapping[str, ParameterInfo]) -> dict[str, Any]:
+    """The table's model parameters: the builder's keywords and, for a netlist, element values by name."""
     nominal = {}
-    for key in model_parameters(model):
+    for key in dict.fromkeys([*model_parameters(model), *scalars]):
         value = t.raw(key, None)
         if value is None:
             continue
@@ -177,11 +179,10 @@ def _names(t: Table, key: str, allowed: list[str], what: str) -> tuple[str, ...]
     return tuple(items)
 
 
-def _fit(t: Table, model: str, nominal: Mapping[str, Any]) -> FitSpec:
-    scalars = list(PARAMETERS.get(model, {}))
-    free = _names(t, "free", scalars, f"scalar parameters of {model}")
+def _fit(t: Table, model: str, nominal: Mapping[str, Any], scalars: Mapping[str, ParameterInfo]) -> FitSpec:
+    free = _names(t, "free", list(scalars), f"scalar parameters of {model}")
     for name in free:
-        if PARAMETERS[model][name].sign != "any" and nominal.get(name, 1.0) == 0:
+        if scalars[name].sign != "any" and nominal.get(name, 1.0) == 0:
             raise t.error("free", f"{name} cannot be fitted from a nominal value of 0 (it is fitted on a "
                                   "log scale); give a small positive nominal value")
     spec = FitSpec(free, _names(t, "hold", list(free), "free parameters"),
@@ -239,12 +240,12 @@ def _band(t: Table, key: str) -> tuple[float, float] | None:
     return float(value[0]), float(value[1])
 
 
-def _tolerances(t: Table, model: str, channels: tuple[ChannelMap, ...] | None) -> Tolerances:
+def _tolerances(t: Table, model: str, channels: tuple[ChannelMap, ...] | None,
+                scalars: Mapping[str, ParameterInfo]) -> Tolerances:
     nrmse = t.number("nrmse_max", None, positive=True, unit="fraction of the simulated peak-to-peak")
     pct = t.raw("parameter_pct", None)
     if isinstance(pct, Mapping):
         pct_table = t.table("parameter_pct")
-        scalars = list(PARAMETERS.get(model, {}))
         for key in pct_table.data:
             if key not in scalars:
                 raise pct_table.error(key, f"not a scalar parameter of {model}; allowed: {', '.join(scalars)}")

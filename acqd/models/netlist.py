@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import math
 import re
+from decimal import Decimal
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, replace
 
@@ -40,8 +41,8 @@ from .statespace import StateSpace
 
 GROUND = "0"
 TERMINAL = "v_src"
-SCALES = {"f": 1e-15, "p": 1e-12, "n": 1e-9, "u": 1e-6, "µ": 1e-6, "m": 1e-3, "k": 1e3, "meg": 1e6,
-          "g": 1e9, "t": 1e12}
+# Scale suffixes as powers of ten, so "47n" reads as the float nearest 47e-9 (47 × 1e-9 is one ulp off).
+SCALES = {"f": -15, "p": -12, "n": -9, "u": -6, "µ": -6, "m": -3, "k": 3, "meg": 6, "g": 9, "t": 12}
 _VALUE = re.compile(r"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)(meg|[fpnuµmkgt])?[a-zA-Zµ]*$", re.IGNORECASE)
 _NODE = re.compile(r"^[A-Za-z0-9_.]+$")
 KINDS = {"R": 4, "L": 4, "C": 4, "V": None, "I": None, "K": 4, "E": 6, "G": 6}  # fields per line
@@ -71,8 +72,8 @@ def parse_value(text: str) -> float:
     match = _VALUE.match(text.strip())
     if not match:
         raise ValueError(f"{text!r} is not a number with an optional scale suffix ({', '.join(SCALES)})")
-    scale = SCALES[match.group(2).lower()] if match.group(2) else 1.0
-    value = float(match.group(1)) * scale
+    exponent = SCALES[match.group(2).lower()] if match.group(2) else 0
+    value = float(Decimal(match.group(1)).scaleb(exponent))  # rounded once, from the exact decimal
     if not math.isfinite(value):
         raise ValueError(f"{text!r} is not a finite number")
     return value

@@ -17,7 +17,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
-from .netlist import netlist_model
+from .netlist import Netlist, NetlistError, netlist_model
 from .statespace import StateSpace
 
 ModelBuilder = Callable[..., StateSpace]
@@ -62,6 +62,29 @@ PARAMETERS: dict[str, dict[str, ParameterInfo]] = {
     "second_order": {"wn_rad_s": ParameterInfo("rad/s"), "zeta": ParameterInfo("1", "non_negative"),
                      "gain": ParameterInfo("V/V", "any")},
 }
+
+
+def parameter_infos(spec: Mapping[str, Any], source: str) -> dict[str, ParameterInfo]:
+    """The scalar parameters a model table offers to fits, tolerances and drift: a built-in circuit's fixed
+    set, or a netlist's element values by element name (``R1``, ``L2``) and the generator's resistance.
+
+    A netlist's set depends on its text, which is why this takes the table and not the model's name.
+    """
+    if spec.get("model") != "netlist":
+        return PARAMETERS.get(spec.get("model"), {})
+    text, generator = spec.get("netlist"), spec.get("source")
+    if not isinstance(text, str) or not isinstance(generator, str):
+        key = "netlist" if not isinstance(text, str) else "source"
+        raise ConfigError(source, key, "missing or not a string; a netlist model needs the netlist text and "
+                                       "the name of its generator source")
+    try:
+        netlist = Netlist.parse(text, generator)
+    except NetlistError as exc:
+        raise ConfigError(source, "netlist", str(exc)) from None
+    positive = netlist.positive()
+    elements = {name: ParameterInfo(unit, "positive" if name in positive else "any")
+                for name, unit in netlist.units().items()}
+    return {**elements, "source_resistance_ohm": _RS}
 
 
 def _matrix_model(A: Any, B: Any, C: Any, D: Any, states: Any, outputs: Any,

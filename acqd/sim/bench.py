@@ -25,7 +25,8 @@ drift         table  a slow change of one DUT parameter (below); absent: the DUT
 ``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
 known drift in minutes:
 
-parameter     str    a scalar parameter of the DUT model (``c_f`` of ``series_rlc``: see acqd.models.PARAMETERS)
+parameter     str    a scalar parameter of the DUT model: ``c_f`` of ``series_rlc``, an element (``C2``) of a
+                     netlist (see acqd.models.parameter_infos)
 per_hour      number relative change per simulated hour (0.02 = +2 %/h of the nominal value), linear in time
 time_scale    > 0    simulated seconds per real second (default 1; 3600 makes each real second an hour)
 since         time   the moment the drift starts (TOML date-time or ISO 8601 text); default: when the
@@ -60,7 +61,7 @@ import numpy as np
 
 from ..config import Table
 from ..errors import ConfigError
-from ..models import BUILDERS, PARAMETERS, Signal, StateSpace, build_model
+from ..models import BUILDERS, Signal, StateSpace, build_model, parameter_infos
 from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant
@@ -127,7 +128,7 @@ class SimBenchConfig:
         object.__setattr__(self, "model", build_model(self.dut, self.dut_source))
         _check_wiring(self.wiring, self.model, self.source)
         if self.drift is not None:
-            object.__setattr__(self, "drift_nominal", _drift_nominal(self.drift, self.dut, self.source))
+            object.__setattr__(self, "drift_nominal", _drift_nominal(self.drift, self.dut, self.model, self.source))
 
     @property
     def dut_source(self) -> str:
@@ -163,19 +164,18 @@ class SimBenchConfig:
         return {int(name[2:]): Signal.parse(text) for name, text in self.wiring.items()}
 
 
-def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], source: str) -> float:
-    """The drifting parameter's value at t = 0: the ``dut`` table's, else the model's default."""
+def _drift_nominal(drift: DriftConfig, dut: Mapping[str, Any], model_built: StateSpace, source: str) -> float:
+    """The drifting parameter's value at t = 0: the value the built model was given (the table's, the
+    netlist's own, or the builder's default)."""
     model = dut.get("model")
-    allowed = list(PARAMETERS.get(model, {}))
+    allowed = list(parameter_infos(dut, source))
     if not allowed:
         raise ConfigError(source, f"{DRIFT_TABLE}.parameter", f"model {model} has no scalar parameter that can "
                                                               "drift; use a circuit model such as series_rlc")
     if drift.parameter not in allowed:
         raise ConfigError(source, f"{DRIFT_TABLE}.parameter", f"{drift.parameter!r} is not a parameter of model "
                                                               f"{model}; allowed: {', '.join(allowed)}")
-    if drift.parameter in dut:
-        return float(dut[drift.parameter])
-    return float(inspect.signature(BUILDERS[model]).parameters[drift.parameter].default)
+    return float(model_built.parameters[drift.parameter])
 
 
 def _command_log(table: Table) -> str | None:

@@ -63,7 +63,7 @@ class ChannelPlan:
 
     input: str
     name: str
-    range_v: float
+    range_v: float | None  # None only with [acquisition] auto = true, until acqd.plan proposes it
     offset_v: float
     coupling: str
 
@@ -92,13 +92,16 @@ class MathChannel:
 
 @dataclass(frozen=True)
 class AcquisitionPlan:
-    window_s: float
+    """The scope's set-up. With ``auto`` the time base and ranges may be None until acqd.plan fills them."""
+
+    window_s: float | None
     pretrigger_fraction: float
-    samples: int
+    samples: int | None
     averages: int
     channels: tuple[ChannelPlan, ...]
     trigger_level_v: float | None
     timeout_s: float | None
+    auto: bool = False
 
 
 @dataclass(frozen=True)
@@ -250,14 +253,18 @@ def _stimulus(t: Table, limits: Limits) -> StimulusPlan:
 
 
 def _acquisition(t: Table) -> AcquisitionPlan:
-    window = t.number("window_s", positive=True, unit="s")
+    """With ``auto = true`` the time base, ranges and trigger level may be left out: acqd.plan proposes
+    them from the DUT's model (values given anyway are checked against the proposal, and replaced)."""
+    auto = t.boolean("auto", False)
+    optional = None if auto else ...
+    window = t.number("window_s", optional, positive=True, unit="s")
     fraction = t.number("pretrigger_fraction", 0.2, min=0.0, max=0.9)
-    samples = t.integer("samples", min=16, max=10_000_000)
+    samples = t.integer("samples", optional, min=16, max=10_000_000)
     averages = t.integer("averages", 1, min=1, max=10_000)
     channels_table = t.table("channels")
     channels = []
     for key in list(channels_table.data):
-        channels.append(_channel(channels_table.table(key), key))
+        channels.append(_channel(channels_table.table(key), key, auto))
     channels_table.done()
     if not channels:
         raise t.error("channels", "at least one channel is needed, e.g. [acquisition.channels.CH1]")
@@ -266,14 +273,15 @@ def _acquisition(t: Table) -> AcquisitionPlan:
         raise t.error("channels", f"channel names must be unique, got {names}")
     plan = AcquisitionPlan(window, fraction, samples, averages, tuple(channels),
                            t.number("trigger_level_v", None, unit="V"),
-                           t.number("timeout_s", None, positive=True, unit="s"))
+                           t.number("timeout_s", None, positive=True, unit="s"), auto)
     t.done()
     return plan
 
 
-def _channel(t: Table, scope_input: str) -> ChannelPlan:
+def _channel(t: Table, scope_input: str, auto: bool) -> ChannelPlan:
     plan = ChannelPlan(scope_input, t.string("name", scope_input),
-                       t.number("range_v", positive=True, unit="V, half the span around offset_v"),
+                       t.number("range_v", None if auto else ..., positive=True,
+                                unit="V, half the span around offset_v"),
                        t.number("offset_v", 0.0, unit="V"), t.string("coupling", "dc", choices=COUPLINGS))
     t.done()
     return plan

@@ -16,7 +16,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from .errors import AcqdError, SafetyError
+from .errors import AcqdError, ConfigError, SafetyError
 from .profile import Profile, StimulusPlan
 from .record import Channel, Record, Stimulus, TimeBase
 
@@ -81,6 +81,9 @@ def output_guard(generator: GeneratorRole) -> Iterator[None]:
 
 def configure_scope(profile: Profile, scope: ScopeRole) -> None:
     acq = profile.acquisition
+    if acq.window_s is None or acq.samples is None or any(ch.range_v is None for ch in acq.channels):
+        raise ConfigError(profile.source, "acquisition.auto", "the acquisition is not set up yet: a profile with "
+                                                              "auto = true is loaded with acqd.plan.ready_profile")
     scope.configure_timebase(acq.window_s, acq.samples, acq.pretrigger_fraction)
     for ch in acq.channels:
         scope.configure_channel(ch.input, ch.range_v, ch.offset_v, ch.coupling)

@@ -67,7 +67,7 @@ def si(value: float, unit: str = "", digits: int = 4, trim: bool = False) -> str
     if value == 0:
         return f"0{space}{symbol}"
     if symbol in UNPREFIXED:
-        return f"{_significant(value, digits)}{space}{symbol}"
+        return f"{_significant(value, digits, trim)}{space}{symbol}"
     exponent = 3 * math.floor(math.log10(abs(value)) / 3)
     exponent = min(max(exponent, min(PREFIXES)), max(PREFIXES))
     mantissa = value / 10.0 ** exponent

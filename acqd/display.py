@@ -78,10 +78,15 @@ def si(value: float, unit: str = "", digits: int = 4, trim: bool = False) -> str
 
 def _significant(value: float, digits: int, trim: bool = False) -> str:
     """``digits`` significant figures, trailing zeros kept unless ``trim`` (a reading's precision shows),
-    no ``-0``."""
-    text = f"{value:#.{digits}g}".rstrip(".")
-    if "e" in text or trim:
+    no ``-0``, and no exponent for a number with more integer digits than figures (``130``, not ``1.3e+02``)."""
+    text = f"{value:#.{digits}g}"
+    if "e" in text and abs(value) >= 1:
+        text = f"{round(value, digits - 1 - math.floor(math.log10(abs(value)))):.0f}"
+    elif "e" in text:
         text = f"{value:.{digits}g}"
+    elif trim and "." in text:
+        text = text.rstrip("0")
+    text = text.rstrip(".")
     return text[1:] if text.startswith("-") and float(text) == 0 else text
 
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 import argparse
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 from rich.console import Console
@@ -61,6 +61,26 @@ def verdict_text(verdict: str | None, upper: bool = False) -> Text:
 
 
 # -- the options of the convention -------------------------------------------------------------------------
+class Parser(argparse.ArgumentParser):
+    """argparse, with two habits changed: a wrong command line is one ``acqd: error:`` line like any other
+    bad input (not usage text and a second line), and no option is taken from its first letters, so an old
+    ``--data`` is refused rather than read as ``--data-dir`` and ``--record`` never as ``--records``."""
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, allow_abbrev=False, **kwargs)
+
+    def error(self, message: str) -> NoReturn:
+        raise ConfigError(self.prog, "", f"{message}; see {self.prog} --help")
+
+    def parse_args(self, args: Any = None, namespace: Any = None) -> argparse.Namespace:  # type: ignore[override]
+        """As argparse's, but an argument no option takes is blamed on the sub-command it was given to."""
+        parsed, extra = self.parse_known_args(args, namespace)
+        if extra:
+            prog = f"{self.prog} {parsed.command}" if getattr(parsed, "command", None) else self.prog
+            raise ConfigError(prog, "", f"unrecognized arguments: {' '.join(extra)}; see {prog} --help")
+        return parsed
+
+
 def add_command(sub: argparse._SubParsersAction, name: str, help: str, description: str) -> argparse.ArgumentParser:
     """A sub-command with its one-line help (``acqd --help``) and its description (``acqd NAME --help``):
     both required, so no sub-command can go without."""

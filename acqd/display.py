@@ -52,11 +52,13 @@ def label(key: str) -> str:
     return key.replace("_", " ")
 
 
-def si(value: float, unit: str = "", digits: int = 4) -> str:
+def si(value: float, unit: str = "", digits: int = 4, trim: bool = False) -> str:
     """``value`` with ``digits`` significant figures and an SI prefix on ``unit``: ``3.248 mH``.
 
     Zero (of either sign) reads ``0``; a value whose rounding is zero never shows a minus sign, so a
-    level that sits at −0.0001 V on a 1 V step reads ``0 V``, not ``-0.000 V``.
+    level that sits at −0.0001 V on a 1 V step reads ``0 V``, not ``-0.000 V``. A reading keeps its
+    trailing zeros (they say how precise it is); ``trim`` drops them for a value as it was *set*
+    (``1 V``, not ``1.000 V``), where they would claim a precision nobody measured.
     """
     symbol = unit_symbol(unit)
     space = " " if symbol else ""
@@ -65,21 +67,55 @@ def si(value: float, unit: str = "", digits: int = 4) -> str:
     if value == 0:
         return f"0{space}{symbol}"
     if symbol in UNPREFIXED:
-        return f"{_significant(value, digits)}{space}{symbol}"
+        return f"{_significant(value, digits, trim)}{space}{symbol}"
     exponent = 3 * math.floor(math.log10(abs(value)) / 3)
     exponent = min(max(exponent, min(PREFIXES)), max(PREFIXES))
     mantissa = value / 10.0 ** exponent
     if abs(float(f"{mantissa:.{digits}g}")) >= 1000 and exponent < max(PREFIXES):
         exponent, mantissa = exponent + 3, mantissa / 1000
-    return f"{_significant(mantissa, digits)} {PREFIXES[exponent]}{symbol}"
+    return f"{_significant(mantissa, digits, trim)} {PREFIXES[exponent]}{symbol}"
 
 
-def _significant(value: float, digits: int) -> str:
-    """``digits`` significant figures, trailing zeros kept (a reading's precision shows), no ``-0``."""
-    text = f"{value:#.{digits}g}".rstrip(".")
-    if "e" in text:
+def _significant(value: float, digits: int, trim: bool = False) -> str:
+    """``digits`` significant figures, trailing zeros kept unless ``trim`` (a reading's precision shows),
+    no ``-0``, and no exponent for a number with more integer digits than figures (``130``, not ``1.3e+02``)."""
+    text = f"{value:#.{digits}g}"
+    if "e" in text and abs(value) >= 1:
+        text = f"{round(value, digits - 1 - math.floor(math.log10(abs(value)))):.0f}"
+    elif "e" in text:
         text = f"{value:.{digits}g}"
+    elif trim and "." in text:
+        text = text.rstrip("0")
+    text = text.rstrip(".")
     return text[1:] if text.startswith("-") and float(text) == 0 else text
+
+
+def si_alike(values: list[float], unit: str = "", digits: int = 3) -> list[str]:
+    """Numbers read against each other (a level before and after a step) in one prefix and with one
+    number of decimals, set by the largest: ``digits`` significant figures for it, its mantissa between
+    0.1 and 100, so a 1 V step reads ``0.001 V``, ``0.999 V`` (not ``1.000 mV``, ``999.0 mV``). A value
+    that rounds to zero reads ``0`` without a sign (never ``-0.000``)."""
+    symbol = unit_symbol(unit)
+    largest = max((abs(v) for v in values if math.isfinite(v)), default=0.0)
+    exponent, decimals = 0, digits - 1
+    if largest > 0:
+        if symbol not in UNPREFIXED:
+            exponent = 3 * math.floor((math.log10(largest) + 1) / 3)
+            exponent = min(max(exponent, min(PREFIXES)), max(PREFIXES))
+        decimals = max(0, digits - 1 - math.floor(math.log10(largest / 10.0 ** exponent)))
+    out = []
+    for value in values:
+        text = f"{value / 10.0 ** exponent:.{decimals}f}" if math.isfinite(value) else str(value)
+        text = "0" if math.isfinite(value) and float(text) == 0 else text
+        out.append(f"{text} {PREFIXES[exponent]}{symbol}".rstrip())
+    return out
+
+
+def edge_label(edge: str, low_v: float, high_v: float) -> str:
+    """``rising 0 V → 1 V`` or ``falling 1 V → 0 V``: an edge named by its direction and the levels it
+    goes between, as set on the generator, in the order the edge takes them — one wording everywhere."""
+    start, end = (high_v, low_v) if edge == "falling" else (low_v, high_v)
+    return f"{edge} {si(start, 'V', 6, trim=True)} → {si(end, 'V', 6, trim=True)}"
 
 
 def quantity(key: str, value: float, digits: int = 4) -> str:

@@ -154,7 +154,7 @@ def last_output_state(log: Path) -> tuple[str, int]:
 
 
 def daemon_process(profile: Path, data: Path) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "acqd", "daemon", "--plain", "--data", str(data), str(profile)],
+    return subprocess.Popen([sys.executable, "-m", "acqd", "daemon", "--plain", "--data-dir", str(data), str(profile)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
@@ -233,7 +233,7 @@ def test_twenty_slots_at_a_short_interval_all_stored(tmp_path: Path, capsys: pyt
     # The bench was opened once and kept open: slots 0.2 s apart are far closer than keep_open_s.
     assert sum(e["event"] == "bench_open" for e in events) == 1
 
-    assert main(["status", str(data), "--json"]) == 0
+    assert main(["status", "-d", str(data), "--json"]) == 0
     status = json.loads(capsys.readouterr().out)
     (fast,) = status["campaigns"]
     assert (fast["state"], fast["records"], fast["slots_done"]) == ("finished", len(tags), len(done))
@@ -301,7 +301,7 @@ def test_two_campaigns_claiming_one_bench_are_refused(tmp_path: Path) -> None:
     resources = ("TCPIP0::127.0.0.1::5025::SOCKET", "TCPIP0::127.0.0.1::5026::SOCKET")
     a = write_profile(tmp_path / "a.toml", 'name = "a"\nevery_s = 60\nslots = 3\n', resources=resources)
     b = write_profile(tmp_path / "b.toml", 'name = "b"\nevery_s = 60\nslots = 3\n', resources=resources)
-    code, err = run_cli(["daemon", "--data", str(tmp_path / "data"), str(a), str(b)])
+    code, err = run_cli(["daemon", "--data-dir", str(tmp_path / "data"), str(a), str(b)])
     assert code == 2 and err.count("\n") == 1, err
     assert str(b) in err and "campaign 'b' claims TCPIP0::127.0.0.1::5025::SOCKET" in err and "'a'" in err
     assert not (tmp_path / "data").exists()  # nothing scheduled, nothing created
@@ -314,7 +314,7 @@ def test_two_campaigns_claiming_one_bench_are_refused(tmp_path: Path) -> None:
 ])
 def test_bad_schedule_is_one_line_and_nothing_scheduled(tmp_path: Path, campaign: str, words: list[str]) -> None:
     profile = write_profile(tmp_path / "bad.toml", campaign)
-    code, err = run_cli(["daemon", "--data", str(tmp_path / "data"), str(profile)])
+    code, err = run_cli(["daemon", "--data-dir", str(tmp_path / "data"), str(profile)])
     assert code == 2 and err.count("\n") == 1, err
     assert all(w in err for w in words) and str(profile) in err
     assert not (tmp_path / "data").exists()
@@ -325,7 +325,7 @@ def test_job_store_that_is_not_a_database(tmp_path: Path) -> None:
     data.mkdir()
     (data / "campaigns.sqlite").write_text("these are my notes, not a database\n" * 100)
     profile = write_profile(tmp_path / "p.toml", 'every_s = 1\nslots = 3\n')
-    code, err = run_cli(["daemon", "--data", str(data), str(profile)])
+    code, err = run_cli(["daemon", "--data-dir", str(data), str(profile)])
     assert code == 2 and err.count("\n") == 1, err
     assert "campaigns.sqlite" in err and "not a usable SQLite database" in err
     assert sorted(p.name for p in data.iterdir()) == ["campaigns.sqlite", "daemon.lock"]  # no store, no run log

@@ -63,7 +63,7 @@ def write_drifting_store(path: Path, rng: np.random.Generator, n_records: int = 
 def test_drift_recovers_injected_slope_within_its_interval(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
     truth = write_drifting_store(tmp_path / "night.h5", np.random.default_rng(7))
     out = tmp_path / "drift"
-    assert main(["drift", str(tmp_path / "night.h5"), "--json", "--out", str(out)]) == 0
+    assert main(["drift", str(tmp_path / "night.h5"), "--json", "--figures", str(out)]) == 0
     summary = json.loads(capsys.readouterr().out)
     assert summary["records"] == summary["compared"] == N_RECORDS
     r = next(s for s in summary["series"] if s["name"] == "r_ohm")
@@ -109,7 +109,7 @@ def test_a_sweep_keeps_metrics_per_setting_and_parameters_pooled(tmp_path: Path)
     assert len(names["r_ohm"].values) == 10  # the DUT's parameter, whatever the edge
     lo, hi = names["r_ohm"].trend.ci95
     assert lo < SLOPE_OHM_PER_H < hi
-    rising, falling = names["v_c.amplitude @ rising 0→1 V"], names["v_c.amplitude @ falling 0→1 V"]
+    rising, falling = names["v_c.amplitude @ rising 0 V → 1 V"], names["v_c.amplitude @ falling 1 V → 0 V"]
     assert rising.indices == [0, 2, 4, 6, 8] and falling.indices == [1, 3, 5, 7, 9]
     # IEEE 181 amplitude = final − initial state level: about +1 V rising, −1 V falling, no trend in either.
     assert np.allclose(rising.values, 1.0, atol=0.01) and np.allclose(falling.values, -1.0, atol=0.01)

@@ -25,7 +25,7 @@ def exported(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
     tmp = tmp_path_factory.mktemp("roundtrip")
     assert main(["run", str(profile_file(tmp)), "--count", "2"]) == 0
     store, out = tmp / "records.h5", tmp / "rec1.csv"
-    assert main(["export", str(store), "--record", "1", "--csv", str(out)]) == 0
+    assert main(["export", str(store), "--record", "1", "--out", str(out)]) == 0
     return store, out
 
 

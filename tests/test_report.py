@@ -112,7 +112,7 @@ def test_report_with_one_spec_for_every_record_lists_failures(tmp_path):
     spec = parse_dut_table({**DUT, "tolerances": {"parameter_pct": 2.0}}, "kt9.toml", path="")
     records = [kt9_record(i, r, seed=i) for i, r in enumerate((22.0, 26.0))]
     html = write_report(ListSource(records), tmp_path, lambda rec: spec, "KT-9", [0, 1]).read_text()
-    assert "r_ohm: fitted" in html and "outside ±2 %" in html
+    assert "R: fitted" in html and "outside ±2 %" in html
     assert re.search(r'<td>1</td><td>[^<]*</td><td>series_rlc</td><td><span class="fail">FAIL', html)
 
 

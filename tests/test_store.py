@@ -213,15 +213,15 @@ def test_cli_ls_show_export(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, cap
     assert status == 0 and [r["index"] for r in listed] == [0, 1, 2]
     assert listed[1]["verdict"] == "pass" and listed[1]["channel_names"] == ["v_c", "i_l"]
     status, out, _ = _acqd(["ls", str(store)], monkeypatch, capsys)
-    assert status == 0 and "3 record(s)" in out and "fail" in out and "falling" in out
-    status, out, _ = _acqd(["show", str(store), "2", "--json"], monkeypatch, capsys)
+    assert status == 0 and "3 record(s)" in out and "FAIL" in out and "falling" in out
+    status, out, _ = _acqd(["show", str(store), "-r", "2", "--json"], monkeypatch, capsys)
     meta = json.loads(out)
     assert status == 0 and meta["index"] == 2 and meta["profile_text"] == PROFILE
     assert meta["checksum"] == crc_of(make_record(2))
-    status, out, _ = _acqd(["show", str(store), "1"], monkeypatch, capsys)
+    status, out, _ = _acqd(["show", str(store), "--record", "1"], monkeypatch, capsys)
     assert status == 0 and "series RLC" in out
     csv_path = tmp_path / "one.csv"
-    status, out, _ = _acqd(["export", str(store), "--record", "1", "--csv", str(csv_path)], monkeypatch, capsys)
+    status, out, _ = _acqd(["export", str(store), "--record", "1", "-o", str(csv_path)], monkeypatch, capsys)
     assert status == 0 and csv_path.exists() and Path(str(csv_path) + ".json").exists()
 
 
@@ -232,9 +232,9 @@ def test_cli_ls_show_export(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, cap
         (["ls", "{dir}/other.h5"], "other.h5: not an acqd record file: root attribute acqd_format is None"),
         (["ls", "{dir}/missing.h5"], "missing.h5: no such record store"),
         (["ls", "{dir}"], "is a directory; name a store in it"),
-        (["show", "{dir}/s.h5", "7"], "s.h5: record: 7 is not in this store; it holds records 0-1"),
-        (["show", "{dir}/s.h5", "one"], "RECORD: 'one' is not a record index"),
-        (["export", "{dir}/s.h5", "--record", "0", "--csv", "{dir}/no/such/dir.csv"], "cannot write the export"),
+        (["show", "{dir}/s.h5", "-r", "7"], "s.h5: record: 7 is not in this store; it holds records 0-1"),
+        (["show", "{dir}/s.h5", "-r", "one"], "acqd show: --record: 'one' is not a whole number"),
+        (["export", "{dir}/s.h5", "--record", "0", "--out", "{dir}/no/such/dir.csv"], "cannot write the export"),
     ],
 )
 def test_cli_bad_input_is_one_line(

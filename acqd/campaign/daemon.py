@@ -91,7 +91,7 @@ def daemon_lock(data_dir: Path) -> Iterator[None]:
         os.close(fd)
         holder = path.read_text().strip() or "?"
         raise ConfigError(str(data_dir), "", f"another acqd daemon (pid {holder}) is using this data directory; "
-                                             "stop it first or give another --data directory") from None
+                                             "stop it first or give another --data-dir directory") from None
     try:
         os.ftruncate(fd, 0)
         os.write(fd, f"{os.getpid()}\n".encode())

@@ -27,6 +27,7 @@ from rich.table import Table
 from scipy import stats
 
 from ..compare import parse_dut_table
+from ..display import edge_label
 from ..errors import AcqdError, ConfigError
 from ..store import open_records
 from .ledger import verdict_text
@@ -138,10 +139,12 @@ def _hours_to_limit(series: Series) -> float | None:
     return max(0.0, t_cross - series.hours[-1])
 
 
-def analyse_store(path: str | Path) -> DriftSummary:
-    """Read every record's stored analysis (no samples) and build the series and trends."""
+def analyse_store(path: str | Path, last: int | None = None) -> DriftSummary:
+    """Read every record's stored analysis (no samples), or the ``last`` records', and build the series
+    and trends."""
     with open_records(path) as reader:
         analyses = reader.analyses()
+        analyses = analyses[-last:] if last else analyses
         tolerances = _tolerances(reader, analyses)
         labels = _setting_labels(reader)
         notes = list(reader.notes)
@@ -207,11 +210,11 @@ def _add_parameters(series: dict[str, Series], analysis: dict[str, Any], index: 
 
 
 def _setting_labels(reader: Any) -> dict[int, str]:
-    """Record index → `` @ rising 0→1 V`` when the store mixes stimulus settings (a campaign's sweep),
+    """Record index → `` @ rising 0 V → 1 V`` when the store mixes stimulus settings (a campaign's sweep),
     else nothing. A metric such as a step's amplitude belongs to its setting: pooled over both edges it
     would jump between +1 and −1 V. Fitted parameters describe the DUT whatever the stimulus and stay
     pooled."""
-    settings = {s.index: f" @ {s.edge} {s.low_v:g}→{s.high_v:g} V" for s in reader.index()}
+    settings = {s.index: f" @ {edge_label(s.edge, s.low_v, s.high_v)}" for s in reader.index()}
     return settings if len(set(settings.values())) > 1 else {}
 
 

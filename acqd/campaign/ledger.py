@@ -91,7 +91,7 @@ def open_database(path: Path, *, readonly: bool = False) -> sqlite3.Connection:
         conn.execute("PRAGMA schema_version").fetchone()  # reads the header: fails on a non-database
     except sqlite3.DatabaseError as exc:
         raise ConfigError(str(path), "", f"is not a usable SQLite database ({exc}); move it away or give "
-                                         "another --data directory") from None
+                                         "another --data-dir directory") from None
     return conn
 
 

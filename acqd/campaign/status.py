@@ -80,7 +80,7 @@ def collect(data_dir: str | Path) -> list[CampaignStatus]:
     data_dir = Path(data_dir)
     database = data_dir / FILENAME
     if not database.is_file():
-        raise ConfigError(str(data_dir), "", f"no campaign database ({FILENAME}) here; is this the daemon's --data "
+        raise ConfigError(str(data_dir), "", f"no campaign database ({FILENAME}) here; is this the daemon's --data-dir "
                                              "directory?")
     conn = open_database(database, readonly=True)
     try:

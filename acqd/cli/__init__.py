@@ -14,6 +14,7 @@ import sys
 
 from .. import __version__
 from ..errors import AcqdError
+from .common import Parser
 
 # Sub-command modules, in the order of the data path; each owns its own flags.
 COMMAND_MODULES = ("sim", "instruments", "run", "store", "compare", "campaign")
@@ -23,7 +24,7 @@ BROKEN_PIPE_STATUS = 1
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="acqd", description="Automated step tests on the electronics bench.")
+    parser = Parser(prog="acqd", description="Automated step tests on the electronics bench.")
     parser.add_argument("-V", "--version", action="version", version=f"acqd {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     for name in COMMAND_MODULES:

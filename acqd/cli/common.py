@@ -1,9 +1,28 @@
-"""Pieces several sub-commands print: the bench safety note and the one-line record summary."""
+"""What several sub-commands share: the options of the CLI convention, the console, the safety note, the
+verdict's colour and the one-line record summary.
+
+The convention (one meaning per option in every sub-command) lives here as one function per option, so a
+sub-command cannot spell ``--record`` or ``--out`` its own way: a positional ``STORE``; ``-r/--record N``
+(default the last record); ``-o/--out PATH`` for the one file a command writes; ``--figures DIR`` for a
+folder of figures; ``-p/--profile FILE`` where a profile is optional; ``-n/--count N``; ``--last N``;
+``--json``; ``-d/--data-dir DIR``. Bad values are ``ConfigError`` lines naming the sub-command and the
+option (argparse lets an exception that is not a ``ValueError`` or ``TypeError`` through its type calls).
+"""
 
 from __future__ import annotations
 
-import numpy as np
+import argparse
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, NoReturn
 
+import numpy as np
+from rich.console import Console
+from rich.text import Text
+from rich.theme import Theme
+
+from ..display import edge_label, si_alike
+from ..errors import ConfigError
 from ..record import Record
 
 SAFETY_NOTE = (
@@ -11,8 +30,128 @@ SAFETY_NOTE = (
     "never clip a ground lead to a node that is not at earth. Keep outputs inside the DUT's ratings. "
     "Follow local codes and licensed practice."
 )
+DEFAULT_DATA_DIR = Path("data")
+
+# The verdict is the one thing coloured: green pass, red FAIL; "untested" stays plain.
+VERDICT_STYLES = {"pass": ("pass", "green"), "fail": ("FAIL", "bold red"), "untested": ("untested", "")}
+# rich's progress bar and its counters are coloured by default; monochrome here, so colour keeps one meaning.
+_PLAIN_PROGRESS = Theme({"bar.back": "dim", "bar.complete": "bold", "bar.finished": "bold", "bar.pulse": "bold",
+                         "progress.elapsed": "none", "progress.download": "none", "progress.percentage": "none",
+                         "progress.remaining": "none", "progress.spinner": "none", "table.caption": "none"})
 
 
+# -- the console ---------------------------------------------------------------------------------------
+def console(wide: bool = False, **options: Any) -> Console:
+    """The one way a sub-command gets a console: rich's automatic highlighting off (it coloured dates and
+    words such as "record(s)" as if they were code), emoji codes off, monochrome progress bars. Markup
+    stays on for the tables that use it; text from files and instruments goes in as ``rich.text.Text``
+    (markup would swallow a ``[dut]``). ``wide``: in a pipe or a log file, wide enough that
+    tables do not wrap; in a terminal its own width."""
+    made = Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, **options)
+    if wide and not made.is_terminal and "width" not in options:
+        made = Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, width=160, **options)
+    return made
+
+
+def verdict_text(verdict: str | None, upper: bool = False) -> Text:
+    """The comparator's verdict as a person reads it, in its colour; an unknown or missing one plain.
+    ``upper`` for a verdict that stands on its own line (``verdict: PASS``)."""
+    word, style = VERDICT_STYLES.get(verdict or "", (verdict or "not compared", ""))
+    return Text(word.upper() if upper else word, style=style)
+
+
+# -- the options of the convention -------------------------------------------------------------------------
+class Parser(argparse.ArgumentParser):
+    """argparse, with two habits changed: a wrong command line is one ``acqd: error:`` line like any other
+    bad input (not usage text and a second line), and no option is taken from its first letters, so an old
+    ``--data`` is refused rather than read as ``--data-dir`` and ``--record`` never as ``--records``."""
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, allow_abbrev=False, **kwargs)
+
+    def error(self, message: str) -> NoReturn:
+        raise ConfigError(self.prog, "", f"{message}; see {self.prog} --help")
+
+    def parse_args(self, args: Any = None, namespace: Any = None) -> argparse.Namespace:  # type: ignore[override]
+        """As argparse's, but an argument no option takes is blamed on the sub-command it was given to."""
+        parsed, extra = self.parse_known_args(args, namespace)
+        if extra:
+            prog = f"{self.prog} {parsed.command}" if getattr(parsed, "command", None) else self.prog
+            raise ConfigError(prog, "", f"unrecognized arguments: {' '.join(extra)}; see {prog} --help")
+        return parsed
+
+
+def add_command(sub: argparse._SubParsersAction, name: str, help: str, description: str) -> argparse.ArgumentParser:
+    """A sub-command with its one-line help (``acqd --help``) and its description (``acqd NAME --help``):
+    both required, so no sub-command can go without."""
+    return sub.add_parser(name, help=help, description=description)
+
+
+def whole_number(command: str, option: str, minimum: int) -> Callable[[str], int]:
+    """An argparse ``type`` for a whole number ≥ ``minimum`` that fails as one ``acqd: error:`` line."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise ConfigError(command, option, f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise ConfigError(command, option, f"must be {minimum} or more, not {value}")
+        return value
+    return parse
+
+
+def add_store(parser: argparse.ArgumentParser, help: str = "the record store, e.g. data/night.h5 (or one segment file)"
+              ) -> None:
+    parser.add_argument("store", metavar="STORE", help=help)
+
+
+def add_record(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("-r", "--record", metavar="N", type=whole_number(parser.prog, "--record", 0),
+                        help="the record's index, as acqd ls lists it (default: the last record)")
+
+
+def add_out(parser: argparse.ArgumentParser, help: str, required: bool = False) -> None:
+    parser.add_argument("-o", "--out", metavar="FILE", type=Path, required=required, help=help)
+
+
+def add_figures(parser: argparse.ArgumentParser, help: str) -> None:
+    parser.add_argument("--figures", metavar="DIR", type=Path, help=help)
+
+
+def add_profile(parser: argparse.ArgumentParser, help: str) -> None:
+    parser.add_argument("-p", "--profile", metavar="FILE", help=help)
+
+
+def add_count(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("-n", "--count", metavar="N", type=whole_number(parser.prog, "--count", 1), default=1,
+                        help="number of step tests (default 1)")
+
+
+def add_last(parser: argparse.ArgumentParser, what: str) -> None:
+    parser.add_argument("--last", metavar="N", type=whole_number(parser.prog, "--last", 1),
+                        help=f"only the last N records {what} (default: all)")
+
+
+def add_json(parser: argparse.ArgumentParser, help: str = "print JSON instead of a table") -> None:
+    parser.add_argument("--json", action="store_true", help=help)
+
+
+def add_data_dir(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("-d", "--data-dir", metavar="DIR", type=Path, default=DEFAULT_DATA_DIR,
+                        help="the daemon's data directory: records, run log, job store (default: ./data)")
+
+
+def chosen_record(reader: Any, store: str, number: int | None) -> int:
+    """The store index ``-r/--record`` names, or the last record's; a store with none is one error line."""
+    if number is not None:
+        return number
+    summaries = reader.index()
+    if not summaries:
+        raise ConfigError(store, "", "holds no records")
+    return summaries[-1].index
+
+
+# -- one line per record ------------------------------------------------------------------------------------
 def levels(record: Record, channel: str) -> tuple[float, float]:
     """(pre-trigger baseline, final level) of a channel: the mean of the pre-trigger samples and of the last tenth."""
     samples = record.channel(channel).samples
@@ -21,16 +160,23 @@ def levels(record: Record, channel: str) -> tuple[float, float]:
     return baseline, float(np.mean(samples[-max(1, len(samples) // 10):]))
 
 
-def record_line(index: int, record: Record) -> str:
-    """``#12 2026-12-02T03:50:01 rising edge, v_c 0.000→1.000 V pass``: what a bench engineer scans for.
+def utc_text(utc: str) -> str:
+    """``2026-12-02 04:46:49``: an ISO 8601 UTC time to the second, as every table shows it."""
+    return utc[:19].replace("T", " ")
+
+
+def record_line(index: int, record: Record) -> Text:
+    """``#12 2026-12-02 03:50:01 rising 0 V → 1 V, v_c 0.001 V → 0.999 V pass``: what a bench engineer
+    scans for.
 
     The levels are those of the last scope input (by the profile's order, the DUT's output comes last);
     math channels are left out because they are derived.
     """
     captured = [c for c in record.channels if c.source.upper().startswith("CH")] or record.channels
     shown = captured[-1]
-    before, after = levels(record, shown.name)
-    shown_verdict = {"pass": " [green]pass[/green]", "fail": " [red]FAIL[/red]", "untested": " untested"}
-    verdict = shown_verdict.get((record.analysis or {}).get("verdict", ""), "")
-    return (f"#{index} {record.utc[:19]} {record.stimulus.edge} edge, {shown.name} "
-            f"{before:.3f}→{after:.3f} {shown.unit}{verdict}")
+    before, after = si_alike(list(levels(record, shown.name)), shown.unit)
+    stim = record.stimulus
+    line = Text(f"#{index} {utc_text(record.utc)} {edge_label(stim.edge, stim.low_v, stim.high_v)}, "
+                f"{shown.name} {before} → {after}")
+    verdict = (record.analysis or {}).get("verdict")
+    return line.append(" ").append_text(verdict_text(verdict)) if verdict else line

@@ -14,12 +14,17 @@ import argparse
 import copy
 from typing import Any
 
+from rich.text import Text
+
 from ..compare import CompareResult, CompareSpec, compare_spec, parse_dut_table
 from ..compare.csvinput import metadata_path, read_csv_record, read_exported_record
 from ..compare.spec import WEIGHTINGS
 from ..errors import ConfigError
 from ..models import BUILDERS
+from ..display import edge_label, si
 from ..record import EDGES, LOADS, Record, Stimulus
+from .common import add_command, add_figures, add_json, add_profile, add_record, add_store, chosen_record, console, utc_text
+from .results import renderables
 
 CLI = "acqd compare"
 REPORT = "acqd report"
@@ -27,13 +32,14 @@ STIMULUS_OPTIONS = ("low", "high", "edge", "load", "edge_time", "source_resistan
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("compare", help="compare a record with a state-space model",
-                       description="Compare one record (stored, or a CSV) with a model: metrics, IEEE 181 step "
-                                   "parameters, optional parameter fit, verdict. Exit 0 pass, 1 fail, 2 bad input.")
-    p.add_argument("input", metavar="INPUT",
-                   help="a record store file, or a CSV (time column + one column per channel)")
-    p.add_argument("--record", metavar="N", help="the record's index in a store file (default: the newest)")
-    p.add_argument("--profile", metavar="PROFILE", help="take model, mapping, fit and tolerances from its [dut] table")
+    p = add_command(sub, "compare", help="compare a record with a state-space model",
+                    description="Compare one record (stored, or a CSV) with a model: metrics, IEEE 181 step "
+                                "parameters, optional parameter fit, verdict. The model, mapping and tolerances "
+                                "come from the record's own [dut] table, from --profile, or from options (which "
+                                "override the table). Exit 0 pass, 1 fail, 2 bad input.")
+    add_store(p, "a record store (e.g. data/night.h5), or a CSV file (time column + one column per channel)")
+    add_record(p)
+    add_profile(p, "take model, mapping, fit and tolerances from this profile's [dut] table")
     g = p.add_argument_group("model")
     g.add_argument("--model", metavar="NAME", help=f"one of {', '.join(sorted(BUILDERS))}")
     g.add_argument("--param", metavar="NAME=VALUE", action="append", default=[], help="a nominal parameter (SI)")
@@ -61,8 +67,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     g.add_argument("--edge-time", metavar="S", help="generator 10-90 %% edge time (default 0)")
     g.add_argument("--source-resistance", metavar="OHM", help="generator output resistance (default 50)")
     g = p.add_argument_group("output")
-    g.add_argument("--json", action="store_true", help="print the whole result as one JSON object")
-    g.add_argument("--figures", metavar="DIR", help="write channels.png and trajectory.png into DIR")
+    add_json(g, "print the whole result as one JSON object instead of a table")
+    add_figures(g, "write channels.png and trajectory.png into DIR")
     p.set_defaults(func=run_compare)
 
     r = sub.add_parser("report", help="write an HTML run report of a record store",
@@ -101,15 +107,12 @@ def _count(option: str, text: str, source: str = CLI) -> int:
 
 
 # -- inputs ------------------------------------------------------------------------------------------
-def _stored_record(path: str, number: str | None) -> Record:
-    """Record ``number`` (its store index, as ``acqd ls`` shows it) or the newest one."""
+def _stored_record(path: str, number: int | None) -> Record:
+    """Record ``number`` (its store index, as ``acqd ls`` shows it) or the last one."""
     from ..store import open_records  # h5py only when a store is read
 
     with open_records(path) as reader:
-        summaries = reader.index()
-        if not summaries:
-            raise ConfigError(path, "", "holds no records")
-        return reader.read(summaries[-1].index if number is None else _count("--record", number))
+        return reader.read(chosen_record(reader, path, number))
 
 
 def _csv_stimulus(args: argparse.Namespace) -> Stimulus:
@@ -127,19 +130,19 @@ def _csv_stimulus(args: argparse.Namespace) -> Stimulus:
 
 def _record(args: argparse.Namespace) -> Record:
     stimulus_given = [f"--{o.replace('_', '-')}" for o in STIMULUS_OPTIONS if getattr(args, o) is not None]
-    if args.input.lower().endswith(".csv"):
+    if args.store.lower().endswith(".csv"):
         if args.record is not None:
             raise ConfigError(CLI, "--record", "only for a record store; a CSV holds one record")
-        if metadata_path(args.input).exists():  # acqd's own export: the stimulus is in the JSON beside it
+        if metadata_path(args.store).exists():  # acqd's own export: the stimulus is in the JSON beside it
             if stimulus_given:
-                raise ConfigError(CLI, stimulus_given[0], f"{metadata_path(args.input)} gives the stimulus; "
+                raise ConfigError(CLI, stimulus_given[0], f"{metadata_path(args.store)} gives the stimulus; "
                                                           "leave the stimulus options out (or move the JSON away)")
-            return read_exported_record(args.input, args.time_column)
-        return read_csv_record(args.input, _csv_stimulus(args), args.time_column)
+            return read_exported_record(args.store, args.time_column)
+        return read_csv_record(args.store, _csv_stimulus(args), args.time_column)
     given = [*stimulus_given, *(["--time-column"] if args.time_column is not None else [])]
     if given:
         raise ConfigError(CLI, given[0], "only for a CSV input; a stored record carries its own stimulus")
-    return _stored_record(args.input, args.record)
+    return _stored_record(args.store, args.record)
 
 
 # -- the [dut] table: base (profile or record) + options --------------------------------------------------
@@ -187,8 +190,8 @@ def _base_table(args: argparse.Namespace, record: Record) -> _Table:
         profile = load_profile(args.profile)
         table = _Table(profile.dut, profile.source, profile.text, "dut")
     elif "model" in (record.dut or {}):
-        source = (str(metadata_path(args.input)) if args.input.lower().endswith(".csv")
-                  else f"{args.input} record {record.index}")
+        source = (str(metadata_path(args.store)) if args.store.lower().endswith(".csv")
+                  else f"{args.store} record {record.index}")
         table = _Table(record.dut, source, "", "dut")
     else:
         table = _Table({}, CLI, "", "")
@@ -243,45 +246,27 @@ def _apply_tolerances(table: _Table, args: argparse.Namespace) -> None:
 
 
 # -- output --------------------------------------------------------------------------------------------
-def _step_text(step: Any, attr: str) -> str:
-    value = getattr(step, attr) if step is not None else None
-    return "-" if value is None else f"{value:.4g}"
+def headline(result: CompareResult, stimulus: Stimulus, label: str) -> str:
+    """``data/kt9.h5 record 2 (2026-12-02 04:46:49 UTC) vs series_rlc: rising 0 V → 1 V, timing …``.
 
-
-def format_result(result: CompareResult, label: str) -> str:
-    """A short plain-text summary for the terminal; ``label`` names the record (file, index)."""
+    The edge is named as everywhere else, by the levels as set; when the generator's open-circuit
+    voltage (what the model is driven with) differs from them — a matched-load setting doubles it — the
+    EMF is given as well.
+    """
     stim = result.stimulus
-    when = f" ({result.record['utc']})" if result.record["utc"] else ""
-    lines = [f"{label}{when} vs {result.model}: EMF {stim['before_v']:g} -> {stim['after_v']:g} V, "
-             f"timing {stim['timing']}",
-             f"{'channel':<10} {'signal':<14} {'NRMSE %':>8} {'max|err|':>10} {'overshoot % m/s':>17} "
-             f"{'settling s m/s':>21}"]
-    for ch in result.channels:
-        m, s = ch.measured, ch.simulated
-        over = f"{_step_text(m, 'overshoot_pct')}/{_step_text(s, 'overshoot_pct')}"
-        settle = f"{_step_text(m, 'settling_duration_s')}/{_step_text(s, 'settling_duration_s')}"
-        lines.append(f"{ch.channel:<10} {ch.signal:<14} {100 * ch.nrmse:>8.3f} {ch.max_abs_error:>10.3g} "
-                     f"{over:>17} {settle:>21}")
-    if result.fit:
-        fit = result.fit
-        lines.append(f"fit ({fit.weighting} weighting, residual scale {fit.residual_scale:.3g}, "
-                     f"{fit.evaluations} evaluations, condition number {fit.condition_number:.3g}):")
-        for name in fit.fitted:
-            lo, hi = fit.ci95[name]
-            lines.append(f"  {name} = {fit.values[name]:.5g} {fit.units[name]} ± {fit.standard_errors[name]:.2g} "
-                         f"(95 %: {lo:.5g} .. {hi:.5g}; start {fit.nominal[name]:.5g})")
-        lines += [f"  {name} held fixed: {why}" for name, why in fit.held_fixed.items()]
-    lines.append(f"verdict: {result.verdict.status.upper()}")
-    lines += [f"  - {reason}" for reason in result.verdict.reasons]
-    lines += [f"warning: {w}" for w in result.warnings]
-    return "\n".join(lines)
+    when = f" ({utc_text(result.record['utc'])} UTC)" if result.record["utc"] else ""
+    edge = edge_label(stimulus.edge, stimulus.low_v, stimulus.high_v)
+    start, end = (stimulus.high_v, stimulus.low_v) if stimulus.edge == "falling" else (stimulus.low_v, stimulus.high_v)
+    if (stim["before_v"], stim["after_v"]) != (start, end):
+        edge += f" (open-circuit {si(stim['before_v'], 'V', 6, trim=True)} → {si(stim['after_v'], 'V', 6, trim=True)})"
+    return f"{label}{when} vs {result.model}: {edge}, timing {stim['timing']}"
 
 
 def run_compare(args: argparse.Namespace) -> int:
     record = _record(args)
     table = _base_table(args, record)
     _apply_options(table, args)
-    label = args.input if record.index is None else f"{args.input} record {record.index}"
+    label = args.store if record.index is None else f"{args.store} record {record.index}"
     try:
         result = compare_spec(record, table.parse(), label)
     except ConfigError as exc:
@@ -289,7 +274,13 @@ def run_compare(args: argparse.Namespace) -> int:
     if args.figures:
         from ..report import save_figures  # matplotlib only when figures are asked for
         save_figures(result, args.figures)
-    print(result.to_json() if args.json else format_result(result, label))
+    if args.json:
+        print(result.to_json())
+    else:
+        out = console(wide=True)
+        out.print(Text(headline(result, record.stimulus, label)), soft_wrap=True)
+        for part in renderables(result.to_dict()):
+            out.print(part, soft_wrap=isinstance(part, Text))
     return 1 if result.verdict.status == "fail" else 0
 
 

@@ -11,20 +11,26 @@ import argparse
 from pathlib import Path
 from typing import Any
 
-from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
+from rich.text import Text
 
 from ..instruments import driver_dirs, list_drivers, match_driver
 from ..instruments.search import ENVIRONMENT
 from ..visa import DEFAULT_BACKEND, NAMED_BACKENDS, identify
+from .common import add_command, console
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
-    drivers = subparsers.add_parser("drivers", help="list the driver files found (name, role, *IDN? match, limits)")
+    drivers = add_command(subparsers, "drivers", help="list the driver files found (name, role, *IDN? match, limits)",
+                          description="List every driver file found, with its role, the *IDN? reply it fits, the "
+                                      f"instrument's hard limits and the folders searched ({ENVIRONMENT}, then "
+                                      "drivers/ of the checkout, then the installed package).")
     drivers.set_defaults(func=_drivers)
 
-    ident = subparsers.add_parser("identify", help="ask an instrument for *IDN? and name the driver that fits")
+    ident = add_command(subparsers, "identify", help="ask an instrument for *IDN? and name the driver that fits",
+                        description="Open RESOURCE over VISA, ask it for *IDN? and name the driver file that fits: "
+                                    "the first thing to run against a new bench. Exit 1 when no driver fits.")
     ident.add_argument("resource", metavar="RESOURCE", help="VISA resource, e.g. TCPIP0::192.0.2.10::5025::SOCKET")
     library = ident.add_mutually_exclusive_group()
     library.add_argument("--backend", default=DEFAULT_BACKEND, choices=NAMED_BACKENDS,
@@ -53,18 +59,18 @@ def _drivers(args: argparse.Namespace) -> int:
     for info in list_drivers():
         table.add_row(info.name, info.role, escape(info.idn_pattern), escape(_limits_text(info.limits)),
                       escape(info.description))
-    Console().print(table)
+    console().print(table)
     return 0
 
 
 def _identify(args: argparse.Namespace) -> int:
     idn = identify(args.resource, backend=args.visa_library or args.backend, timeout_s=args.timeout_s)
     info = match_driver(idn)
-    console = Console(highlight=False)
-    console.print(f"{escape(args.resource)}: {escape(idn)}")
+    screen = console()
+    screen.print(Text(f"{args.resource}: {idn}"))
     if info is None:
-        console.print(f"no driver fits; add one to drivers/ or a folder in {ENVIRONMENT} "
-                      f"(DEVELOPERS.md, 'How to add a driver')")
+        screen.print(Text(f"no driver fits; add one to drivers/ or a folder in {ENVIRONMENT} "
+                          f"(DEVELOPERS.md, 'How to add a driver')"))
         return 1
-    console.print(f"driver: {info.name} ({info.role}, {info.path})")
+    screen.print(Text(f"driver: {info.name} ({info.role}, {info.path})"))
     return 0

@@ -12,6 +12,7 @@ from typing import Any
 
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.text import Text
 
 from ..benchsession import Replay, open_bench
 from ..errors import AcqdError, ConfigError, InstrumentError
@@ -20,7 +21,7 @@ from ..profile import load_profile
 from ..record import Record
 from ..steptest import check_limits, run_step_test
 from ..store import RecordStore
-from .common import SAFETY_NOTE, record_line
+from .common import SAFETY_NOTE, add_command, add_count, add_out, console, record_line
 from .sim import parse_selection
 
 
@@ -41,12 +42,13 @@ def sigterm_raises() -> Iterator[None]:
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("run", help="run step tests from a profile and store every record",
-                       description="Run N step tests from PROFILE on its bench and store each record in HDF5. "
-                                   + SAFETY_NOTE)
-    p.add_argument("profile", type=Path, help="bench profile (TOML)")
-    p.add_argument("--count", type=int, default=1, help="number of step tests (default 1)")
-    p.add_argument("--out", type=Path, default=None, help="record file (default: the profile's output.file)")
+    p = add_command(sub, "run", help="run step tests from a profile and store every record",
+                    description="Run N step tests from PROFILE on its bench, compare each record with the "
+                                "profile's [dut] table and store it in HDF5 before its line is printed. "
+                                + SAFETY_NOTE)
+    p.add_argument("profile", type=Path, metavar="PROFILE", help="bench profile (TOML)")
+    add_count(p)
+    add_out(p, "the record store to append to (default: the profile's output.file)")
     p.add_argument("--replay", type=Path, default=None, metavar="FILE",
                    help="serve the records stored in FILE as the scope instead of the profile's bench")
     p.add_argument("--records", type=parse_selection, default=None, metavar="LIST",
@@ -55,29 +57,28 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run_command(args: argparse.Namespace) -> int:
-    if args.count < 1:
-        raise AcqdError(f"--count: must be at least 1, not {args.count}")
     if args.records is not None and args.replay is None:
         raise ConfigError("command line", "--records", "only has a meaning with --replay FILE")
     profile = load_profile(args.profile)
     judge = make_judge(profile)  # validates [dut] before anything is started
     out = args.out or profile.output.file
-    console = Console(soft_wrap=True)
-    console.print(f"[dim]{SAFETY_NOTE}[/dim]")
-    stored, failed = 0, 0
+    screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
+    if replay is None:  # a replay drives no output: the caution would only teach people to skip it
+        screen.print(Text(SAFETY_NOTE))
+    stored, failed = 0, 0
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         out.parent.mkdir(parents=True, exist_ok=True)
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
-                _progress(console) as progress:
+                _progress(screen) as progress:
             task = progress.add_task(profile.name, total=args.count)
             for _ in range(args.count):
                 try:
                     records = run_step_test(profile, bench.generator, bench.scope)
                 except InstrumentError as exc:
                     failed += 1
-                    progress.console.print(f"[red]not acquired[/red]: {exc}")
+                    progress.console.print(Text(f"not acquired: {exc}"))
                     progress.advance(task)
                     continue
                 for record in records:
@@ -86,7 +87,7 @@ def run_command(args: argparse.Namespace) -> int:
                     stored += 1
                     progress.console.print(record_line(index, record))
                 progress.advance(task)
-    console.print(f"{stored} record(s) stored in {out}; {failed} step test(s) not acquired")
+    screen.print(Text(f"{stored} record(s) stored in {out}; {failed} step test(s) not acquired"))
     return 1 if failed else 0
 
 
@@ -98,7 +99,7 @@ def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,
     try:
         return judge(record)
     except AcqdError as exc:
-        console.print(f"[yellow]not compared[/yellow]: {exc}")
+        console.print(Text(f"not compared: {exc}"))
         return None
 
 

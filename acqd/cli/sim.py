@@ -19,17 +19,25 @@ import sys
 from ..config import load_toml
 from ..errors import ConfigError
 from ..sim.bench import TABLE, ServedBench, SimBench, SimBenchConfig
+from .common import add_command, add_json, add_store
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
-    parser = subparsers.add_parser("sim", help="serve the simulated bench on TCP until interrupted")
+    parser = add_command(subparsers, "sim", help="serve the simulated bench on TCP until interrupted",
+                         description="Serve the simulated bench (a function generator and two scope dialects "
+                                     "behind a physical DUT model) as SCPI servers on 127.0.0.1 until Ctrl-C or "
+                                     "SIGTERM: the demo bench, or the one PROFILE's [bench.simulated] table "
+                                     "describes. Profiles with kind = \"visa\" can then name its resources.")
     parser.add_argument("profile", nargs="?", metavar="PROFILE",
                         help=f"a profile whose [{TABLE}] table describes the bench (default: the demo bench)")
     _serving_options(parser)
     parser.set_defaults(func=run)
 
-    replay = subparsers.add_parser("replay", help="serve stored records as the simulated DIG scope until interrupted")
-    replay.add_argument("file", metavar="FILE", help="the record store to serve (the path given to the store)")
+    replay = add_command(subparsers, "replay", help="serve stored records as the simulated DIG scope until interrupted",
+                         description="Serve the records of STORE through the simulated DIG scope (with a generator "
+                                     "beside it) on 127.0.0.1 until Ctrl-C or SIGTERM: each capture answers with the "
+                                     "next stored record, so a run can be repeated against what was measured.")
+    add_store(replay, "the record store to serve (the path given to the store)")
     replay.add_argument("--records", metavar="LIST",
                         help="store indices to serve, in this order: 0,2,5-9 (default: all, in store order)")
     _serving_options(replay)
@@ -38,8 +46,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def _serving_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
-    parser.add_argument("--json", action="store_true",
-                        help="print the resources as one JSON line first: {\"generator\": ..., \"scope\": ..., ...}")
+    add_json(parser, "print the resources as one JSON line first: {\"generator\": ..., \"scope\": ..., ...}")
     parser.add_argument("--allow-remote", action="store_true",
                         help="allow listening on an address other than loopback")
 
@@ -100,8 +107,8 @@ def run_replay(args: argparse.Namespace) -> int:
 
     _check_host(args)
     records = parse_selection(args.records) if args.records is not None else None
-    bench = ReplayBench(args.file, records=records, host=args.host)
-    asyncio.run(_serve(bench, args.json, "acqd replay", f"the records of {args.file}"))
+    bench = ReplayBench(args.store, records=records, host=args.host)
+    asyncio.run(_serve(bench, args.json, "acqd replay", f"the records of {args.store}"))
     return 0
 
 

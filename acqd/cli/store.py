@@ -8,40 +8,41 @@ import json
 import sys
 from typing import Any
 
-from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
-from ..errors import ConfigError
+from ..display import edge_label, si
 from ..store import RecordReader, RecordSummary, export_csv, open_records
+from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
+                     verdict_text)
+from .results import renderables
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
-    ls = subparsers.add_parser("ls", help="list the records of a store (index only, no samples read)")
-    ls.add_argument("file", metavar="FILE", help="the store, e.g. data/night.h5, or one segment file")
-    ls.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    ls = add_command(subparsers, "ls", help="list the records of a store (index only, no samples read)",
+                     description="List the records of a store from its index alone, without reading samples: "
+                                 "index, UTC time, edge, samples per channel and verdict.")
+    add_store(ls)
+    add_json(ls)
     ls.set_defaults(func=_ls)
 
-    show = subparsers.add_parser("show", help="print the metadata of one record")
-    show.add_argument("file", metavar="FILE")
-    show.add_argument("record", metavar="RECORD", help="record index, as listed by acqd ls")
-    show.add_argument("--json", action="store_true", help="print JSON (includes the full profile text)")
+    show = add_command(subparsers, "show", help="summarise one record: DUT, stimulus, instruments, verdict, fit",
+                       description="Summarise one record: when it was taken, the DUT, the stimulus, the capture, "
+                                   "the instruments, and the comparator's verdict with its fitted values, metrics "
+                                   "and reasons. --json prints everything the record carries except its samples, "
+                                   "including the instruments' read-back settings and the full profile text.")
+    add_store(show)
+    add_record(show)
+    add_json(show, "print all the record's metadata as JSON instead (includes the full profile text)")
     show.set_defaults(func=_show)
 
-    export = subparsers.add_parser("export", help="write one record as CSV (metadata in CSV_PATH.json)")
-    export.add_argument("file", metavar="FILE")
-    export.add_argument("--record", required=True, metavar="N", help="record index, as listed by acqd ls")
-    export.add_argument("--csv", required=True, metavar="OUT", help="CSV file to write")
+    export = add_command(subparsers, "export", help="write one record as CSV (metadata in FILE.json)",
+                         description="Write one record's samples as plain CSV (a time column 't [s]', then one column "
+                                     "per channel) to FILE, and all its metadata as JSON to FILE.json beside it.")
+    add_store(export)
+    add_record(export)
+    add_out(export, "the CSV file to write; the metadata goes to FILE.json", required=True)
     export.set_defaults(func=_export)
-
-
-def _record_index(text: str, flag: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise ConfigError("command line", flag, f"{text!r} is not a record index; give a whole number >= 0") from None
-    if value < 0:
-        raise ConfigError("command line", flag, f"{value}; record indices start at 0")
-    return value
 
 
 def _open(path: str) -> RecordReader:
@@ -52,7 +53,7 @@ def _open(path: str) -> RecordReader:
 
 
 def _ls(args: argparse.Namespace) -> int:
-    with _open(args.file) as reader:
+    with _open(args.store) as reader:
         summaries = reader.index()
     if args.json:
         print(json.dumps([dataclasses.asdict(s) for s in summaries], indent=1))
@@ -63,47 +64,73 @@ def _ls(args: argparse.Namespace) -> int:
     # Records of one store nearly always share their channels: then they are said once, under the table.
     shared = {channels_of(s) for s in summaries}
     per_row = len(shared) > 1
-    table = Table(caption=None if per_row or not summaries else f"channels: {shared.pop()}")
-    columns = [("index", "right"), ("UTC", "left"), ("edge", "left"), ("levels", "right")]
+    table = Table(caption=None if per_row or not summaries else Text(f"channels: {shared.pop()}"))
+    columns = [("index", "right"), ("UTC", "left"), ("edge", "left")]
     columns += [("channels", "left")] if per_row else []
     columns += [("samples", "right"), ("verdict", "left")]
     for name, justify in columns:
         table.add_column(name, justify=justify, no_wrap=name != "channels")
     for s in summaries:
-        row = [str(s.index), s.utc[:19].replace("T", " "), s.edge, f"{s.low_v:g} / {s.high_v:g} V"]
-        row += [channels_of(s)] if per_row else []
-        table.add_row(*row, str(s.n_samples), s.verdict)
-    console = Console()
-    console.print(f"{args.file}: {len(summaries)} record(s)", soft_wrap=True)  # a long path must not wrap
-    console.print(table)
+        row = [str(s.index), utc_text(s.utc), edge_label(s.edge, s.low_v, s.high_v)]
+        row += [Text(channels_of(s))] if per_row else []
+        table.add_row(*row, str(s.n_samples), verdict_text(s.verdict))
+    out = console()
+    out.print(Text(f"{args.store}: {len(summaries)} record(s)"), soft_wrap=True)  # a long path must not wrap
+    out.print(table)
     return 0
 
 
 def _show(args: argparse.Namespace) -> int:
-    index = _record_index(args.record, "RECORD")
-    with _open(args.file) as reader:
+    with _open(args.store) as reader:
+        index = chosen_record(reader, args.store, args.record)
         meta = reader.metadata(index)
     if args.json:
         print(json.dumps(meta, indent=2, ensure_ascii=False))
         return 0
-    text = meta.pop("profile_text")
-    meta["profile_text"] = f"({len(text.splitlines())} lines; acqd show --json prints it)"
-    table = Table(show_header=False, title=f"record {index}")
-    table.add_column("field", style="bold")
-    table.add_column("value")
-    for key, value in meta.items():
-        table.add_row(key, _plain(value))
-    Console().print(table)
+    out = console(wide=True)
+    for line in summary_lines(args.store, meta):
+        out.print(Text(line), soft_wrap=True)
+    analysis = meta.get("analysis")
+    if analysis and "channels" in analysis:
+        for part in renderables(analysis):
+            out.print(part, soft_wrap=isinstance(part, Text))
+    else:
+        why = (analysis or {}).get("error")
+        out.print(Text("verdict: ").append_text(verdict_text(None)).append(f" ({why})" if why else ""), soft_wrap=True)
+    lines = len(meta.get("profile_text", "").splitlines())
+    out.print(Text(f"(acqd show --json prints everything: read-back settings, the whole analysis, the profile "
+                   f"text of {lines} lines)"), soft_wrap=True)
     return 0
 
 
-def _plain(value: Any) -> str:
-    return value if isinstance(value, str) else json.dumps(value, ensure_ascii=False)
+FIELD_WIDTH = 12
+
+
+def summary_lines(store: str, meta: dict[str, Any]) -> list[str]:
+    """The record's identity, DUT, stimulus, capture, channels and instruments, one labelled line each."""
+    stim, tb = meta["stimulus"], meta["timebase"]
+    dut = meta.get("dut") or {}
+    who = ", ".join(str(v) for v in (dut.get("name"), dut.get("serial") and f"serial {dut['serial']}",
+                                      dut.get("model") and f"model {dut['model']}") if v)
+    interval = tb["sample_interval_s"]
+    capture = (f"{tb['n_samples']} samples every {si(interval, 's', trim=True)} ({si(interval * tb['n_samples'], 's')}, "
+               f"{si(interval * tb['pretrigger_samples'], 's')} before the edge), "
+               f"{meta.get('averages', 1)} average(s)")
+    stimulus = (f"{stim['shape']} {si(stim['frequency_hz'], 'Hz', 6, trim=True)}, "
+                f"{edge_label(stim['edge'], stim['low_v'], stim['high_v'])}, load {stim['load']}, "
+                f"source {si(stim['source_resistance_ohm'], 'ohm', trim=True)}, "
+                f"edge time {si(stim['edge_time_s'], 's', trim=True)}")
+    channels = ", ".join(f"{c['name']} [{c['unit']}] " + (f"({c['source']})" if c["source"].upper().startswith("CH")
+                                                          else f"= {c['source']}") for c in meta["channels"])
+    instruments = "; ".join(f"{role} {idn}" for role, idn in (meta.get("identities") or {}).items())
+    fields = [("DUT", who or "(no [dut] table)"), ("stimulus", stimulus), ("capture", capture),
+              ("channels", channels), ("instruments", instruments or "-")]
+    return [f"record {meta['index']} of {store}, {utc_text(meta['utc'])} UTC (acqd {meta.get('acqd_version', '?')})",
+            *(f"{name:<{FIELD_WIDTH}} {value}" for name, value in fields)]
 
 
 def _export(args: argparse.Namespace) -> int:
-    index = _record_index(args.record, "--record")
-    with _open(args.file) as reader:
-        meta_path = export_csv(reader, index, args.csv)
-    print(f"wrote {args.csv} and {meta_path}")
+    with _open(args.store) as reader:
+        meta_path = export_csv(reader, chosen_record(reader, args.store, args.record), args.out)
+    print(f"wrote {args.out} and {meta_path}")
     return 0

@@ -8,7 +8,7 @@ import math
 
 import pytest
 
-from acqd.display import key_unit, label, quantity, si
+from acqd.display import edge_label, key_unit, label, quantity, si, si_alike
 
 
 @pytest.mark.parametrize("value,unit,text", [
@@ -50,3 +50,21 @@ def test_keys_read_as_symbols_with_their_units(key, name, unit):
 
 def test_quantity_joins_symbol_value_and_unit():
     assert quantity("c_f", 100e-9) == "C = 100.0 nF"
+
+
+def test_a_value_as_set_drops_trailing_zeros_and_no_value_shows_an_exponent():
+    # A set level is exact (1 V, not 1.000 V); 130 mΩ at two figures is written out, not 1.3e+02 mΩ.
+    assert si(1.0, "V", 6, trim=True) == "1 V" and si(2e-8, "s", trim=True) == "20 ns"
+    assert si(0.13, "ohm", 2) == "130 mΩ" and si(0.1, "%", trim=True) == "0.1 %"
+
+
+def test_levels_read_against_each_other_share_one_prefix_and_never_show_minus_zero():
+    assert si_alike([-4e-5, 0.9994], "V") == ["0 V", "0.999 V"]   # -0.00004 V rounds to 0 at three decimals
+    assert si_alike([0.0011, 0.0009], "V") == ["1.10 mV", "0.90 mV"]  # milli = 10^-3 (SI Brochure, table 7)
+
+
+def test_an_edge_names_its_levels_in_the_order_it_takes_them():
+    # A falling edge goes from the high level to the low one (common practice).
+    assert edge_label("rising", 0.0, 1.0) == "rising 0 V → 1 V"
+    assert edge_label("falling", 0.0, 1.0) == "falling 1 V → 0 V"
+    assert edge_label("rising", -0.5, 2.5) == "rising -500 mV → 2.5 V"

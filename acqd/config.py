@@ -92,6 +92,8 @@ class Table:
 
     def integer(self, key: str, default: Any = ..., *, min: int | None = None, max: int | None = None) -> int:
         value = self.raw(key, default)
+        if value is None:  # only a None default gets here: TOML has no null
+            return value
         if isinstance(value, bool) or not isinstance(value, int):
             raise self.error(key, f"must be a whole number, not {_shown(value)}")
         if (min is not None and value < min) or (max is not None and value > max):

@@ -30,7 +30,8 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TaskID, TextC
 from rich.text import Text
 
 from ..errors import ConfigError
-from ..profile import Profile, load_profile
+from ..plan import ready_profile
+from ..profile import Profile
 from .ledger import FILENAME, Ledger, open_database
 from .runlog import RunLog, utc_now
 from .runner import CampaignRunner, StopFlag
@@ -48,7 +49,7 @@ LIVE_HIDDEN = ("slot_done",)  # the live table shows progress; only what needs a
 
 def load_specs(profiles: Sequence[Path]) -> list[CampaignSpec]:
     """Every profile's campaign, refused in one line if two share a name or a bench."""
-    specs = [load_campaign(load_profile(path)) for path in profiles]
+    specs = [load_campaign(ready_profile(path)) for path in profiles]
     names: dict[str, CampaignSpec] = {}
     for spec in specs:
         if spec.name in names:

@@ -17,7 +17,7 @@ from rich.text import Text
 from ..benchsession import Replay, open_bench
 from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
-from ..profile import load_profile
+from ..plan import ready_profile
 from ..record import Record
 from ..steptest import check_limits, run_step_test
 from ..store import RecordStore
@@ -59,7 +59,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 def run_command(args: argparse.Namespace) -> int:
     if args.records is not None and args.replay is None:
         raise ConfigError("command line", "--records", "only has a meaning with --replay FILE")
-    profile = load_profile(args.profile)
+    profile = ready_profile(args.profile)
     judge = make_judge(profile)  # validates [dut] before anything is started
     out = args.out or profile.output.file
     screen = console(soft_wrap=True)

@@ -65,7 +65,7 @@ kind = "simulated"
 [bench.generator]
 driver = "scpi-generator"
 [bench.scope]
-driver = "scpi-digitizer"
+driver = "scpi-digitiser"
 [bench.simulated]
 seed = 1
 noise_v_rms = 0.002
@@ -85,7 +85,7 @@ kind = "visa"
 driver = "scpi-generator"
 resource = "{gen}"
 [bench.scope]
-driver = "scpi-digitizer"
+driver = "scpi-digitiser"
 resource = "{scope}"
 """
 PROFILE = """

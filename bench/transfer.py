@@ -177,7 +177,7 @@ def compare(quantise: bool, sizes: list[int], repeats: int) -> None:
         generator = open_instrument(resources["generator"], "scpi-generator")
         generator.apply_stimulus(Stimulus("square", 0.0, 1.0, 1e3, "rising"))
         generator.output(True)
-        scope = open_instrument(resources["scope"], "scpi-digitizer", timeout_s=120.0)
+        scope = open_instrument(resources["scope"], "scpi-digitiser", timeout_s=120.0)
         inst = pyvisa.ResourceManager("@py").open_resource(resources["scope"], read_termination="\n",
                                                            write_termination="\n", timeout=600_000)
         paths: dict[str, Callable[[], np.ndarray]] = {

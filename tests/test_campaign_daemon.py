@@ -36,7 +36,7 @@ kind = "{kind}"
 driver = "scpi-generator"
 {generator_resource}
 [bench.scope]
-driver = "scpi-digitizer"
+driver = "scpi-digitiser"
 {scope_resource}
 {simulated}
 

@@ -20,7 +20,7 @@ from acqd.instruments import find_driver, list_drivers, load_driver, match_drive
 from acqd.instruments.expression import Expression, ExpressionError
 
 DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
-SHIPPED = {"scpi-generator": "generator", "scpi-digitizer": "scope", "divscope": "scope"}
+SHIPPED = {"scpi-generator": "generator", "scpi-digitiser": "scope", "divscope": "scope"}
 
 
 def one_line(exc: BaseException) -> str:
@@ -50,7 +50,7 @@ def test_shipped_drivers_load_and_are_listed():
 
 
 @pytest.mark.parametrize("idn, expected", [
-    ("acqd-sim,DIG,0,0.1.0", "scpi-digitizer"),
+    ("acqd-sim,DIG,0,0.1.0", "scpi-digitiser"),
     ("acqd-sim,DIVSCOPE,0,0.1.0", "divscope"),
     ("acqd-sim,FG,0,0.1.0", "scpi-generator"),
     ("Some Maker,Model 9,123,1.0", None),
@@ -63,7 +63,7 @@ def test_match_driver_by_idn(idn, expected):
 
 def test_commands_follow_the_per_division_and_share_conventions():
     view = load_driver(find_driver("divscope"))
-    dig = load_driver(find_driver("scpi-digitizer"))
+    dig = load_driver(find_driver("scpi-digitiser"))
     window, n, share, range_v = 2e-4, 2000, 0.2, 1.0
     # Reference: plain Python arithmetic of the DEVELOPERS.md tables: 10 horizontal divisions span the
     # window, 8 vertical divisions span offset ± range; the DIG's pre-trigger is a negative sample offset.
@@ -88,7 +88,7 @@ def test_commands_follow_the_per_division_and_share_conventions():
 ])
 def test_values_cannot_carry_a_second_command(operation, inputs, field):
     # IEEE 488.2 §7.5 / SCPI-1999 §6.2.4: NL ends a message, ';' and ':' start a new unit or header.
-    dig = load_driver(find_driver("scpi-digitizer"))
+    dig = load_driver(find_driver("scpi-digitiser"))
     with pytest.raises(ConfigError) as info:
         dig.commands(operation, **inputs)  # raises before any command text exists, so nothing can be sent
     assert info.value.field == field
@@ -98,7 +98,7 @@ def test_values_cannot_carry_a_second_command(operation, inputs, field):
 # --- validation: each mistake is one line naming file and field ------------------------------------------
 
 def test_malformed_toml_names_the_file(tmp_path):
-    path = variant(tmp_path, "scpi-digitizer", 'role = "scope"', 'role = "scope')
+    path = variant(tmp_path, "scpi-digitiser", 'role = "scope"', 'role = "scope')
     with pytest.raises(tomllib.TOMLDecodeError):  # reference: tomllib refuses the same text
         tomllib.loads(path.read_text())
     with pytest.raises(ConfigError) as info:
@@ -107,27 +107,27 @@ def test_malformed_toml_names_the_file(tmp_path):
 
 
 @pytest.mark.parametrize("name, old, new, field, says", [
-    ("scpi-digitizer", "[operations.arm]", "[operations.shoot]", "operations.shoot",
+    ("scpi-digitiser", "[operations.arm]", "[operations.shoot]", "operations.shoot",
      "allowed: timebase, channel, trigger, arm, abort"),
-    ("scpi-digitizer", "{window_s:float}", "{window_s}", "operations.timebase.commands[0]",
+    ("scpi-digitiser", "{window_s:float}", "{window_s}", "operations.timebase.commands[0]",
      "write {window_s:TYPE} with TYPE one of float, int, bool, enum, channel"),
-    ("scpi-digitizer", "{window_s:float}", "{window_ms:float}", "operations.timebase.commands[0]",
+    ("scpi-digitiser", "{window_s:float}", "{window_ms:float}", "operations.timebase.commands[0]",
      "not an input here"),
-    ("scpi-digitizer", '[operations.arm]\ncommands = ["INITiate"]', "", "operations.arm",
+    ("scpi-digitiser", '[operations.arm]\ncommands = ["INITiate"]', "", "operations.arm",
      "required operation missing"),
-    ("scpi-digitizer", "{coupling:enum}", "{coupling:float}", "operations.channel.commands[2]",
+    ("scpi-digitiser", "{coupling:enum}", "{coupling:float}", "operations.channel.commands[2]",
      "must have type enum"),
-    ("scpi-digitizer", 'rising = "POSitive"', 'rissing = "POSitive"', "enums.slope.rissing",
+    ("scpi-digitiser", 'rising = "POSitive"', 'rissing = "POSitive"', "enums.slope.rissing",
      "allowed: rising, falling"),
-    ("scpi-digitizer", 'done = "1"', 'done = "1"\npoll_every_s = 0.1', "wait.poll_every_s",
+    ("scpi-digitiser", 'done = "1"', 'done = "1"\npoll_every_s = 0.1', "wait.poll_every_s",
      "unknown key"),
-    ("scpi-digitizer", "'^acqd-sim,DIG,'", "'^acqd-sim,(DIG'", "driver.idn", "regular expression"),
-    ("scpi-digitizer", 'format = "REAL,32"', 'format = "REAL,64"', "fetch.format", "allowed"),
+    ("scpi-digitiser", "'^acqd-sim,DIG,'", "'^acqd-sim,(DIG'", "driver.idn", "regular expression"),
+    ("scpi-digitiser", 'format = "REAL,32"', 'format = "REAL,64"', "fetch.format", "allowed"),
     ("divscope", '"window_s / 10"', '"__import__(\'os\').getcwd()"', "operations.timebase.computed",
      "only calls like round(x)"),
     ("divscope", '"window_s / 10"', '"window.s / 10"', "operations.timebase.computed", "not allowed"),
     ("divscope", '"window_s / 10"', '"span_s / 10"', "operations.timebase.computed", "names allowed here"),
-    ("scpi-digitizer", "max_pretrigger_fraction = 1.0", "", "limits.max_pretrigger_fraction", "missing"),
+    ("scpi-digitiser", "max_pretrigger_fraction = 1.0", "", "limits.max_pretrigger_fraction", "missing"),
     ("scpi-generator", '"FREQuency {frequency_hz:float}"', '"FREQuency {frequency_hz:float}\\n*RST"',
      "operations.frequency.commands[0]", "one line"),
     # A second message unit after ';' (IEEE 488.2 §7.1, program message unit separator, from memory) would
@@ -140,9 +140,9 @@ def test_malformed_toml_names_the_file(tmp_path):
     ("scpi-generator", "high_z = 10.0", "high_z = 1e308", "limits.max_level_v.high_z", "at most 60"),
     ("scpi-generator", "max_frequency_hz = 1e6", "max_frequency_hz = 1e300", "limits.max_frequency_hz",
      "at most"),
-    ("scpi-digitizer", "max_samples = 10_000_000", "max_samples = 10_000_000_000", "limits.max_samples",
+    ("scpi-digitiser", "max_samples = 10_000_000", "max_samples = 10_000_000_000", "limits.max_samples",
      "to 10000000"),
-    ("scpi-digitizer", 'channels = { CH1 = 1', 'hooks = { after_fetch = "os:system" }\nchannels = { CH1 = 1',
+    ("scpi-digitiser", 'channels = { CH1 = 1', 'hooks = { after_fetch = "os:system" }\nchannels = { CH1 = 1',
      "driver.hooks.after_fetch", "not allowed"),
 ])
 def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new, field, says):
@@ -171,7 +171,7 @@ def test_a_refused_hook_runs_no_code(tmp_path, monkeypatch):
                                               "    return volts, timebase\n")
     monkeypatch.syspath_prepend(str(tmp_path))
     monkeypatch.delenv("ACQD_HOOK_MODULES", raising=False)
-    path = variant(tmp_path, "scpi-digitizer", 'channels = { CH1 = 1',
+    path = variant(tmp_path, "scpi-digitiser", 'channels = { CH1 = 1',
                    'hooks = { after_fetch = "bench_quirks:fix" }\nchannels = { CH1 = 1')
     with pytest.raises(ConfigError, match="ACQD_HOOK_MODULES"):
         load_driver(path)
@@ -182,7 +182,7 @@ def test_a_refused_hook_runs_no_code(tmp_path, monkeypatch):
 
 def test_own_hooks_module_is_allowed_without_the_environment(tmp_path, monkeypatch):
     monkeypatch.delenv("ACQD_HOOK_MODULES", raising=False)
-    path = variant(tmp_path, "scpi-digitizer", 'channels = { CH1 = 1',
+    path = variant(tmp_path, "scpi-digitiser", 'channels = { CH1 = 1',
                    'hooks = { after_fetch = "acqd.instruments.hooks:invert" }\nchannels = { CH1 = 1')
     assert load_driver(path).hooks["after_fetch"].__name__ == "invert"
 

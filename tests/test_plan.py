@@ -133,10 +133,10 @@ def test_the_demo_profiles_need_no_warning(capsys: pytest.CaptureFixture):
 
 
 def test_the_driver_limit_clamps_samples_and_says_so(tmp_path: Path):
-    driver = (ROOT / "drivers" / "scpi-digitizer.toml").read_text().replace("max_samples = 10_000_000",
+    driver = (ROOT / "drivers" / "scpi-digitiser.toml").read_text().replace("max_samples = 10_000_000",
                                                                              "max_samples = 1000")
     (tmp_path / "small-scope.toml").write_text(driver)
-    path = copy_profile(tmp_path, BRIDGE, ('driver = "scpi-digitizer"', f'driver = "{tmp_path / "small-scope.toml"}"'))
+    path = copy_profile(tmp_path, BRIDGE, ('driver = "scpi-digitiser"', f'driver = "{tmp_path / "small-scope.toml"}"'))
     plan = make_plan(load_profile(path))
     assert plan.value("acquisition.samples") == 1000
     assert any("clamped to the driver's max_samples 1000" in n for n in plan.notes)

@@ -31,7 +31,7 @@ from acqd.sim.replay import ReplayBench
 from acqd.steptest import run_step_test
 from acqd.store import RecordStore, open_records
 
-DIGITIZER = Path(__file__).resolve().parents[1] / "drivers" / "scpi-digitizer.toml"  # REAL,32 big-endian
+DIGITISER = Path(__file__).resolve().parents[1] / "drivers" / "scpi-digitiser.toml"  # REAL,32 big-endian
 N_NIGHT = 3
 WINDOW_S, SAMPLES, SHARE = 400e-6, 4000, 0.2  # sample interval 100 ns, 800 pre-trigger samples
 # The demo bench (CH1 v_src, CH2 v_c, CH3 across the 27 ohm resistor) with its noise, jitter, bandwidth and
@@ -42,7 +42,7 @@ kind = "simulated"
 [bench.generator]
 driver = "scpi-generator"
 [bench.scope]
-driver = "scpi-digitizer"
+driver = "scpi-digitiser"
 [bench.simulated]
 seed = 11
 
@@ -88,12 +88,12 @@ def write_profile(directory: Path, averages: int = 1) -> Profile:
 
 
 def formatted_driver(directory: Path, scpi_format: str, fetch_format: str) -> Path:
-    """The digitizer driver with another data format (the same instrument, set up differently)."""
-    text = DIGITIZER.read_text()
+    """The digitiser driver with another data format (the same instrument, set up differently)."""
+    text = DIGITISER.read_text()
     assert '"FORMat REAL,32"' in text and 'format = "REAL,32"' in text
     text = text.replace('"FORMat REAL,32"', f'"FORMat {scpi_format}"').replace(
         'format = "REAL,32"', f'format = "{fetch_format}"')
-    path = directory / f"scpi-digitizer-{fetch_format.replace(',', '').lower()}.toml"
+    path = directory / f"scpi-digitiser-{fetch_format.replace(',', '').lower()}.toml"
     path.write_text(text)
     return path
 
@@ -129,7 +129,7 @@ def night(tmp_path_factory) -> tuple[Path, list[Record]]:
     """A store of three records (REAL,32), and the records as read back from it."""
     directory = tmp_path_factory.mktemp("replay")
     path = directory / "night.h5"
-    records = stored(take_records(write_profile(directory), "scpi-digitizer", N_NIGHT), path)
+    records = stored(take_records(write_profile(directory), "scpi-digitiser", N_NIGHT), path)
     assert len({r.checksum() for r in records}) == N_NIGHT  # noise differs: each record is recognisable
     return path, records
 
@@ -185,7 +185,7 @@ def test_the_step_test_on_replay_gives_back_each_record_bit_for_bit(night, repla
     path, records = night
     bench = replay(path)
     gen = opened(bench.resources["generator"], "scpi-generator")
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     profile = write_profile(tmp_path)
     again = [record for _ in range(N_NIGHT) for record in run_step_test(profile, gen, scope)]
     for got, want in zip(again, records, strict=True):
@@ -193,11 +193,11 @@ def test_the_step_test_on_replay_gives_back_each_record_bit_for_bit(night, repla
     assert [c.source for c in records[0].channels][:3] == ["CH1", "CH2", "CH3"]
 
 
-def test_identity_is_one_the_digitizer_driver_accepts(night, replay, visa):
+def test_identity_is_one_the_digitiser_driver_accepts(night, replay, visa):
     path, _ = night
     bench = replay(path)
     idn = visa(bench.resources["scope"]).query("*IDN?")
-    pattern = tomllib.loads(DIGITIZER.read_text())["driver"]["idn"]
+    pattern = tomllib.loads(DIGITISER.read_text())["driver"]["idn"]
     assert re.search(pattern, idn)
     assert idn.split(",")[2] == "REPLAY-night"  # serial field: replay of store "night"
     assert len(idn) <= 72  # IEEE 488.2 §10.14 (from memory): at most 72 characters
@@ -208,7 +208,7 @@ def test_selected_records_in_the_order_given_then_the_acquisition_never_complete
                                                                                   tmp_path):
     path, records = night
     bench = replay(path, [2, 0])
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     profile = write_profile(tmp_path)
     configure_like(scope, records[0], profile)
     for want in (records[2], records[0]):
@@ -241,7 +241,7 @@ def test_settings_other_than_the_records_are_221_and_serve_nothing(night, replay
                                                                    words):
     path, records = night
     bench = replay(path)
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     scope.configure_timebase(*timebase)
     scope.configure_trigger("external", slope, 0.5)
     with pytest.raises(InstrumentError) as caught:
@@ -282,12 +282,12 @@ def test_a_format_that_cannot_carry_the_record_is_221(night, replay, opened, tmp
 def test_an_averaged_record_needs_ascii(tmp_path, replay, opened):
     """The mean of two float32 values is generally not a float32 value; ASCii's shortest round-trip
     decimals (IEEE 488.2 NR3) carry any double, so the replayed record is still bit for bit."""
-    averaged = stored(take_records(write_profile(tmp_path, averages=2), "scpi-digitizer", 1), tmp_path / "avg.h5")[0]
+    averaged = stored(take_records(write_profile(tmp_path, averages=2), "scpi-digitiser", 1), tmp_path / "avg.h5")[0]
     assert averaged.averages == 2
     profile = write_profile(tmp_path)  # the client captures each record once
 
     bench = replay(tmp_path / "avg.h5")
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     configure_like(scope, averaged, profile)
     with pytest.raises(InstrumentError) as caught:
         scope.arm()
@@ -302,7 +302,7 @@ def test_an_averaged_record_needs_ascii(tmp_path, replay, opened):
 def test_trace_of_an_input_the_record_lacks_is_221(night, replay, opened, visa, tmp_path):
     path, records = night
     bench = replay(path)
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     configure_like(scope, records[0], write_profile(tmp_path))
     scope.arm()
     scope.wait(2.0)

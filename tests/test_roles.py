@@ -18,7 +18,7 @@ from acqd.instruments import Generator, Scope, open_instrument
 from acqd.record import Stimulus
 
 DRIVERS = Path(__file__).resolve().parents[1] / "drivers"
-DIALECTS = {"scpi-digitizer": "scope", "divscope": "divscope"}  # driver → simulated bench resource
+DIALECTS = {"scpi-digitiser": "scope", "divscope": "divscope"}  # driver → simulated bench resource
 # The demo DUT (acqd.sim.bench.DEMO_DUT) behind the generator's 50 ohm source resistance.
 R_OHM, L_H, C_F = 27.0 + 50.0, 3.3e-3, 68e-9
 WINDOW_S, N, SHARE = 400e-6, 4000, 0.1
@@ -93,7 +93,7 @@ def test_same_code_both_dialects_gives_the_textbook_step(bench, opened, generato
         expected = v_c_step(timebase.times(), 1.0)
         assert np.max(np.abs(volts - expected)) <= LSB_V / 2 + 1e-6
         captured[driver] = volts
-    assert np.max(np.abs(captured["scpi-digitizer"] - captured["divscope"])) <= LSB_V
+    assert np.max(np.abs(captured["scpi-digitiser"] - captured["divscope"])) <= LSB_V
 
 
 def test_generator_applies_in_order_and_reads_back(bench, opened):
@@ -133,7 +133,7 @@ def test_refused_stimulus_sends_nothing(bench, opened, stimulus, field):
 
 
 def test_instrument_refusal_is_read_from_the_error_queue(bench, opened):
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     with pytest.raises(InstrumentError) as info:
         scope.configure_channel("CH1", 500.0, 0.0, "dc")  # the simulated DIG spans at most ±100 V
     text = one_line(info.value)
@@ -155,8 +155,8 @@ def test_trigger_that_never_comes_times_out_then_the_next_capture_works(bench, o
     assert np.max(np.abs(volts - v_c_step(timebase.times(), 1.0))) <= LSB_V / 2 + 1e-6
 
 
-def test_trigger_never_fault_on_the_digitizer(bench, opened, generator):
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+def test_trigger_never_fault_on_the_digitiser(bench, opened, generator):
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     bench.scope.faults.trigger_never = True
     with pytest.raises(InstrumentError) as info:
         acquire(scope, timeout_s=0.3)
@@ -167,7 +167,7 @@ def test_trigger_never_fault_on_the_digitizer(bench, opened, generator):
 
 def test_wrong_driver_for_the_instrument_is_refused(bench):
     with pytest.raises(InstrumentError) as info:
-        open_instrument(bench.resources["divscope"], "scpi-digitizer")
+        open_instrument(bench.resources["divscope"], "scpi-digitiser")
     text = one_line(info.value)
     assert text.startswith(bench.resources["divscope"]) and "identifies as 'acqd-sim,DIVSCOPE" in text
 
@@ -188,7 +188,7 @@ def test_scope_settings_read_back_in_role_units(bench, opened, driver):
 
 
 def test_bad_role_values_are_one_line_and_send_nothing(bench, opened):
-    scope = opened(bench.resources["scope"], "scpi-digitizer")
+    scope = opened(bench.resources["scope"], "scpi-digitiser")
     with pytest.raises(ConfigError) as info:
         scope.configure_timebase(WINDOW_S, 20_000_000, SHARE)
     assert "limits.n_samples" in one_line(info.value)
@@ -199,9 +199,9 @@ def test_bad_role_values_are_one_line_and_send_nothing(bench, opened):
 
 
 def driver_variant(tmp_path: Path, old: str, new: str) -> Path:
-    text = (DRIVERS / "scpi-digitizer.toml").read_text()
+    text = (DRIVERS / "scpi-digitiser.toml").read_text()
     assert old in text
-    path = tmp_path / "digitizer-variant.toml"
+    path = tmp_path / "digitiser-variant.toml"
     path.write_text(text.replace(old, new, 1))
     return path
 
@@ -209,7 +209,7 @@ def driver_variant(tmp_path: Path, old: str, new: str) -> Path:
 def test_ascii_format_gives_the_same_volts(bench, opened, generator, tmp_path):
     ascii_driver = driver_variant(tmp_path, 'commands = ["FORMat REAL,32"', 'commands = ["FORMat ASCii"')
     ascii_driver.write_text(ascii_driver.read_text().replace('format = "REAL,32"', 'format = "ASCii"'))
-    binary, _ = acquire(opened(bench.resources["scope"], "scpi-digitizer"))
+    binary, _ = acquire(opened(bench.resources["scope"], "scpi-digitiser"))
     text, _ = acquire(opened(bench.resources["scope"], ascii_driver))
     # REAL,32 carries float32; ASCii the float64 value: they differ by float32 rounding only (numpy finfo).
     assert np.allclose(binary, text, rtol=float(np.finfo(np.float32).eps), atol=1e-7)
@@ -223,6 +223,6 @@ def test_after_fetch_hook_is_called(bench, opened, generator, tmp_path, monkeypa
     monkeypatch.setenv("ACQD_HOOK_MODULES", "quirk_hook")
     hooked = driver_variant(tmp_path, 'channels = { CH1 = 1', 'hooks = { after_fetch = "quirk_hook:invert" }\n'
                                                              'channels = { CH1 = 1')
-    plain, _ = acquire(opened(bench.resources["scope"], "scpi-digitizer"))
+    plain, _ = acquire(opened(bench.resources["scope"], "scpi-digitiser"))
     inverted, _ = acquire(opened(bench.resources["scope"], hooked))
     np.testing.assert_array_equal(inverted, -plain)

@@ -213,10 +213,10 @@ def test_sigterm_switches_the_output_off_and_keeps_the_file(tmp_path: Path) -> N
 
 
 BAD_WITH_BENCH = [
-    (('driver = "scpi-digitizer"', 'driver = "no-such-scope"'), ["bench.scope.driver", "no-such-scope"]),
+    (('driver = "scpi-digitiser"', 'driver = "no-such-scope"'), ["bench.scope.driver", "no-such-scope"]),
     (('CH3 = "v_c"', 'CH3 = "v_q"'), ["wiring.CH3", "v_q"]),
     (("r_ohm = 22.4", "r_ohm = -22.4"), ["bench.simulated.dut", "r_ohm", "greater than 0"]),
-    (('driver = "scpi-digitizer"', 'driver = "scpi-generator"'), ["bench.scope.driver", "generator driver"]),
+    (('driver = "scpi-digitiser"', 'driver = "scpi-generator"'), ["bench.scope.driver", "generator driver"]),
 ]
 
 

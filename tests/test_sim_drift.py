@@ -59,7 +59,7 @@ def capturing(bench: SimBench) -> Iterator[Scope]:
     """The scope of ``bench`` set to capture v_C (CH2 on the demo bench), a 0 → 1 V, 100 Hz square wave on
     (half period 5 ms ≫ 8L/R = 0.34 ms)."""
     with open_instrument(bench.resources["generator"], "scpi-generator") as gen, \
-            open_instrument(bench.resources["scope"], "scpi-digitizer") as scope:
+            open_instrument(bench.resources["scope"], "scpi-digitiser") as scope:
         gen.apply_stimulus(Stimulus("square", 0.0, 1.0, 100.0, "rising"))
         gen.output(True)
         scope.configure_timebase(WINDOW_S, N, SHARE)

@@ -1,4 +1,4 @@
-"""The simulated generator, the SCPI-1999 digitizer and the second-dialect scope, over TCP through pyvisa-py.
+"""The simulated generator, the SCPI-1999 digitiser and the second-dialect scope, over TCP through pyvisa-py.
 
 External references: the series RLC step response (STANDARDS.md §5, textbook), the generator's matched-load
 doubling (STANDARDS.md §5 bench cautions), scipy (first-order low-pass, frequency response), numpy's
@@ -162,7 +162,7 @@ def test_command_log_records_every_message_in_order(sim_bench, visa, tmp_path):
     assert [line.split("\t")[2] for line in lines] == sent + ["*OPC?"]
 
 
-# --- the SCPI-1999 digitizer -------------------------------------------------------------------------------
+# --- the SCPI-1999 digitiser -------------------------------------------------------------------------------
 
 def test_trigger_on_the_edge_with_pre_trigger_samples(sim_bench, visa, quiet_table):
     bench = sim_bench({**quiet_table, "quantise": False})
@@ -420,7 +420,7 @@ def test_garbled_header_and_dropped_block_faults(quiet):
 
 # --- the second dialect ------------------------------------------------------------------------------------
 
-def test_divscope_gives_the_same_volts_as_the_digitizer(quiet):
+def test_divscope_gives_the_same_volts_as_the_digitiser(quiet):
     _, gen, scope, view = quiet
     square(gen, 0.0, 1.0)
     assert capture(scope, time_s=1e-3, points=1000, pre=100, range_v=1.6, offset_v=0.8) == "1"

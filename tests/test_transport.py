@@ -260,7 +260,7 @@ def test_a_library_path_from_a_profile_is_never_loaded(constructor_library, tmp_
     profile.write_text(text.replace('kind = "simulated"', 'kind = "visa"').replace(
         'driver = "scpi-generator"', f'driver = "scpi-generator"\nresource = "TCPIP0::127.0.0.1::1::SOCKET"'
         f'\nbackend = "{library}"', 1).replace(
-        'driver = "scpi-digitizer"', 'driver = "scpi-digitizer"\nresource = "TCPIP0::127.0.0.1::2::SOCKET"', 1))
+        'driver = "scpi-digitiser"', 'driver = "scpi-digitiser"\nresource = "TCPIP0::127.0.0.1::2::SOCKET"', 1))
     with pytest.raises(ConfigError) as info:
         load_profile(profile)
     assert "bench.generator.backend" in one_line(info.value) and "@py" in one_line(info.value)

@@ -159,7 +159,7 @@ class Generator(_Role):
 
 
 class Scope(_Role):
-    """A digitizer capturing the response, triggered by the stimulus edge; fetches volts with t = 0 at the trigger."""
+    """A digitiser capturing the response, triggered by the stimulus edge; fetches volts with t = 0 at the trigger."""
 
     role = "scope"
 

@@ -42,7 +42,7 @@ def _driver_files() -> dict[str, Path]:
 
 
 def find_driver(name_or_path: str | Path, source: str | None = None) -> Path:
-    """A driver file by name (``scpi-digitizer``) or by path; ConfigError lists what exists.
+    """A driver file by name (``scpi-digitiser``) or by path; ConfigError lists what exists.
 
     ``source`` is where the name was written (``"night.toml: bench.scope.driver"``), for the message.
     """

@@ -65,7 +65,7 @@ from ..models import BUILDERS, Signal, StateSpace, build_model, parameter_infos
 from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant
-from .scope import N_CHANNELS, DigitizerScope
+from .scope import N_CHANNELS, DigitiserScope
 from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
 from .divscope import DivScope
 
@@ -283,7 +283,7 @@ class SimBench(ServedBench):
         self._plant = Plant(self.config.model)
         self.plant_source: Callable[[], Plant] = self._drifted_plant if self.config.drift else lambda: self._plant
         self.generator: Generator | None = None
-        self.scope: DigitizerScope | None = None
+        self.scope: DigitiserScope | None = None
         self.divscope: DivScope | None = None
         self._started_s: float | None = None
 
@@ -327,7 +327,7 @@ class SimBench(ServedBench):
     def create_instruments(self) -> dict[str, SCPIInstrument]:
         scope_seed, divscope_seed = np.random.SeedSequence(self.config.seed).spawn(2)
         self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
-        self.scope = DigitizerScope(self, np.random.default_rng(scope_seed))
+        self.scope = DigitiserScope(self, np.random.default_rng(scope_seed))
         self.divscope = DivScope(self, np.random.default_rng(divscope_seed))
         self._started_s = time.monotonic()
         return {"generator": self.generator, "scope": self.scope, "divscope": self.divscope}

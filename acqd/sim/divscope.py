@@ -1,7 +1,7 @@
 """The second scope dialect ``acqd-sim,DIVSCOPE``: per-division settings, integer codes only, its own
 arming and a state poll (``CATCh:STATe?``) instead of ``*OPC?``.
 
-It is deliberately unlike the SCPI-1999 digitizer, so that the driver layer is exercised on a dialect it
+It is deliberately unlike the SCPI-1999 digitiser, so that the driver layer is exercised on a dialect it
 cannot map one to one. Underneath it is the same acquisition engine and front end, so the same capture
 through either dialect gives the same volts.
 """

@@ -2,11 +2,11 @@
 
 Why: a profile, a driver or the comparator can be run again on yesterday's records with the bench switched
 off, through exactly the client code that took them. The replay scope *is* the DIG scope — the same
-command set, status registers, error queue and server (``DigitizerScope``), answering to the same
-driver (``drivers/scpi-digitizer.toml``) — with one difference: where an armed acquisition's samples
+command set, status registers, error queue and server (``DigitiserScope``), answering to the same
+driver (``drivers/scpi-digitiser.toml``) — with one difference: where an armed acquisition's samples
 come from. What a client can observe, and so what is promised:
 
-* ``*IDN?`` is ``acqd-sim,DIG,REPLAY-<store file stem>,<acqd version>``, so the ``scpi-digitizer``
+* ``*IDN?`` is ``acqd-sim,DIG,REPLAY-<store file stem>,<acqd version>``, so the ``scpi-digitiser``
   driver accepts it and a profile needs no change.
 * One stored record per armed acquisition (``INITiate``), in store order or in the order asked for
   (``records=[2, 0, 5]``; an index may repeat). It completes at once: there is no plant and no edge to
@@ -52,7 +52,7 @@ from ..record import Record
 from ..store import open_records
 from .bench import ServedBench
 from .generator import Generator
-from .scope import (N_CHANNELS, CaptureRequest, Captured, DigitizerScope, channel_scaling, completed,
+from .scope import (N_CHANNELS, CaptureRequest, Captured, DigitiserScope, channel_scaling, completed,
                     trace_reply, word_bits)
 from .server import SCPIError, SCPIInstrument
 
@@ -238,7 +238,7 @@ class ReplayAcquisition:
             self._on_complete()
 
 
-class ReplayScope(DigitizerScope):
+class ReplayScope(DigitiserScope):
     """``acqd-sim,DIG`` whose acquisitions are stored records (see the module docstring)."""
 
     def __init__(self, bench: ReplayBench) -> None:

@@ -1,4 +1,4 @@
-"""The simulated digitizer ``acqd-sim,DIG`` (SCPI-1999 SENSe/TRIGger/INITiate/FORMat/TRACe subset) and the
+"""The simulated digitiser ``acqd-sim,DIG`` (SCPI-1999 SENSe/TRIGger/INITiate/FORMat/TRACe subset) and the
 acquisition engine both scope dialects share.
 
 An acquisition reads the bench as it is: the generator's settings and the plant "now". With the EXTernal
@@ -289,24 +289,24 @@ def trace_reply(values: np.ndarray, fmt: str, byteorder: str) -> bytes | str:
 
 
 # ---------------------------------------------------------------------------------------------------
-# The SCPI-1999 digitizer
+# The SCPI-1999 digitiser
 # ---------------------------------------------------------------------------------------------------
 
 @dataclass
-class DigitizerChannel:
+class DigitiserChannel:
     range_v: float = 1.0     # half the span: the channel shows offset ± range
     offset_v: float = 0.0
     coupling: str = "DC"
 
 
 @dataclass
-class DigitizerSettings:
+class DigitiserSettings:
     """The ``*RST`` state."""
 
     sweep_time_s: float = 1e-3
     points: int = 1000
     offset_points: int = -100
-    channels: list[DigitizerChannel] = field(default_factory=lambda: [DigitizerChannel() for _ in range(N_CHANNELS)])
+    channels: list[DigitiserChannel] = field(default_factory=lambda: [DigitiserChannel() for _ in range(N_CHANNELS)])
     trigger_source: str = "EXTernal"
     slope: str = "POSitive"
     level_v: float = 0.0
@@ -320,7 +320,7 @@ _FORMAT_KIND = Choice(("REAL", "INTeger", "ASCii"))
 _FORMAT_BITS = Integer(minimum=1, maximum=64, optional=True)
 
 
-class DigitizerScope(SCPIInstrument):
+class DigitiserScope(SCPIInstrument):
     MODEL = "DIG"
     COMMANDS = (
         setting("[SENSe:]SWEep:TIME", "sweep_time_s", Number("S", 1e-9, 1e3, default=1e-3)),
@@ -354,8 +354,8 @@ class DigitizerScope(SCPIInstrument):
         substitutes one that serves stored records, keeping this command set (``acqd.sim.replay``)."""
         return Acquisition(self.bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
 
-    def make_settings(self) -> DigitizerSettings:
-        return DigitizerSettings()
+    def make_settings(self) -> DigitiserSettings:
+        return DigitiserSettings()
 
     def reset(self) -> None:
         self.acquisition.abort()

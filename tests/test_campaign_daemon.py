@@ -292,6 +292,60 @@ def test_sigterm_switches_the_output_off_and_exits_0(tmp_path: Path) -> None:
     assert not list(data.glob("*.part"))  # the live segment was finished and renamed on the way out
 
 
+def status_json(data: Path, capsys: pytest.CaptureFixture) -> dict[str, Any]:
+    assert main(["status", "-d", str(data), "--json"]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def test_status_names_the_next_slot_with_its_own_time_and_says_stopped_after_sigterm(
+        tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    every_s = 0.5
+    profile = write_profile(tmp_path / "st.toml", f'name = "st"\nevery_s = {every_s}\nslots = 1000\n')
+    data = tmp_path / "data"
+    process = daemon_process(profile, data)
+    wait_for_records(data, 2, process)
+    anchor = datetime.fromisoformat(ledger_rows(data, "SELECT anchor_utc FROM acqd_campaigns")[0][0])
+    for _ in range(12):  # polled while slots run and between them: a slot takes a good part of its 0.5 s
+        (st,) = status_json(data, capsys)["campaigns"]
+        assert st["state"] == "active"
+        if st["next_utc"] is not None:  # the next wake-up is the next slot's own time (whole seconds shown)
+            due = anchor + (st["next_slot"] - 1) * timedelta(seconds=every_s)
+            assert st["next_utc"] == due.isoformat(timespec="seconds"), (st, due)
+        time.sleep(0.1)
+    process.send_signal(signal.SIGTERM)
+    out, err = process.communicate(timeout=30)
+    assert process.returncode == 0, err
+
+    status = status_json(data, capsys)
+    (st,) = status["campaigns"]
+    assert status["daemon_pid"] is None
+    assert (st["state"], st["next_utc"]) == ("stopped", None)  # not "active" with a time already past
+    assert main(["status", "-d", str(data)]) == 0
+    text = capsys.readouterr().out
+    assert "no daemon running" in text and "stopped" in text
+    # A clean exit leaves no lock file, no SQLite write-ahead log or shared-memory file (sqlite.org/wal.html:
+    # the last connection to close removes them) and no live segment.
+    left = sorted(p.name for p in data.iterdir() if p.suffix in (".lock", ".part") or p.name.endswith(("-wal", "-shm")))
+    assert left == [], left
+
+
+def test_a_running_slot_is_not_shown_as_next() -> None:
+    """While slot 3 runs, APScheduler has already moved the job to slot 4's time: the next slot is 4."""
+    from acqd.campaign.ledger import SCHEMA
+    from acqd.campaign.status import campaign_statuses
+
+    conn = sqlite3.connect(":memory:")
+    conn.executescript(SCHEMA)
+    conn.execute("INSERT INTO acqd_campaigns VALUES ('c', 'p.toml', '', '{}', 'every 60 s', 'c.h5', "
+                 "'2026-12-04T00:00:00+00:00', 10, 1, '2026-12-04T00:00:00+00:00', NULL)")
+    for slot, state in ((1, "done"), (2, "done"), (3, "running")):
+        conn.execute("INSERT INTO acqd_slots (campaign, slot, first_slot, state) VALUES ('c', ?, ?, ?)",
+                     (slot, slot, state))
+    slot_4 = datetime.fromisoformat("2026-12-04T00:03:00+00:00")
+    (st,) = campaign_statuses(conn, {"c": slot_4})
+    assert (st.slot_running, st.next_slot, st.next_utc) == (3, 4, slot_4.isoformat())
+
+
 def run_cli(args: list[str]) -> tuple[int, str]:
     process = subprocess.run([sys.executable, "-m", "acqd", *args], capture_output=True, text=True, timeout=60)
     return process.returncode, process.stderr
@@ -328,7 +382,7 @@ def test_job_store_that_is_not_a_database(tmp_path: Path) -> None:
     code, err = run_cli(["daemon", "--data-dir", str(data), str(profile)])
     assert code == 2 and err.count("\n") == 1, err
     assert "campaigns.sqlite" in err and "not a usable SQLite database" in err
-    assert sorted(p.name for p in data.iterdir()) == ["campaigns.sqlite", "daemon.lock"]  # no store, no run log
+    assert sorted(p.name for p in data.iterdir()) == ["campaigns.sqlite"]  # no store, no run log, no lock left
     assert (data / "campaigns.sqlite").read_text().startswith("these are my notes")  # left as it was
 
 

@@ -12,7 +12,6 @@ The slot that was interrupted is completed when the daemon starts again.
 
 from __future__ import annotations
 
-import fcntl
 import json
 import os
 import signal
@@ -32,6 +31,7 @@ from rich.text import Text
 from ..errors import ConfigError
 from ..plan import ready_profile
 from ..profile import Profile
+from ..store.lockfile import release_lock, take_lock
 from .ledger import FILENAME, Ledger, open_database
 from .runlog import RunLog, utc_now
 from .runner import CampaignRunner, StopFlag
@@ -85,20 +85,17 @@ def _resources(profile: Profile) -> list[str]:
 def daemon_lock(data_dir: Path) -> Iterator[None]:
     """One daemon per data directory: the ledger and the stores have one writer each."""
     path = data_dir / LOCKFILE
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        os.close(fd)
+    fd = take_lock(path)
+    if fd is None:
         holder = path.read_text().strip() or "?"
         raise ConfigError(str(data_dir), "", f"another acqd daemon (pid {holder}) is using this data directory; "
-                                             "stop it first or give another --data-dir directory") from None
+                                             "stop it first or give another --data-dir directory")
     try:
         os.ftruncate(fd, 0)
         os.write(fd, f"{os.getpid()}\n".encode())
         yield
     finally:
-        os.close(fd)
+        release_lock(path, fd)
 
 
 @contextmanager

@@ -81,11 +81,16 @@ def verdict_text(analysis: dict[str, Any] | None) -> str:
     return verdict if isinstance(verdict, str) else ""
 
 
-def open_database(path: Path, *, readonly: bool = False) -> sqlite3.Connection:
-    """A connection to ``path``, refused in one line when the file is not an SQLite database."""
+def open_database(path: Path, *, readonly: bool = False, settled: bool = False) -> sqlite3.Connection:
+    """A connection to ``path``, refused in one line when the file is not an SQLite database.
+
+    ``settled`` (read-only): no process writes the database and it has no write-ahead log, so it is opened
+    as immutable. A plain read-only connection to a WAL database creates ``-wal`` and ``-shm`` files that
+    only a writer removes (sqlite.org/wal.html), and ``acqd status`` after a clean stop would leave them."""
     try:
         if readonly:
-            conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=10.0, check_same_thread=False)
+            uri = f"{Path(path).absolute().as_uri()}?mode=ro" + ("&immutable=1" if settled else "")
+            conn = sqlite3.connect(uri, uri=True, timeout=10.0, check_same_thread=False)
         else:
             conn = sqlite3.connect(path, timeout=10.0, check_same_thread=False)
         conn.execute("PRAGMA schema_version").fetchone()  # reads the header: fails on a non-database

@@ -33,7 +33,7 @@ class CampaignStatus:
     profile: str
     schedule: str
     store: str
-    state: str  # "active", "finished", or "paused" (no daemon runs it)
+    state: str  # "active"; "finished"; "paused": the running daemon does not run it; "stopped": no daemon runs
     total_slots: int | None
     steps_per_slot: int
     slots_done: int = 0
@@ -82,11 +82,16 @@ def collect(data_dir: str | Path) -> list[CampaignStatus]:
     if not database.is_file():
         raise ConfigError(str(data_dir), "", f"no campaign database ({FILENAME}) here; is this the daemon's --data-dir "
                                              "directory?")
-    conn = open_database(database, readonly=True)
+    running = daemon_pid(data_dir) is not None
+    settled = not running and not Path(f"{database}-wal").exists()  # after a kill the log holds the last rows
+    conn = open_database(database, readonly=True, settled=settled)
     try:
         statuses = campaign_statuses(conn, next_run_times(conn))
     finally:
         conn.close()
+    if not running:
+        for status in statuses:
+            _stopped(status)
     last_events = _last_events(data_dir / RUNLOG)
     for status in statuses:
         status.last_event = last_events.get(status.name)
@@ -134,7 +139,7 @@ def _slot_counts(conn: sqlite3.Connection, s: CampaignStatus) -> None:
     s.slot_running = running[0] if running else None
     last = conn.execute("SELECT MAX(slot) FROM acqd_slots WHERE campaign = ?", (s.name,)).fetchone()[0] or 0
     if s.total_slots is None or last < s.total_slots:
-        s.next_slot = last + 1 if s.slot_running is None else last
+        s.next_slot = last + 1  # a running slot has its row already; APScheduler's next wake-up is the one after
 
 
 def _record_counts(conn: sqlite3.Connection, s: CampaignStatus) -> None:
@@ -164,6 +169,13 @@ def _next(s: CampaignStatus, next_times: dict[str, datetime | None]) -> None:
         return
     times = [t for key in (s.name, s.name + START_SUFFIX) if (t := next_times.get(key)) is not None]
     s.next_utc = min(times).isoformat(timespec="seconds") if times else None
+
+
+def _stopped(s: CampaignStatus) -> None:
+    """With no daemon running, an unfinished campaign waits for a start: no wake-up time is coming, so none
+    is shown (the job store still holds the one it had, which is in the past by now)."""
+    if s.state != "finished":
+        s.state, s.next_utc = "stopped", None
 
 
 def _last_events(runlog: Path) -> dict[str, dict[str, Any]]:

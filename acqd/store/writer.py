@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import fcntl
 import os
 from pathlib import Path
 
 from ..errors import ConfigError
 from ..record import Record
 from . import faults
+from .lockfile import release_lock, take_lock
 from .naming import CREATING, LIVE, StorePaths, fsync_file, replace_durably
 from .recovery import recover_store
 from .schema import Layout, encode
@@ -126,7 +126,7 @@ class RecordStore:
 
     def _release_lock(self) -> None:
         if self._lock_fd is not None:
-            os.close(self._lock_fd)  # closing the descriptor releases the flock
+            release_lock(self._paths.lock, self._lock_fd)
             self._lock_fd = None
 
     def __enter__(self) -> RecordStore:
@@ -137,11 +137,8 @@ class RecordStore:
 
 
 def _take_lock(paths: StorePaths) -> int:
-    fd = os.open(paths.lock, os.O_RDWR | os.O_CREAT, 0o644)
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        os.close(fd)
+    fd = take_lock(paths.lock)
+    if fd is None:
         problem = f"another process is writing this store (it holds {paths.lock})"
-        raise ConfigError(str(paths.path), "", problem) from None
+        raise ConfigError(str(paths.path), "", problem)
     return fd

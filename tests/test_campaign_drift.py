@@ -130,3 +130,22 @@ def test_drift_of_a_missing_store_is_one_line(tmp_path: Path, capsys: pytest.Cap
     assert main(["drift", str(tmp_path / "nothing.h5")]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "nothing.h5" in err and "no such record store" in err
+
+
+def test_the_drift_table_shows_symbols_and_si_prefixes_not_keys() -> None:
+    from rich.console import Console
+
+    from acqd.campaign.drift import DriftSummary, Series, Trend, drift_table
+
+    series = [Series("c_f", "parameter", "F", values=[1.0262e-7, 1.0975e-7],
+                     trend=Trend(2, 1.217e-6, (1.198e-6, 1.236e-6), 1e-8, 1.02e-7, 0.99, 1e-9, 7e-9)),
+              Series("v_c.overshoot_pct @ rising 0 V → 1 V", "metric", "%", values=[52.4, 52.5])]
+    summary = DriftSummary("s.h5", 2, 2, None, None, 0.1, "ols", series, [], [])
+    screen = Console(record=True, width=200)
+    screen.print(drift_table(summary))
+    text = screen.export_text()
+    # Prefixes from the SI Brochure (BIPM, 9th edition, table 7): 1e-9 nano, 1e-6 micro.
+    assert "102.62 nF" in text and "109.75 nF" in text and "1.217 µF/h" in text
+    assert "1.198 µF/h … 1.236 µF/h" in text
+    assert "v_c overshoot @ rising 0 V → 1 V" in text and "52.400 %" in text
+    assert "c_f" not in text and "overshoot_pct" not in text and "e-0" not in text

@@ -22,12 +22,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from rich.markup import escape
 from rich.table import Table
+from rich.text import Text
 from scipy import stats
 
 from ..compare import parse_dut_table
-from ..display import edge_label
+from ..display import UNPREFIXED, edge_label, label, si, unit_symbol
 from ..errors import AcqdError, ConfigError
 from ..store import open_records
 from .ledger import verdict_text
@@ -294,17 +294,34 @@ def _finite(value: Any) -> Any:
 
 
 def drift_table(summary: DriftSummary) -> Table:
+    """The series as a person reads them: symbols and SI-prefixed units (``C``, ``102.6 nF``), keys stay in JSON."""
     table = Table(title=f"{summary.store}: {summary.compared} compared record(s) over {summary.span_h:.3g} h",
                   show_edge=False, header_style="bold")
-    for column in ("series", "unit", "n", "first", "last", "slope per h", "95 % interval", "drift?", "outside"):
-        table.add_column(column)
+    for column in ("series", "n", "first", "last", "slope per h", "95 % interval of the slope", "drift?", "outside"):
+        table.add_column(column, justify="right" if column in ("n", "outside") else "left")
     for s in summary.series:
         t = s.trend
-        table.add_row(s.name, s.unit, str(len(s.values)), f"{s.values[0]:.5g}", f"{s.values[-1]:.5g}",
-                      f"{t.slope_per_h:.4g}" if t else "-", escape(f"[{t.ci95[0]:.4g}, {t.ci95[1]:.4g}]") if t else "-",
-                      ("[yellow]yes[/yellow]" if t.significant else "no") if t else "-",
-                      f"[red]{len(s.outside)}[/red]" if s.outside else "0")
+        table.add_row(Text(series_label(s.name)), str(len(s.values)), si(s.values[0], s.unit, 5),
+                      si(s.values[-1], s.unit, 5), per_hour(t.slope_per_h, s.unit) if t else "-",
+                      " … ".join(per_hour(v, s.unit) for v in t.ci95) if t else "-",
+                      Text("yes", style="yellow") if t and t.significant else ("no" if t else "-"),
+                      Text(str(len(s.outside)), style="red") if s.outside else "0")
     return table
+
+
+def per_hour(value: float, unit: str) -> str:
+    """A rate with its prefix on the unit it changes: ``1.059 µF/h``, ``-0.1512/h``, ``-16.06 %/h``."""
+    if unit_symbol(unit) in UNPREFIXED:
+        return f"{si(value, unit, 4)}/h"
+    return si(value, f"{unit_symbol(unit)}/h", 4)
+
+
+def series_label(name: str) -> str:
+    """``c_f`` → ``C``; ``v_c.overshoot_pct @ rising 0 V → 1 V`` → ``v_c overshoot @ rising 0 V → 1 V``."""
+    key, at, setting = name.partition(" @ ")
+    channel, dot, metric = key.rpartition(".")
+    shown = f"{channel} {label(metric)}" if dot else label(key)
+    return shown + (f" @ {setting}" if at else "")
 
 
 def write_outputs(summary: DriftSummary, out_dir: str | Path) -> list[Path]:

@@ -38,6 +38,7 @@ from scipy.optimize import least_squares
 from scipy.signal import fftconvolve
 from scipy.stats import t as student_t
 
+from ..display import key_unit, label, si
 from ..errors import AcqdError
 
 RANK_RTOL = 1e-6  # singular values below this share of the largest count as zero
@@ -118,7 +119,7 @@ def jacobian(fun: Callable[[np.ndarray], np.ndarray], theta: np.ndarray, step: f
 
 
 def _direction(names: Sequence[str], vector: np.ndarray, log: Sequence[bool]) -> str:
-    terms = [f"{v:+.2f}·{'Δln ' if lg else 'Δ'}{n}" for n, v, lg in zip(names, vector, log) if abs(v) >= 0.01]
+    terms = [f"{v:+.2f}·{'Δln ' if lg else 'Δ'}{label(n)}" for n, v, lg in zip(names, vector, log) if abs(v) >= 0.01]
     return " ".join(terms)
 
 
@@ -139,7 +140,7 @@ def _hold_unidentifiable(jac: np.ndarray, coords: _Coordinates, hold_order: Sequ
         pick = (preferred or by_share)[0]
         sub = coords.subset(keep)
         held[pick] = (f"not identifiable from the mapped channels: the residuals do not change along "
-                      f"{_direction(keep, vectors[0], sub.log)}; held at {nominal[pick]:g}")
+                      f"{_direction(keep, vectors[0], sub.log)}; held at {si(nominal[pick], key_unit(pick), 6, trim=True)}")
         keep.remove(pick)
     return keep, held
 

@@ -2,15 +2,17 @@
 
 The user names a store with one path, ``data/night.h5``. The files are, in ``data/``:
 
+``night.h5``                                 the overview: virtual datasets over the finished segments (overview.py)
 ``night.000000.h5``, ``night.000001.h5`` …   finished segments: plain HDF5, closed, never written again
 ``night.000002.h5.part``                     the live segment the writer appends to (SWMR)
 ``night.000003.h5.init``                     a segment being created; it never holds a record
 ``night.000002.h5.recovering``               a recovered copy being written; the ``.part`` is still there
 ``night.000002.h5.damaged``                  a segment recovery could not fully verify, kept for a human
-``night.h5.lock``                            held (flock) by the one writer of the store
+``night.h5.lock``                            held (flock) by the one writer of the store, removed on close
 
 Segment numbers only grow, so sorting by number is the order in which records were written. A path that
-is itself an existing file (``night.000001.h5``) is read as a store of that one segment.
+is itself an existing file other than the overview (``night.000001.h5``) is read as a store of that one
+segment.
 """
 
 from __future__ import annotations

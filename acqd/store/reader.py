@@ -15,6 +15,7 @@ from typing import Any, NamedTuple
 from ..errors import ConfigError
 from ..record import Record
 from .naming import LIVE, Segment, StorePaths
+from .overview import is_overview
 from .recovery import probe
 from .schema import row_summary
 from .segment import SegmentView
@@ -61,7 +62,7 @@ class RecordReader:
             raise ConfigError(str(path), "", f"no such record store: no file and no segments {segments} there")
 
     def _segments(self) -> list[Segment]:
-        if self.path.is_file():
+        if self.path.is_file() and not is_overview(self.path):
             return [Segment(0, self.path, LIVE if self.path.name.endswith(LIVE) else "")]
         return [s for s in self._paths.segments() if s.state in ("", LIVE)]
 

@@ -10,6 +10,7 @@ from ..record import Record
 from . import faults
 from .lockfile import release_lock, take_lock
 from .naming import CREATING, LIVE, StorePaths, fsync_file, replace_durably
+from .overview import is_overview, write_overview
 from .recovery import recover_store
 from .schema import Layout, encode
 from .segment import SegmentView, SegmentWriter, create_segment
@@ -33,7 +34,7 @@ class RecordStore:
         self._paths = StorePaths(path)
         if not self._paths.directory.is_dir():
             raise ConfigError(str(path), "", f"directory {self._paths.directory} does not exist")
-        if self.path.is_file():
+        if self.path.is_file() and not is_overview(self.path):
             raise ConfigError(
                 str(path), "", f"is an existing file; name a store (segments {self._paths.stem}.NNNNNN.h5 go beside it)"
             )
@@ -41,6 +42,7 @@ class RecordStore:
         self._lock_fd: int | None = _take_lock(self._paths)
         try:
             self.notes = recover_store(self._paths)
+            self._refresh_overview()  # recovery may have finished a segment; a crash may have left it stale
             self._next_index, self._next_number = self._resume_point()
         except BaseException:
             self._release_lock()
@@ -106,6 +108,15 @@ class RecordStore:
             fsync_file(live)
         replace_durably(live, self._paths.finished(self._live_number), fsync=self._fsync)
         faults.step("rotate:renamed")
+        self._refresh_overview()
+
+    def _refresh_overview(self) -> None:
+        """Rewrite the overview; a failure (a full disk) is a note, never a failed append: the records are
+        in the segments, and the next finished segment or writer tries again."""
+        try:
+            write_overview(self._paths)
+        except OSError as exc:
+            self.notes.append(f"{self.path}: the overview was not rewritten ({exc}); the segments hold every record")
 
     def _abandon(self) -> None:
         """After a failed write the live file's state is unknown: leave it as .part for recovery."""

@@ -64,11 +64,11 @@ def run_command(args: argparse.Namespace) -> int:
     out = args.out or profile.output.file
     screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
-    if replay is None:  # a replay drives no output: the caution would only teach people to skip it
-        screen.print(Text(SAFETY_NOTE))
     stored, failed = 0, 0
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
+        if replay is None:  # after every check of the profile and the bench, before any output is driven;
+            screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         out.parent.mkdir(parents=True, exist_ok=True)
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
                 _progress(screen) as progress:

@@ -136,7 +136,7 @@ def _time_axis(ax: Axes, times: Sequence[object]) -> None:
     zone = times[0].tzinfo or timezone.utc
     offset = zone.utcoffset(times[0])
     name = "UTC" if offset == timedelta(0) else (times[0].tzname() or str(zone))
-    locator = mdates.AutoDateLocator(tz=zone, maxticks=8)
+    locator = mdates.AutoDateLocator(tz=zone)
     ax.xaxis.set_major_locator(locator)
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, tz=zone, show_offset=True))
     ax.set_xlabel(f"time ({name})")

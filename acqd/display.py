@@ -9,6 +9,7 @@ are the SI Brochure's (BIPM, 9th edition, table 7), femto to tera, the range a b
 from __future__ import annotations
 
 import math
+from typing import Any
 
 PREFIXES = {-15: "f", -12: "p", -9: "n", -6: "µ", -3: "m", 0: "", 3: "k", 6: "M", 9: "G", 12: "T"}
 
@@ -68,12 +69,28 @@ def si(value: float, unit: str = "", digits: int = 4, trim: bool = False) -> str
         return f"0{space}{symbol}"
     if symbol in UNPREFIXED:
         return f"{_significant(value, digits, trim)}{space}{symbol}"
+    exponent = _exponent(value, digits)
+    return f"{_significant(value / 10.0 ** exponent, digits, trim)} {PREFIXES[exponent]}{symbol}"
+
+
+def _exponent(value: float, digits: int = 4) -> int:
+    """The power of ten of the prefix ``value`` reads in: its mantissa from 1 to below 1000 once rounded."""
     exponent = 3 * math.floor(math.log10(abs(value)) / 3)
     exponent = min(max(exponent, min(PREFIXES)), max(PREFIXES))
-    mantissa = value / 10.0 ** exponent
-    if abs(float(f"{mantissa:.{digits}g}")) >= 1000 and exponent < max(PREFIXES):
-        exponent, mantissa = exponent + 3, mantissa / 1000
-    return f"{_significant(mantissa, digits, trim)} {PREFIXES[exponent]}{symbol}"
+    if abs(float(f"{value / 10.0 ** exponent:.{digits}g}")) >= 1000 and exponent < max(PREFIXES):
+        exponent += 3
+    return exponent
+
+
+def axis_scale(value: float, unit: str) -> tuple[float, str]:
+    """(factor, unit with its prefix) for an axis whose typical value is ``value``: ``(1e9, "nF")`` for
+    102 nF, so a figure plots value × factor against ``C (nF)`` instead of bare farads under a ``1e-7``
+    offset. A zero or non-finite value, or a unit that takes no prefix, gets (1, the unit's symbol)."""
+    symbol = unit_symbol(unit)
+    if symbol in UNPREFIXED or not math.isfinite(value) or value == 0:
+        return 1.0, symbol
+    exponent = _exponent(value)
+    return 10.0 ** -exponent, f"{PREFIXES[exponent]}{symbol}"
 
 
 def _significant(value: float, digits: int, trim: bool = False) -> str:
@@ -116,6 +133,15 @@ def edge_label(edge: str, low_v: float, high_v: float) -> str:
     goes between, as set on the generator, in the order the edge takes them — one wording everywhere."""
     start, end = (high_v, low_v) if edge == "falling" else (low_v, high_v)
     return f"{edge} {si(start, 'V', 6, trim=True)} → {si(end, 'V', 6, trim=True)}"
+
+
+def stimulus_text(stimulus: dict[str, Any]) -> str:
+    """``square 200 Hz, rising 0 V → 1 V, load high_z, source 50 Ω, edge time 20 ns``: a stored record's
+    stimulus (its JSON form) as ``acqd show`` and the run report give it."""
+    return (f"{stimulus['shape']} {si(stimulus['frequency_hz'], 'Hz', 6, trim=True)}, "
+            f"{edge_label(stimulus['edge'], stimulus['low_v'], stimulus['high_v'])}, load {stimulus['load']}, "
+            f"source {si(stimulus['source_resistance_ohm'], 'ohm', trim=True)}, "
+            f"edge time {si(stimulus['edge_time_s'], 's', trim=True)}")
 
 
 def quantity(key: str, value: float, digits: int = 4) -> str:

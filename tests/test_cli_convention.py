@@ -27,8 +27,6 @@ EXPECTED = {"run": {"-o", "-n"}, "ls": {"--json"}, "show": {"-r", "--json"}, "ex
             "daemon": {"-d"}, "status": {"-d", "--json"}, "drift": {"--figures", "--last", "--json"},
             "sim": {"--json"}, "replay": {"--json"}, "drivers": set(), "identify": set(), "plan": {"--json"}}
 STORE_COMMANDS = {"ls", "show", "export", "compare", "report", "drift", "replay"}
-# acqd report moves to acqd/cli/report.py, where it takes up the convention; until then it is known not to.
-REPORT_PENDING = pytest.mark.xfail(reason="acqd report takes up the convention in acqd/cli/report.py", strict=True)
 
 
 def sub_commands() -> dict[str, argparse.ArgumentParser]:
@@ -64,8 +62,7 @@ def test_every_sub_command_has_a_one_line_help_and_a_description(capsys, name):
     assert " ".join(parser.description.split()[:4]) in " ".join(out.split())
 
 
-@pytest.mark.parametrize("name", [pytest.param(n, marks=REPORT_PENDING) if n == "report" else n
-                                  for n in sorted(EXPECTED)])
+@pytest.mark.parametrize("name", sorted(EXPECTED))
 def test_each_option_means_the_same_in_every_sub_command(name):
     given = options(sub_commands()[name])
     assert {o for o in CONVENTION if o in given} == EXPECTED[name]
@@ -81,8 +78,6 @@ def test_each_option_means_the_same_in_every_sub_command(name):
 def test_options_shared_by_several_sub_commands_agree():
     seen: dict[str, tuple[tuple[str, ...], str | None, str]] = {}
     for name, parser in sorted(sub_commands().items()):
-        if name == "report":  # see REPORT_PENDING
-            continue
         for option, action in options(parser).items():
             if option in ("-h", "--help"):
                 continue

@@ -191,12 +191,15 @@ def test_profile_dut_table_and_option_override(capsys, tmp_path, csv_file):
     assert code == 2 and f"{profile} line {line}: dut.tolerances.nrmse_max: must be greater than 0" in err
 
 
-def test_report_command_writes_one_html_file(capsys, tmp_path):
-    # Self-contained: images as data: URIs (RFC 2397), nothing fetched from elsewhere.
+def test_report_command_compares_records_stored_without_analysis(capsys, tmp_path):
+    # Records stored with no comparison (acqd.store directly) are compared with --recompute against their
+    # own [dut]; the page is one file, self-contained: images as data: URIs (RFC 2397), nothing fetched.
     store = _store_with_records(tmp_path, DUT)
-    out_dir = tmp_path / "report"
-    assert main(["report", str(store), "--out", str(out_dir), "--last", "2"]) == 0
-    html = (out_dir / "index.html").read_text()
-    assert capsys.readouterr().out.strip() == str(out_dir / "index.html")
-    assert html.count("<section") == 2 and "Fitted parameters over time" in html
+    out = tmp_path / "report" / "night.html"
+    assert main(["report", str(store), "-o", str(out), "--last", "2", "--recompute"]) == 0
+    html = out.read_text()
+    assert capsys.readouterr().out.startswith(f"wrote {out} (")
+    assert "2 records: 2 pass, 0 fail" in html and "Fitted parameters over time" in html
     assert "data:image/png;base64," in html and "src=\"http" not in html  # self-contained
+    assert main(["report", str(store), "-o", str(out)]) == 0  # without --recompute: nothing was stored
+    assert "3 records: 0 pass, 0 fail, 0 untested, 3 not compared" in out.read_text()

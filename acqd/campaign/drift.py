@@ -340,15 +340,14 @@ def write_outputs(summary: DriftSummary, out_dir: str | Path) -> list[Path]:
         times = [datetime.fromisoformat(u) for u in s.utc]
         intervals = all(v is not None for v in s.lower + s.upper)
         limits = tuple(b for b in s.limits if math.isfinite(b)) if s.limits else None
-        fig = parameter_vs_time_figure(times, s.values, s.name, s.unit, s.nominal,
-                                       s.lower if intervals else None, s.upper if intervals else None, limits)
-        if s.trend is not None:
-            ax = fig.axes[0]
-            line = [s.trend.intercept + s.trend.slope_per_h * h for h in s.hours]
-            ax.plot(times, line, color="tab:orange", lw=1.2,
-                    label=f"trend {s.trend.slope_per_h:.3g} {s.unit}/h "
-                          f"[{s.trend.ci95[0]:.3g}, {s.trend.ci95[1]:.3g}]")
-            ax.legend(fontsize=8)
+        trend = s.trend
+        fig = parameter_vs_time_figure(
+            times, s.values, s.name, s.unit, s.nominal, s.lower if intervals else None,
+            s.upper if intervals else None, limits,
+            trend=None if trend is None else [trend.intercept + trend.slope_per_h * h for h in s.hours],
+            trend_label="" if trend is None else
+            f"trend {per_hour(trend.slope_per_h, s.unit)} (95 %: {per_hour(trend.ci95[0], s.unit)} … "
+            f"{per_hour(trend.ci95[1], s.unit)})")
         path = out / f"drift-{re.sub(r'[^A-Za-z0-9._-]', '_', s.name)}.png"
         fig.savefig(path, dpi=100)
         written.append(path)

@@ -12,12 +12,14 @@ option (argparse lets an exception that is not a ``ValueError`` or ``TypeError``
 from __future__ import annotations
 
 import argparse
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, NoReturn
 
 import numpy as np
 from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.text import Text
 from rich.theme import Theme
 
@@ -51,6 +53,16 @@ def console(wide: bool = False, **options: Any) -> Console:
     if wide and not made.is_terminal and "width" not in options:
         made = Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, width=160, **options)
     return made
+
+
+@contextmanager
+def progress_bar(out: Console) -> Iterator[Progress]:
+    """rich's progress bar (what, a bar, N of M, time so far) on ``out``, gone when done, and off when
+    ``out`` is not a terminal, so a pipe or a log file gets no control codes. Lines printed through
+    ``progress.console`` meanwhile appear above it."""
+    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                  console=out, transient=True, disable=not out.is_terminal) as progress:
+        yield progress
 
 
 def verdict_text(verdict: str | None, upper: bool = False) -> Text:

@@ -1,4 +1,4 @@
-"""``acqd compare`` (one record against a model) and ``acqd report`` (an HTML run report of a store).
+"""``acqd compare``: one record against a model.
 
 The model, mapping and tolerances come from a profile's ``[dut]`` table, from the record's own ``[dut]``
 (the profile it was captured with), or from options; options override table entries. Everything ends up
@@ -27,7 +27,6 @@ from .common import add_command, add_figures, add_json, add_profile, add_record,
 from .results import renderables
 
 CLI = "acqd compare"
-REPORT = "acqd report"
 STIMULUS_OPTIONS = ("low", "high", "edge", "load", "edge_time", "source_resistance")
 
 
@@ -71,14 +70,6 @@ def register(sub: argparse._SubParsersAction) -> None:
     add_figures(g, "write channels.png and trajectory.png into DIR")
     p.set_defaults(func=run_compare)
 
-    r = sub.add_parser("report", help="write an HTML run report of a record store",
-                       description="Compare every record of a store and write DIR/index.html (figures embedded).")
-    r.add_argument("file", metavar="FILE", help="a record store file")
-    r.add_argument("--out", metavar="DIR", required=True, help="directory for index.html")
-    r.add_argument("--profile", metavar="PROFILE", help="compare with this profile's [dut] (default: each record's)")
-    r.add_argument("--last", metavar="N", help="only the last N records")
-    r.set_defaults(func=run_report)
-
 
 # -- parsing option values ----------------------------------------------------------------------------
 def _number(option: str, text: str) -> float:
@@ -97,13 +88,6 @@ def _pair(option: str, text: str) -> tuple[str, str]:
 
 def _names(text: str) -> list[str]:
     return [n.strip() for n in text.split(",") if n.strip()]
-
-
-def _count(option: str, text: str, source: str = CLI) -> int:
-    try:
-        return int(text)
-    except ValueError:
-        raise ConfigError(source, option, f"{text!r} is not a whole number") from None
 
 
 # -- inputs ------------------------------------------------------------------------------------------
@@ -282,25 +266,3 @@ def run_compare(args: argparse.Namespace) -> int:
         for part in renderables(result.to_dict()):
             out.print(part, soft_wrap=isinstance(part, Text))
     return 1 if result.verdict.status == "fail" else 0
-
-
-def run_report(args: argparse.Namespace) -> int:
-    from ..report import spec_from_record, write_report  # matplotlib only for this sub-command
-    from ..store import open_records
-
-    if args.profile:
-        from ..profile import load_profile
-        profile = load_profile(args.profile)
-        spec = parse_dut_table(profile.dut, profile.source, profile.text)
-        spec_for = lambda record: spec  # noqa: E731 - one spec for every record
-    else:
-        spec_for = spec_from_record
-    last = None if args.last is None else _count("--last", args.last, REPORT)
-    if last is not None and last < 1:
-        raise ConfigError(REPORT, "--last", f"must be 1 or more, not {last}")
-    with open_records(args.file) as reader:
-        numbers = [s.index for s in reader.index()]
-        chosen = numbers if last is None else numbers[-last:]
-        path = write_report(reader, args.out, spec_for, f"acqd run report: {args.file}", chosen)
-    print(path)
-    return 0

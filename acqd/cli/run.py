@@ -11,7 +11,6 @@ from types import FrameType
 from typing import Any
 
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.text import Text
 
 from ..benchsession import Replay, open_bench
@@ -21,7 +20,7 @@ from ..plan import ready_profile
 from ..record import Record
 from ..steptest import check_limits, run_step_test
 from ..store import RecordStore
-from .common import SAFETY_NOTE, add_command, add_count, add_out, console, record_line
+from .common import SAFETY_NOTE, add_command, add_count, add_out, console, progress_bar, record_line
 from .sim import parse_selection
 
 
@@ -71,7 +70,7 @@ def run_command(args: argparse.Namespace) -> int:
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         out.parent.mkdir(parents=True, exist_ok=True)
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
-                _progress(screen) as progress:
+                progress_bar(screen) as progress:
             task = progress.add_task(profile.name, total=args.count)
             for _ in range(args.count):
                 try:
@@ -101,10 +100,3 @@ def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,
     except AcqdError as exc:
         console.print(Text(f"not compared: {exc}"))
         return None
-
-
-@contextmanager
-def _progress(console: Console) -> Iterator[Progress]:
-    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-                  console=console, transient=True) as progress:
-        yield progress

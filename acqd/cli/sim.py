@@ -54,14 +54,15 @@ def _serving_options(parser: argparse.ArgumentParser) -> None:
 _SELECTION_ITEM = re.compile(r"\s*([0-9]+)\s*(?:-\s*([0-9]+)\s*)?")
 
 
-def parse_selection(text: str) -> list[int]:
-    """``0,2,5-9`` → [0, 2, 5, 6, 7, 8, 9], in the order written (a ConfigError line otherwise)."""
+def parse_selection(text: str, option: str = "--records") -> list[int]:
+    """``0,2,5-9`` → [0, 2, 5, 6, 7, 8, 9], in the order written (a ConfigError line naming ``option``
+    otherwise)."""
     indices: list[int] = []
     for item in text.split(","):
         match = _SELECTION_ITEM.fullmatch(item)
         if not match or (match.group(2) is not None and int(match.group(2)) < int(match.group(1))):
-            raise ConfigError("command line", "--records", f"{item.strip()!r} in {text!r}: write record indices and "
-                                                           "rising ranges separated by commas, e.g. 0,2,5-9")
+            raise ConfigError("command line", option, f"{item.strip()!r} in {text!r}: write record indices and "
+                                                 "rising ranges separated by commas, e.g. 0,2,5-9")
         first = int(match.group(1))
         indices.extend(range(first, int(match.group(2) or first) + 1))
     return indices

@@ -11,7 +11,7 @@ from typing import Any
 from rich.table import Table
 from rich.text import Text
 
-from ..display import edge_label, si
+from ..display import edge_label, si, stimulus_text
 from ..store import RecordReader, RecordSummary, export_csv, open_records
 from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
                      verdict_text)
@@ -108,7 +108,7 @@ FIELD_WIDTH = 12
 
 def summary_lines(store: str, meta: dict[str, Any]) -> list[str]:
     """The record's identity, DUT, stimulus, capture, channels and instruments, one labelled line each."""
-    stim, tb = meta["stimulus"], meta["timebase"]
+    tb = meta["timebase"]
     dut = meta.get("dut") or {}
     who = ", ".join(str(v) for v in (dut.get("name"), dut.get("serial") and f"serial {dut['serial']}",
                                       dut.get("model") and f"model {dut['model']}") if v)
@@ -116,10 +116,7 @@ def summary_lines(store: str, meta: dict[str, Any]) -> list[str]:
     capture = (f"{tb['n_samples']} samples every {si(interval, 's', trim=True)} ({si(interval * tb['n_samples'], 's')}, "
                f"{si(interval * tb['pretrigger_samples'], 's')} before the edge), "
                f"{meta.get('averages', 1)} average(s)")
-    stimulus = (f"{stim['shape']} {si(stim['frequency_hz'], 'Hz', 6, trim=True)}, "
-                f"{edge_label(stim['edge'], stim['low_v'], stim['high_v'])}, load {stim['load']}, "
-                f"source {si(stim['source_resistance_ohm'], 'ohm', trim=True)}, "
-                f"edge time {si(stim['edge_time_s'], 's', trim=True)}")
+    stimulus = stimulus_text(meta["stimulus"])
     channels = ", ".join(f"{c['name']} [{c['unit']}] " + (f"({c['source']})" if c["source"].upper().startswith("CH")
                                                           else f"= {c['source']}") for c in meta["channels"])
     instruments = "; ".join(f"{role} {idn}" for role, idn in (meta.get("identities") or {}).items())

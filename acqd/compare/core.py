@@ -283,6 +283,33 @@ def clipping_warnings(record: Record, channels: Sequence[str]) -> list[str]:
     return out
 
 
+def _traces(setup: _Setup, model: StateSpace, x: np.ndarray, predicted: np.ndarray, u: np.ndarray) -> Traces:
+    return Traces(setup.times, u, {m.channel: y for m, y in zip(setup.mapping, setup.measured)},
+                  {m.channel: y for m, y in zip(setup.mapping, predicted)},
+                  dict(zip((m.channel for m in setup.mapping), setup.units)), model.states, model.state_units, x,
+                  _measured_states(setup, model, u))
+
+
+def stored_traces(record: Record, spec: CompareSpec, analysis: Mapping[str, Any], label: str = "") -> Traces:
+    """The traces of a comparison stored with ``record`` (``CompareResult.to_dict()``), for its figures.
+
+    The model is simulated once more with the parameters and the edge instant the comparison ended with
+    (``analysis["parameters"]``, ``analysis["stimulus"]["t50_s"]``), not fitted again: drawing a stored
+    result costs one simulation, where comparing again costs a fit. ``spec`` is the table the analysis was
+    made with (the record's own [dut]).
+    """
+    setup = _setup(record, spec, label or f"record {record.index}")
+    try:
+        parameters = {k: float(v) for k, v in analysis["parameters"].items()}
+        edge = replace(setup.edge, t50_s=float(analysis["stimulus"]["t50_s"]))
+    except (KeyError, TypeError, ValueError, AttributeError):
+        raise ConfigError(label or f"record {record.index}", "analysis",
+                          "the stored analysis has no parameters or edge instant to simulate with") from None
+    model = setup.model(parameters)
+    x, predicted, u = setup.predict(model, edge)
+    return _traces(setup, model, x, predicted, u)
+
+
 def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareResult:
     """Compare ``record`` with the validated ``spec``: the one entry point the API, CLI and report share.
 
@@ -305,10 +332,7 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareR
                                        _polarity(model, m.signal, m.gain, edge, span), edge.start_s,
                                        spec.tolerances.settling_band_pct, record_code_step(record, m.channel)))
     verdict, notes = judge(channels, fit, spec.tolerances)
-    traces = Traces(setup.times, u, {m.channel: y for m, y in zip(setup.mapping, setup.measured)},
-                    {m.channel: y for m, y in zip(setup.mapping, predicted)},
-                    {c.channel: c.unit for c in channels}, model.states, model.state_units, x,
-                    _measured_states(setup, model, u))
+    traces = _traces(setup, model, x, predicted, u)
     marked = [m.channel for m in setup.mapping if m.stimulus]
     timing = (f"placed by channel {marked[0]} ({edge.t50_s - setup.edge.t50_s:+.3g} s from the trigger)" if marked
               else record.settings.get(TIMING_SETTING, "from the record's metadata (t50 at the trigger)"))

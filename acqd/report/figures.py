@@ -7,15 +7,19 @@ in tests, and several can be built at once without interfering.
 from __future__ import annotations
 
 import io
-from collections.abc import Sequence
-from datetime import datetime
+import math
+from collections.abc import Mapping, Sequence
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
+from typing import Any
 
+import matplotlib.dates as mdates
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
-from ..compare import CompareResult
+from ..compare import CompareResult, Traces
+from ..display import axis_scale, label, si
 
 _MEASURED = dict(color="tab:blue", lw=1.0, label="measured")
 _SIMULATED = dict(color="tab:orange", lw=1.2, ls="--", label="simulated")
@@ -30,25 +34,40 @@ def _time_scale(times: np.ndarray) -> tuple[float, str]:
     return 1e9, "ns"
 
 
-def channel_figure(result: CompareResult) -> Figure:
-    """Per channel: measured over simulated (top) and the residual measured − simulated (below)."""
-    tr = result.traces
-    names = list(tr.measured)
-    factor, unit = _time_scale(tr.times)
-    t = tr.times * factor
+def _channel_titles(analysis: Mapping[str, Any]) -> dict[str, str]:
+    """``v_c ↔ model v_c: NRMSE 0.61 %`` per compared channel of an analysis (``CompareResult.to_dict()``)."""
+    titles = {}
+    for ch in analysis.get("channels") or []:
+        nrmse = "" if ch.get("nrmse") is None else f": NRMSE {si(100 * ch['nrmse'], '%', 3)}"
+        titles[ch["channel"]] = f"{ch['channel']} ↔ model {ch['signal']}{nrmse}"
+    return titles
+
+
+def channel_figure(traces: Traces, analysis: Mapping[str, Any]) -> Figure:
+    """Per channel: measured over simulated (top) and the residual measured − simulated (below).
+
+    ``analysis`` is the comparison's JSON form, fresh (``CompareResult.to_dict()``) or stored with the
+    record, so a stored result is drawn exactly like a new one (``acqd.compare.stored_traces``)."""
+    names = list(traces.measured)
+    titles = _channel_titles(analysis)
+    factor, unit = _time_scale(traces.times)
+    t = traces.times * factor
     fig = Figure(figsize=(9, 2.6 * len(names) + 0.6), layout="constrained")
     axes = fig.subplots(2 * len(names), 1, sharex=True, gridspec_kw={"height_ratios": [3, 1] * len(names)})
     for i, name in enumerate(names):
         top, bottom = axes[2 * i], axes[2 * i + 1]
-        ch = result.channel(name)
-        top.plot(t, tr.measured[name], **_MEASURED)
-        top.plot(t, tr.simulated[name], **_SIMULATED)
-        top.set_ylabel(f"{name} ({tr.units[name] or '-'})")
-        top.set_title(f"{name} ↔ model {ch.signal}: NRMSE {100 * ch.nrmse:.2f} %", fontsize=9, loc="left")
+        measured, simulated = traces.measured[name], traces.simulated[name]
+        scale, shown = axis_scale(float(np.max(np.abs(simulated))), traces.units[name])
+        top.plot(t, measured * scale, **_MEASURED)
+        top.plot(t, simulated * scale, **_SIMULATED)
+        top.set_ylabel(f"{name} ({shown or '-'})")
+        top.set_title(titles.get(name, name), fontsize=9, loc="left")
         top.legend(loc="lower right", fontsize=8)
-        bottom.plot(t, tr.measured[name] - tr.simulated[name], color="tab:red", lw=0.8)
+        bottom.plot(t, (measured - simulated) * scale, color="tab:red", lw=0.8)
         bottom.axhline(0.0, color="0.5", lw=0.6)
-        bottom.set_ylabel("residual", fontsize=8)
+        bottom.set_ylabel(f"residual ({shown or '-'})", fontsize=8)
+    for ax in axes:
+        ax.ticklabel_format(axis="y", useOffset=False)
     axes[-1].set_xlabel(f"time from the trigger ({unit})")
     return fig
 
@@ -76,22 +95,22 @@ def _arrows(ax: Axes, x: np.ndarray, y: np.ndarray, pairs: list[tuple[int, int]]
                     arrowprops=dict(arrowstyle="-|>", color=color, lw=1.2, mutation_scale=14))
 
 
-def trajectory_figure(result: CompareResult) -> Figure | None:
+def trajectory_figure(traces: Traces) -> Figure | None:
     """The first two states against each other (a phase portrait), measured over simulated.
 
     Measured states are those the mapped channels determine (e.g. i_L from v_R / R); arrows mark the
     direction of time. None for a model with fewer than two states.
     """
-    tr = result.traces
-    if len(tr.states) < 2:
+    if len(traces.states) < 2:
         return None
-    (a, b), units = tr.states[:2], (tuple(tr.state_units[:2]) if tr.state_units else ("", ""))
+    (a, b), units = traces.states[:2], (tuple(traces.state_units[:2]) if traces.state_units else ("", ""))
     fig = Figure(figsize=(6, 5), layout="constrained")
     ax = fig.subplots()
-    sim_x, sim_y = tr.states_simulated[:, 0], tr.states_simulated[:, 1]
+    (fx, ux), (fy, uy) = (axis_scale(float(np.max(np.abs(traces.states_simulated[:, k]))), units[k]) for k in (0, 1))
+    sim_x, sim_y = traces.states_simulated[:, 0] * fx, traces.states_simulated[:, 1] * fy
     pairs = _arrow_pairs(sim_x, sim_y)
-    if a in tr.states_measured and b in tr.states_measured:
-        mx, my = tr.states_measured[a], tr.states_measured[b]
+    if a in traces.states_measured and b in traces.states_measured:
+        mx, my = traces.states_measured[a] * fx, traces.states_measured[b] * fy
         ax.plot(mx, my, color="tab:blue", lw=0.8, alpha=0.8, label="measured")
         _arrows(ax, mx, my, pairs, "tab:blue")
     else:
@@ -100,35 +119,63 @@ def trajectory_figure(result: CompareResult) -> Figure | None:
     ax.plot(sim_x, sim_y, color="tab:orange", lw=1.2, ls="--", label="simulated")
     _arrows(ax, sim_x, sim_y, pairs, "tab:orange")
     ax.plot(sim_x[0], sim_y[0], "o", color="k", ms=4, label="start (rest before the edge)")
-    ax.set_xlabel(f"{a} ({units[0]})")
-    ax.set_ylabel(f"{b} ({units[1]})")
+    ax.set_xlabel(f"{a} ({ux or '-'})")
+    ax.set_ylabel(f"{b} ({uy or '-'})")
+    ax.ticklabel_format(useOffset=False)
     ax.set_title("state trajectory (arrows: direction of time)", fontsize=9, loc="left")
     ax.legend(fontsize=8)
     return fig
 
 
+def _time_axis(ax: Axes, times: Sequence[object]) -> None:
+    """Date-times as ``12-02 23:00`` ticks with the date once beside them and the time zone in the
+    label; plain numbers are record numbers."""
+    if not (len(times) and isinstance(times[0], datetime)):
+        ax.set_xlabel("record")
+        return
+    zone = times[0].tzinfo or timezone.utc
+    offset = zone.utcoffset(times[0])
+    name = "UTC" if offset == timedelta(0) else (times[0].tzname() or str(zone))
+    locator = mdates.AutoDateLocator(tz=zone)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, tz=zone, show_offset=True))
+    ax.set_xlabel(f"time ({name})")
+
+
 def parameter_vs_time_figure(times: Sequence[object], values: Sequence[float], name: str, unit: str = "",
                              nominal: float | None = None, lower: Sequence[float] | None = None,
-                             upper: Sequence[float] | None = None, limits: tuple[float, float] | None = None
-                             ) -> Figure:
-    """One parameter over time (a drift plot): points with optional 95 % interval bars, the nominal value
-    and tolerance lines. ``times`` may be datetimes or numbers (seconds, record numbers)."""
+                             upper: Sequence[float] | None = None, limits: Sequence[float] | None = None,
+                             trend: Sequence[float] | None = None, trend_label: str = "trend") -> Figure:
+    """One parameter over time (a drift plot): points with optional 95 % interval bars, the nominal value,
+    the tolerance limits and an optional trend line (values at ``times``), all in the legend.
+
+    ``name`` is the key (``c_f``) and ``unit`` its unit as stored (``F``); the axis reads ``C (nF)`` with
+    values scaled to the prefix, never bare farads under an offset. ``times`` may be datetimes (the axis
+    says their time zone) or numbers (record numbers).
+    """
     fig = Figure(figsize=(8, 3.5), layout="constrained")
     ax = fig.subplots()
     values = np.asarray(values, dtype=float)
+    typical = nominal if nominal else (float(np.nanmax(np.abs(values))) if values.size else 0.0)
+    factor, shown = axis_scale(typical, unit)
+    person = label(name)
     if lower is not None and upper is not None:
-        err = np.vstack([values - np.asarray(lower, float), np.asarray(upper, float) - values])
-        ax.errorbar(times, values, yerr=err, fmt="o", ms=4, capsize=3, label=f"{name} (95 % interval)")
+        err = np.vstack([values - np.asarray(lower, float), np.asarray(upper, float) - values]) * factor
+        ax.errorbar(times, values * factor, yerr=err, fmt="o", ms=4, capsize=3, label=f"{person} (95 % interval)")
     else:
-        ax.plot(times, values, "o-", ms=4, label=name)
+        ax.plot(times, values * factor, "o-", ms=4, label=person)
     if nominal is not None:
-        ax.axhline(nominal, color="0.3", lw=1.0, ls="--", label="nominal")
-    for bound in limits or ():
-        ax.axhline(bound, color="tab:red", lw=0.8, ls=":")
-    ax.set_ylabel(f"{name} ({unit})" if unit else name)
+        ax.axhline(nominal * factor, color="0.3", lw=1.0, ls="--", label=f"nominal {si(nominal, unit, trim=True)}")
+    bounds = [b for b in (limits or ()) if math.isfinite(b)]
+    for k, bound in enumerate(bounds):
+        ax.axhline(bound * factor, color="tab:red", lw=1.0, ls=":",
+                   label=None if k else "tolerance " + " … ".join(si(b, unit) for b in bounds))
+    if trend is not None:
+        ax.plot(times, np.asarray(trend, dtype=float) * factor, color="tab:orange", lw=1.2, label=trend_label)
+    ax.set_ylabel(f"{person} ({shown})" if shown else person)
+    ax.ticklabel_format(axis="y", useOffset=False)
+    _time_axis(ax, times)
     ax.legend(fontsize=8)
-    if len(times) and isinstance(times[0], datetime):
-        fig.autofmt_xdate()
     return fig
 
 
@@ -143,9 +190,11 @@ def save_figures(result: CompareResult, directory: str | Path, stem: str = "") -
     directory = Path(directory)
     directory.mkdir(parents=True, exist_ok=True)
     written = []
-    for label, fig in (("channels", channel_figure(result)), ("trajectory", trajectory_figure(result))):
+    figures = (("channels", channel_figure(result.traces, result.to_dict())),
+               ("trajectory", trajectory_figure(result.traces)))
+    for kind, fig in figures:
         if fig is not None:
-            path = directory / f"{stem}{label}.png"
+            path = directory / f"{stem}{kind}.png"
             path.write_bytes(png_bytes(fig))
             written.append(path)
     return written

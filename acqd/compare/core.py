@@ -256,7 +256,7 @@ def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> n
     return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
 
 
-def _fit(setup: _Setup, edge: Edge) -> FitResult:
+def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = None) -> FitResult:
     """Identify the free parameters. With a stimulus channel and an edge the samples resolve, the edge
     instant is fitted alongside them, since aligning it with a model whose parameters are still wrong
     would bias both; an unresolved edge keeps the whole-sample position the alignment found."""
@@ -280,8 +280,9 @@ def _fit(setup: _Setup, edge: Edge) -> FitResult:
         return setup.sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
 
     hold_order = (*spec.fit.hold, *DEFAULT_HOLD.get(spec.model, ()))
+    warm = {k: v for k, v in (warm_start or {}).items() if k != EDGE_PARAMETER}  # the edge is this record's own
     return fit_parameters(residuals_of, jacobian_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,),
-                          len(setup.mapping))
+                          len(setup.mapping), warm)
 
 
 def _polarity(model: StateSpace, signal: Signal, gain: float, edge: Edge, span: float) -> str | None:
@@ -347,14 +348,17 @@ def clipping_warnings(record: Record, channels: Sequence[str]) -> list[str]:
     return out
 
 
-def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareResult:
+def compare_spec(record: Record, spec: CompareSpec, label: str = "",
+                 warm_start: Mapping[str, float] | None = None) -> CompareResult:
     """Compare ``record`` with the validated ``spec``: the one entry point the API, CLI and report share.
 
-    ``label`` names the record in error messages (a file name); by default "record N".
+    ``label`` names the record in error messages (a file name); by default "record N". ``warm_start``
+    (fitted values of an earlier record, ``fitted_values``) is where a fit's solver begins; the result
+    is the same optimum as from the nominal values (see ``fit_parameters``).
     """
     setup = _setup(record, spec, label or (f"record {record.index}" if record.index is not None else "the record"))
     edge = setup.align(setup.model())
-    fit = _fit(setup, edge) if spec.fit.free else None
+    fit = _fit(setup, edge, warm_start) if spec.fit.free else None
     fitted = {k: v for k, v in fit.values.items() if k not in fit.nuisance} if fit else {}
     if fit and EDGE_PARAMETER in fit.values:
         edge = replace(edge, t50_s=fit.values[EDGE_PARAMETER])

@@ -19,7 +19,7 @@ from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
 from ..plan import ready_profile
 from ..record import Record
-from ..steptest import check_limits, run_step_test
+from ..steptest import Applied, check_limits, output_guard, run_step_test
 from ..store import RecordStore
 from .common import SAFETY_NOTE, add_command, add_count, add_out, console, record_line
 from .sim import parse_selection
@@ -70,12 +70,13 @@ def run_command(args: argparse.Namespace) -> int:
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         out.parent.mkdir(parents=True, exist_ok=True)
+        applied = Applied()  # the run configures once: later step tests send only what the plan changes
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
-                _progress(screen) as progress:
+                _progress(screen) as progress, output_guard(bench.generator):
             task = progress.add_task(profile.name, total=args.count)
             for _ in range(args.count):
                 try:
-                    records = run_step_test(profile, bench.generator, bench.scope)
+                    records = run_step_test(profile, bench.generator, bench.scope, applied)
                 except InstrumentError as exc:
                     failed += 1
                     progress.console.print(Text(f"not acquired: {exc}"))

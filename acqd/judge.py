@@ -8,7 +8,7 @@ from collections.abc import Callable
 from typing import Any
 
 from .config import Table
-from .compare import compare_spec, parse_dut_table
+from .compare import CompareSpec, compare_spec, parse_dut_table
 from .profile import Profile
 from .record import Record
 
@@ -26,4 +26,20 @@ def make_judge(profile: Profile) -> Judge | None:
         if mapping.channel not in recorded:
             raise channels_table.error(mapping.channel, f"not a channel this profile records; "
                                                         f"it records {', '.join(recorded)}")
-    return lambda record: compare_spec(record, spec).to_dict()
+    return _warm_judge(spec)
+
+
+def _warm_judge(spec: CompareSpec) -> Judge:
+    """Judge records in turn, each fit starting from the last good fit's values: a run or campaign sees
+    the same DUT record after record, so the solver begins next to the answer; the answer itself does
+    not depend on it (``compare.fit_parameters``), and a failed fit leaves the next to start as before."""
+    previous: dict[str, float] = {}
+
+    def judge(record: Record) -> dict[str, Any]:
+        result = compare_spec(record, spec, warm_start=previous)
+        if result.fit is not None and result.fit.success:
+            previous.clear()
+            previous.update(result.fit.values)
+        return result.to_dict()
+
+    return judge

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import signal
 from collections.abc import Callable, Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import contextmanager
 from pathlib import Path
 from types import FrameType
@@ -18,7 +19,7 @@ from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
 from ..plan import ready_profile
 from ..record import Record
-from ..steptest import check_limits, run_step_test
+from ..steptest import Applied, check_limits, output_guard, run_step_test
 from ..store import RecordStore
 from .common import SAFETY_NOTE, add_command, add_count, add_out, console, progress_bar, record_line
 from .sim import parse_selection
@@ -63,31 +64,73 @@ def run_command(args: argparse.Namespace) -> int:
     out = args.out or profile.output.file
     screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
-    stored, failed = 0, 0
+    failed = 0
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         out.parent.mkdir(parents=True, exist_ok=True)
+        applied = Applied()  # the run configures once: later step tests send only what the plan changes
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
-                progress_bar(screen) as progress:
+                progress_bar(screen) as progress, _Keeper(judge, store, progress.console) as keeper, \
+                output_guard(bench.generator):  # left first: the output goes off before the last records are kept
             task = progress.add_task(profile.name, total=args.count)
             for _ in range(args.count):
                 try:
-                    records = run_step_test(profile, bench.generator, bench.scope)
+                    records = run_step_test(profile, bench.generator, bench.scope, applied)
                 except InstrumentError as exc:
                     failed += 1
+                    keeper.wait()  # the lines stay in the order of the step tests
                     progress.console.print(Text(f"not acquired: {exc}"))
                     progress.advance(task)
                     continue
-                for record in records:
-                    record.analysis = _judged(judge, record, progress.console)
-                    index = store.append(record)
-                    stored += 1
-                    progress.console.print(record_line(index, record))
+                keeper.keep(records)
                 progress.advance(task)
+        stored = keeper.stored
     screen.print(Text(f"{stored} record(s) stored in {out}; {failed} step test(s) not acquired"))
     return 1 if failed else 0
+
+
+class _Keeper:
+    """Compares and stores a step test's records on one worker thread while the next step test captures.
+
+    The pipeline is one step test deep: ``keep`` first waits until the previous step test's records are
+    durable (their lines printed), so at most one step test's records are not yet stored, they are stored
+    in order, and an error storing them is raised in the run, as before. Leaving waits for the last ones
+    whatever ended the run (an interrupt included): a captured record is never dropped.
+    """
+
+    def __init__(self, judge: Callable[[Record], dict[str, Any]] | None, store: RecordStore,
+                 console: Console) -> None:
+        self._judge, self._store, self._console = judge, store, console
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="acqd-keeper")
+        self._pending: Future[None] | None = None
+        self.stored = 0
+
+    def keep(self, records: list[Record]) -> None:
+        self.wait()
+        self._pending = self._pool.submit(self._keep, records)
+
+    def wait(self) -> None:
+        pending, self._pending = self._pending, None
+        if pending is not None:
+            pending.result()
+
+    def _keep(self, records: list[Record]) -> None:
+        for record in records:
+            record.analysis = _judged(self._judge, record, self._console)
+            index = self._store.append(record)
+            self.stored += 1
+            self._console.print(record_line(index, record))
+
+    def __enter__(self) -> _Keeper:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        try:
+            self.wait()
+        finally:
+            self._pool.shutdown(wait=True)
 
 
 def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,

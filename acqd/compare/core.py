@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..models import StateSpace
+from ..models import StateSpace, with_sensitivities
 from ..record import TIMING_SETTING, Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
@@ -32,6 +32,7 @@ STEP_MIN_SHARE = 1e-3  # a signal whose rest value moves less than this share of
 ALIGN_SEARCH_SAMPLES = 10
 EDGE_PARAMETER = "edge_t50_s"  # the edge instant, fitted with the parameters when a stimulus channel is mapped
 WEIGHT_FLOOR_SHARE = 1e-6  # a channel's weight never drops below this share of its range (noise-free data)
+MATRIX_STEP_SHARE = 1e-6  # relative step of the builder's central differences for ∂A, ∂B, ∂C, ∂D
 
 
 @dataclass
@@ -134,6 +135,60 @@ class _Setup:
         offsets = np.array([m.offset for m in self.mapping])
         return x, (x @ p.T + np.outer(u, q)).T + offsets[:, None], u
 
+    def sensitivities(self, values: Mapping[str, float], edge: Edge, edge_parameter: str,
+                      channel_scale: np.ndarray) -> np.ndarray:
+        """∂(predicted channel × ``channel_scale``)/∂value for each of ``values`` in its order (model
+        parameters, and ``edge_parameter`` if present, the edge's t50 instant): one column each, the
+        channels one after the other down the rows, as the fit's residual vector has them.
+
+        The state's derivatives come from one propagation of ``with_sensitivities`` (Van Loan's block
+        exponential); they need ∂A, ∂B (and ∂C, ∂D for the channel rows) by each parameter, which come
+        from central differences of the model builder at a relative step of 1e-6: a builder's matrices
+        are rational in the parts' values, so that is accurate to about 1e-10 and costs two builds of a
+        few small matrices, against two simulations of every sample for a difference of the response.
+        The edge instant needs no extra state: the circuit starts at rest and is time-invariant, so
+        moving the edge later by dτ moves the whole response, ∂x/∂t50 = −dx/dt = −(A x + B u), and the
+        EMF's ramp by −du/dt. Each channel's block is then one product of [states, u, du/dt] with a small
+        matrix, written in place: the cost is about one pass over the Jacobian.
+        """
+        params = {k: v for k, v in values.items() if k != edge_parameter}
+        model = self.model(params)
+        p, q = self.rows(model)
+        d_models = [self._model_derivative(params, name) for name in params]
+        moved = replace(edge, t50_s=values.get(edge_parameter, edge.t50_s))
+        xs, _, u = edge_response(with_sensitivities(model, [d.A for d in d_models], [d.B for d in d_models]),
+                                 self.times, moved)
+        n, columns = len(model.states), xs.shape[1]
+        basis = np.empty((len(u), columns + 2))
+        basis[:, :columns], basis[:, columns], basis[:, columns + 1] = xs, u, moved.slope(self.times)
+        # weights[:, c, j]: channel c's derivative by value j is basis @ weights[:, c, j]
+        weights = np.zeros((columns + 2, len(self.mapping), len(values)))
+        for j, name in enumerate(values):
+            if name == edge_parameter:
+                weights[:n, :, j], weights[columns, :, j], weights[columns + 1, :, j] = (
+                    -(p @ model.A).T, -(p @ model.B[:, 0]), -q)
+                continue
+            k = list(params).index(name)
+            dp, dq = self.rows(d_models[k])
+            weights[n * (1 + k):n * (2 + k), :, j], weights[:n, :, j], weights[columns, :, j] = p.T, dp.T, dq
+            weights[:, :, j] /= _size(params[name])
+        weights *= np.asarray(channel_scale, dtype=float).reshape(1, -1, 1)
+        out = np.empty((len(self.mapping) * len(u), len(values)))
+        for c in range(len(self.mapping)):
+            np.matmul(basis, weights[:, c, :], out=out[c * len(u):(c + 1) * len(u)])
+        return out
+
+    def _model_derivative(self, params: Mapping[str, float], name: str) -> StateSpace:
+        """|p|·∂A/∂p, |p|·∂B/∂p, … for p = ``name`` (as a StateSpace of derivatives), by central differences
+        of the builder at a step of 1e-6 of the value (see ``sensitivities``). Taken per
+        relative change of p, they have the scale of the model's own matrices whatever p's unit (∂A/∂C is
+        1e14 times A for 100 nF), so the sensitivity system stays well conditioned."""
+        size = _size(params[name])
+        plus = self.model({**params, name: params[name] + MATRIX_STEP_SHARE * size})
+        minus = self.model({**params, name: params[name] - MATRIX_STEP_SHARE * size})
+        return StateSpace(*((getattr(plus, k) - getattr(minus, k)) / (2 * MATRIX_STEP_SHARE) for k in "ABCD"),
+                          states=plus.states, inputs=plus.inputs, outputs=plus.outputs)
+
     def align(self, model: StateSpace) -> Edge:
         """The edge placed by the stimulus channel when one is marked; otherwise as the metadata says."""
         marked = [i for i, m in enumerate(self.mapping) if m.stimulus]
@@ -144,6 +199,11 @@ class _Setup:
         dt = self.times[1] - self.times[0]
         return align_edge(model, self.times, self.edge, self.measured[i] - self.mapping[i].offset, p[i], q[i],
                           max(ALIGN_SEARCH_SAMPLES * dt, 2 * self.edge.duration_s))
+
+
+def _size(value: float) -> float:
+    """The scale a parameter's derivative is taken on: its magnitude, or 1 at zero."""
+    return abs(value) or 1.0
 
 
 def _default_mapping(spec: CompareSpec, record: Record, model: StateSpace) -> tuple[ChannelMap, ...]:
@@ -196,7 +256,7 @@ def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> n
     return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
 
 
-def _fit(setup: _Setup, edge: Edge) -> FitResult:
+def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = None) -> FitResult:
     """Identify the free parameters. With a stimulus channel and an edge the samples resolve, the edge
     instant is fitted alongside them, since aligning it with a model whose parameters are still wrong
     would bias both; an unresolved edge keeps the whole-sample position the alignment found."""
@@ -216,8 +276,13 @@ def _fit(setup: _Setup, edge: Edge) -> FitResult:
         _, predicted, _ = setup.predict(setup.model(params), moved)
         return ((setup.measured - predicted) / weights).ravel()
 
+    def jacobian_of(values: dict[str, float]) -> np.ndarray:
+        return setup.sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
+
     hold_order = (*spec.fit.hold, *DEFAULT_HOLD.get(spec.model, ()))
-    return fit_parameters(residuals_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,), len(setup.mapping))
+    warm = {k: v for k, v in (warm_start or {}).items() if k != EDGE_PARAMETER}  # the edge is this record's own
+    return fit_parameters(residuals_of, jacobian_of, free, hold_order, spec.fit.weighting, (EDGE_PARAMETER,),
+                          len(setup.mapping), warm)
 
 
 def _polarity(model: StateSpace, signal: Signal, gain: float, edge: Edge, span: float) -> str | None:
@@ -310,14 +375,17 @@ def stored_traces(record: Record, spec: CompareSpec, analysis: Mapping[str, Any]
     return _traces(setup, model, x, predicted, u)
 
 
-def compare_spec(record: Record, spec: CompareSpec, label: str = "") -> CompareResult:
+def compare_spec(record: Record, spec: CompareSpec, label: str = "",
+                 warm_start: Mapping[str, float] | None = None) -> CompareResult:
     """Compare ``record`` with the validated ``spec``: the one entry point the API, CLI and report share.
 
-    ``label`` names the record in error messages (a file name); by default "record N".
+    ``label`` names the record in error messages (a file name); by default "record N". ``warm_start``
+    (fitted values of an earlier record, ``fitted_values``) is where a fit's solver begins; the result
+    is the same optimum as from the nominal values (see ``fit_parameters``).
     """
     setup = _setup(record, spec, label or (f"record {record.index}" if record.index is not None else "the record"))
     edge = setup.align(setup.model())
-    fit = _fit(setup, edge) if spec.fit.free else None
+    fit = _fit(setup, edge, warm_start) if spec.fit.free else None
     fitted = {k: v for k, v in fit.values.items() if k not in fit.nuisance} if fit else {}
     if fit and EDGE_PARAMETER in fit.values:
         edge = replace(edge, t50_s=fit.values[EDGE_PARAMETER])

@@ -60,6 +60,14 @@ class Edge:
         return self.before_v + share * (self.after_v - self.before_v)
 
 
+    def slope(self, times: np.ndarray) -> np.ndarray:
+        """dEMF/dt at ``times``: the ramp's slope inside it, 0 outside (and everywhere for an ideal step)."""
+        if self.duration_s == 0:
+            return np.zeros(len(times))
+        inside = (times > self.start_s) & (times < self.end_s)
+        return np.where(inside, (self.after_v - self.before_v) / self.duration_s, 0.0)
+
+
 def steady_state(model: StateSpace, u: float) -> np.ndarray:
     """The rest state for a constant EMF; refuses a model that has none (an integrator, a free oscillator)."""
     x = model.steady_state(u)

@@ -24,10 +24,12 @@ from .. import scpi
 from ..errors import ConfigError, InstrumentError, SafetyError
 from ..record import EDGES, Stimulus, TimeBase
 from ..visa import DEFAULT_BACKEND, InstrumentTimeout, Session
-from ..visa.session import CLEAR_STATUS
+from ..visa.session import CLEAR_STATUS, EVENT_STATUS
 from .driver import Driver, Readback, load_driver
 from .expression import ExpressionError
 from .search import find_driver
+
+ESR_OPERATION_COMPLETE = 0x01  # bit 0 of the standard event status register (IEEE 488.2 §11.5.1.1)
 
 
 class _Role:
@@ -49,6 +51,16 @@ class _Role:
     def setup(self) -> None:
         """Start from an empty error queue (old entries are not ours), then the driver's setup commands."""
         self._send([CLEAR_STATUS, *(self.driver.render(t) for t in self.driver.setup)], "setup")
+
+    def status_changed(self) -> bool:
+        """One ``*ESR?``: whether anything was flagged since it was last read or cleared — an error (its
+        bits 2–5) or a power cycle (bit 7, PON) — reading it clears it (IEEE 488.2 §11.5.1; bit 0, operation
+        complete, is not a change). The cheap per-record check of a run that sends no set-up."""
+        reply = self.session.query(EVENT_STATUS)
+        try:
+            return bool(scpi.parse_nr1(reply) & ~ESR_OPERATION_COMPLETE)
+        except ValueError as exc:
+            raise InstrumentError(self.resource, f"reply {reply!r} to {EVENT_STATUS!r}: {exc}") from None
 
     def close(self) -> None:
         self.session.close()

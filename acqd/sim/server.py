@@ -645,6 +645,11 @@ class SCPIInstrument:
         self._opc_armed = False
 
     # -- messages ----------------------------------------------------------------------------------
+    def start_logging(self) -> None:
+        """Keep every program message received from now on in ``command_log`` (what tests check reached
+        the wire); the generator always does."""
+        self._log_messages = True
+
     def log_message(self, text: str) -> None:
         if not self._log_messages:
             return

@@ -39,6 +39,7 @@ TERMINATION = "\n"
 # IEEE 488.2 common queries and the SCPI error queue (SCPI-1999 Vol 2 §21.8); fixed text, no values.
 IDENTIFY = "*IDN?"
 CLEAR_STATUS = "*CLS"
+EVENT_STATUS = "*ESR?"
 NEXT_ERROR = "SYSTem:ERRor?"
 # Ordinary (text) reads: large enough that a long ASCii reply is not read in dozens of pieces.
 TEXT_CHUNK_BYTES = 1 << 16

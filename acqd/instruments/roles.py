@@ -314,10 +314,11 @@ class Switch(_Role):
                                                           f"ohm), over the switch's {limits['max_current_a']:g} A; "
                                                           f"nothing was closed")
 
-    def close(self, channels: tuple[int, ...]) -> None:
+    def close_channels(self, channels: tuple[int, ...]) -> None:
+        """Close these relays (``close`` alone is the role's: it closes the connection)."""
         self._change("close", channels)
 
-    def open(self, channels: tuple[int, ...]) -> None:
+    def open_channels(self, channels: tuple[int, ...]) -> None:
         self._change("open", channels)
 
     def open_all(self) -> None:

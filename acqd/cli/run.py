@@ -20,7 +20,7 @@ from ..benchsession import Bench, Replay, open_bench
 from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
 from ..plan import ready_profile
-from ..display import si
+from ..display import label, si
 from ..profile import Profile
 from ..record import Record
 from ..steptest import check_limits, run_step_test
@@ -149,14 +149,14 @@ def print_batch_summary(screen: Console, results: list[Any], dut: dict[str, Any]
     for u in units:
         line = Text(f"  {u.serial:<14} ").append_text(verdict_text(u.verdict) if u.verdict != "skipped"
                                                        else Text("skipped"))
-        fitted = "  ".join(f"{n} {si(u.fitted[n], _unit(spreads, n))}" for n in names if n in u.fitted)
+        fitted = "  ".join(f"{label(n)} {si(u.fitted[n], _unit(spreads, n))}" for n in names if n in u.fitted)
         line.append(f"  {fitted}" if fitted else "")
         if u.verdict in ("fail", "skipped") and u.reason:
             line.append(f"  ({u.reason})")
         screen.print(line)
     for s in spreads:
         tolerance = f"tolerance ±{s.tolerance_pct:g} %" if s.tolerance_pct is not None else "no tolerance"
-        screen.print(Text(f"  {s.parameter}: nominal {si(s.nominal, s.unit)}, {si(s.minimum, s.unit)} – "
+        screen.print(Text(f"  {label(s.parameter)}: nominal {si(s.nominal, s.unit)}, {si(s.minimum, s.unit)} – "
                           f"{si(s.maximum, s.unit)}, mean {si(s.mean, s.unit)}, s.d. {100 * s.std / abs(s.nominal):.2g} %,"
                           f" worst {s.worst_deviation_pct:.2g} % off nominal; {tolerance}"))
 

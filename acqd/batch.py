@@ -56,6 +56,16 @@ def unit_judges(profile: Profile, batch: Batch) -> dict[str, Judge | None]:
     return {unit.serial: make_judge(unit_profile(profile, unit)) for unit in batch.units}
 
 
+def batch_judge(profile: Profile) -> Judge | None:
+    """One judge for a profile's records: with a batch, each record is judged by its own unit's comparator."""
+    if profile.batch is None:
+        return make_judge(profile)
+    judges = unit_judges(profile, profile.batch)
+    if all(judge is None for judge in judges.values()):
+        return None
+    return lambda record: judges[record.unit_serial](record)
+
+
 def check_batch_limits(profile: Profile, generator: GeneratorRole, switch: SwitchRole) -> None:
     """The step test's limits and the switch's rated voltage and current, before any relay closes."""
     check_limits(profile, generator)
@@ -96,8 +106,6 @@ def run_unit(profile: Profile, unit: BatchUnit, generator: GeneratorRole, scope:
             return UnitResult(unit, skipped=f"path {scpi.format_channel_list(unit.channels)} did not verify: "
                                             f"the switch reports {scpi.format_channel_list(still_open)} open")
         records = run_step_test(unit_profile(profile, unit), generator, scope)
-    except InstrumentError as exc:
-        return UnitResult(unit, skipped=f"not acquired: {exc}")
     finally:
         generator.output(False)
         switch.open_all()
@@ -110,11 +118,15 @@ def run_unit(profile: Profile, unit: BatchUnit, generator: GeneratorRole, scope:
 
 def run_batch(profile: Profile, generator: GeneratorRole, scope: ScopeRole, switch: SwitchRole,
               units: Iterable[BatchUnit] | None = None) -> Iterator[UnitResult]:
-    """Every unit (or those given) in turn; each result is yielded so it can be stored before the next."""
+    """Every unit (or those given) in turn; each result is yielded so it can be stored before the next. An
+    instrument error on one unit (a capture that timed out) skips that unit, not the batch."""
     check_batch_limits(profile, generator, switch)
     with switch_guard(generator, switch):
         for unit in profile.batch.units if units is None else units:
-            yield run_unit(profile, unit, generator, scope, switch)
+            try:
+                yield run_unit(profile, unit, generator, scope, switch)
+            except InstrumentError as exc:
+                yield UnitResult(unit, skipped=f"not acquired: {exc}")
 
 
 # ---------------------------------------------------------------------------------------------------

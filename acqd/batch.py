@@ -160,28 +160,35 @@ class UnitSummary:
 
 
 def summarise(results: Iterable[UnitResult], dut: dict[str, Any]) -> tuple[list[UnitSummary], list[Spread]]:
-    """Per unit: the worst verdict of its records and its fitted values; per parameter: the spread."""
-    units, values, nominal, units_of = [], {}, {}, {}
+    """Per unit (all its records, over every pass of the batch): the worst verdict and its fitted values;
+    per parameter: the spread over the units. A unit never measured is ``skipped`` with the last reason."""
+    grouped: dict[str, tuple[list[Record], list[str]]] = {}
     for result in results:
+        records, reasons = grouped.setdefault(result.unit.serial, ([], []))
+        records.extend(result.records)
         if result.skipped is not None:
-            units.append(UnitSummary(result.unit.serial, "skipped", {}, result.skipped))
+            reasons.append(result.skipped)
+    units, values, nominal, units_of = [], {}, {}, {}
+    for serial, (records, skips) in grouped.items():
+        if not records:
+            units.append(UnitSummary(serial, "skipped", {}, skips[-1]))
             continue
-        analyses = [r.analysis or {} for r in result.records]
+        analyses = [r.analysis or {} for r in records]
         verdicts = [a.get("verdict", "untested") for a in analyses]
         verdict = "fail" if "fail" in verdicts else "pass" if verdicts and all(v == "pass" for v in verdicts) \
             else "untested"
         fitted = _fitted(analyses, nominal, units_of)
         for name, value in fitted.items():
             values.setdefault(name, []).append(value)
-        reasons = [reason for a in analyses for reason in a.get("reasons", [])]
-        units.append(UnitSummary(result.unit.serial, verdict, fitted, "; ".join(reasons)))
+        reasons = list(dict.fromkeys(reason for a in analyses for reason in a.get("reasons", [])))
+        units.append(UnitSummary(serial, verdict, fitted, "; ".join([*reasons, *skips])))
     spreads = [_spread(name, vals, nominal[name], units_of.get(name, ""), dut) for name, vals in values.items()]
     return units, spreads
 
 
 def _fitted(analyses: list[dict[str, Any]], nominal: dict[str, float], units_of: dict[str, str]) -> dict[str, float]:
     """A unit's fitted model parameters (nuisance values such as the edge instant left out), averaged
-    over its records (one per edge)."""
+    over its records (one per edge and pass)."""
     sums: dict[str, list[float]] = {}
     for analysis in analyses:
         fit = analysis.get("fit") or {}

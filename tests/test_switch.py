@@ -343,3 +343,25 @@ def _stored(path: Path) -> int:
             return len(reader)
     except Exception:  # noqa: BLE001 - not created yet, or being written: look again
         return 0
+
+
+def test_acqd_run_ends_with_the_batch_summary_and_ls_groups_by_unit(tmp_path: Path,
+                                                                     capsys: pytest.CaptureFixture) -> None:
+    import json
+
+    path = batch_profile(tmp_path, units=3, log=False)
+    assert main(["run", str(path), "-n", "2"]) == 0
+    out = capsys.readouterr().out
+    summary = out[out.index("batch summary"):]
+    assert summary.startswith("batch summary: 2 of 3 unit(s) pass")  # two passes over three units
+    lines = {line.split()[0]: line for line in summary.splitlines()[1:4]}
+    assert "FAIL" in lines["KT9-4801"] and "pass" in lines["KT9-4802"]  # socket 1 holds the wrong part here
+    store = str(tmp_path / "records.h5")
+    assert main(["ls", store, "--by-unit", "--json"]) == 0
+    grouped = json.loads(capsys.readouterr().out)
+    with open_records(store) as reader:  # the grouping agrees with each record read back in full
+        expected: dict[str, list[int]] = {}
+        for i in range(len(reader)):
+            expected.setdefault(reader.read(i).unit_serial, []).append(i)
+    assert {u["serial"]: u["records"] for u in grouped} == expected
+    assert [u["paths"] for u in grouped] == [["(@101,201)"], ["(@102,202)"], ["(@103,203)"]]

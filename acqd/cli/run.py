@@ -153,12 +153,12 @@ def print_batch_summary(screen: Console, results: list[Any], dut: dict[str, Any]
         line.append(f"  {fitted}" if fitted else "")
         if u.verdict in ("fail", "skipped") and u.reason:
             line.append(f"  ({u.reason})")
-        screen.print(line)
+        screen.print(line, soft_wrap=True)
     for s in spreads:
         tolerance = f"tolerance ±{s.tolerance_pct:g} %" if s.tolerance_pct is not None else "no tolerance"
         screen.print(Text(f"  {label(s.parameter)}: nominal {si(s.nominal, s.unit)}, {si(s.minimum, s.unit)} – "
                           f"{si(s.maximum, s.unit)}, mean {si(s.mean, s.unit)}, s.d. {100 * s.std / abs(s.nominal):.2g} %,"
-                          f" worst {s.worst_deviation_pct:.2g} % off nominal; {tolerance}"))
+                          f" worst {s.worst_deviation_pct:.2g} % off nominal; {tolerance}"), soft_wrap=True)
 
 
 def _unit(spreads: list[Any], name: str) -> str:

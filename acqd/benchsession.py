@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ConfigError
-from .instruments import Driver, Generator, Scope, find_driver, load_driver, open_instrument
+from .instruments import Driver, Generator, Scope, Switch, find_driver, load_driver, open_instrument
 from .profile import InstrumentPlan, Profile
 from .visa import identify
 
@@ -25,6 +25,7 @@ class Bench:
     generator: Generator
     scope: Scope
     simulated: Any | None  # the running SimBench or ReplayBench, for its command log and drift clock
+    switch: Switch | None = None  # the profile's [bench.switch], if it has one
 
 
 @dataclass(frozen=True)
@@ -39,7 +40,8 @@ def simulated_bench(profile: Profile) -> Any:
     """A not-yet-started simulated bench built from the profile's [bench.simulated] table."""
     from .sim.bench import SimBench, SimBenchConfig  # the simulated bench is only imported when asked for
 
-    config = SimBenchConfig.from_mapping(profile.bench.simulated or {}, profile.source, profile.text)
+    units = len(profile.batch.units) if profile.batch is not None else None
+    config = SimBenchConfig.from_mapping(profile.bench.simulated or {}, profile.source, profile.text, units)
     return SimBench(config)
 
 
@@ -60,8 +62,9 @@ def _simulated_resource(plan: InstrumentPlan, driver: Driver, identities: dict[s
 
 @contextmanager
 def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench]:
-    """Both roles, opened and identified; everything is closed (and the simulated bench stopped) on exit."""
-    plans = (profile.bench.generator, profile.bench.scope)
+    """Every role, opened and identified (the switch too when the profile names one); everything is closed
+    (and the simulated bench stopped) on exit."""
+    plans = tuple(p for p in (profile.bench.generator, profile.bench.scope, profile.bench.switch) if p is not None)
     # A bad driver name is a profile error, found before anything is started.
     drivers = [load_driver(find_driver(plan.driver, source=f"{profile.source}: bench.{plan.role}.driver"))
                for plan in plans]
@@ -86,4 +89,4 @@ def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench
             role = open_instrument(resource, plan.driver, backend=plan.backend, timeout_s=plan.timeout_s)
             stack.callback(role.close)
             roles.append(role)
-        yield Bench(roles[0], roles[1], sim)
+        yield Bench(roles[0], roles[1], sim, roles[2] if len(roles) > 2 else None)

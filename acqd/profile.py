@@ -8,12 +8,14 @@ command or creates a file.
 from __future__ import annotations
 
 import hashlib
+import string
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from . import scpi
 from .config import Table, load_toml
 from .record import EDGES, LOADS, Stimulus
 from .visa import DEFAULT_BACKEND, NAMED_BACKENDS
@@ -42,6 +44,7 @@ class BenchPlan:
     generator: InstrumentPlan
     scope: InstrumentPlan
     simulated: dict[str, Any] | None  # the [bench.simulated] table, validated by the simulated bench
+    switch: InstrumentPlan | None = None  # optional: a bench without a switch tests one unit at a time
 
 
 @dataclass(frozen=True)
@@ -120,6 +123,21 @@ class OutputPlan:
 
 
 @dataclass(frozen=True)
+class BatchUnit:
+    """One unit of a batch: its serial, the switch channels that connect it, its own nominal values."""
+
+    serial: str
+    channels: tuple[int, ...]
+    nominal: dict[str, Any]  # over the [dut] table's values for this unit (a part of another value)
+
+
+@dataclass(frozen=True)
+class Batch:
+    name: str
+    units: tuple[BatchUnit, ...]
+
+
+@dataclass(frozen=True)
 class Profile:
     path: Path
     text: str
@@ -132,6 +150,7 @@ class Profile:
     limits: Limits
     output: OutputPlan
     campaign: dict[str, Any] = field(default_factory=dict)
+    batch: Batch | None = None
 
     @property
     def sha256(self) -> str:
@@ -157,8 +176,12 @@ def load_profile(path: str | Path) -> Profile:
     dut = _dut(top.table("dut", {}), path.parent)
     output = _output(top.table("output", {}), path)
     campaign = dict(top.raw("campaign", {}))
+    batch = _batch(top.table("batch"), name) if top.has("batch") else None
+    if batch is not None and bench.switch is None:
+        raise top.error("batch", "a batch needs a switch to step through its units: add [bench.switch] with "
+                                 "its driver (e.g. driver = \"scpi-switch\")")
     top.done()
-    return Profile(path, text, name, bench, stimulus, acquisition, math, dut, limits, output, campaign)
+    return Profile(path, text, name, bench, stimulus, acquisition, math, dut, limits, output, campaign, batch)
 
 
 def _done_profile_table(top: Table) -> None:
@@ -192,6 +215,7 @@ def _bench(t: Table, profile_dir: Path) -> BenchPlan:
     kind = t.string("kind", choices=BENCH_KINDS)
     generator = _instrument(t.table("generator"), "generator", kind)
     scope = _instrument(t.table("scope"), "scope", kind)
+    switch = _instrument(t.table("switch"), "switch", kind) if t.has("switch") else None
     simulated = t.raw("simulated", None)
     if kind == "simulated" and simulated is None:
         simulated = {}
@@ -202,7 +226,91 @@ def _bench(t: Table, profile_dir: Path) -> BenchPlan:
         if isinstance(simulated.get("dut"), dict):
             simulated = {**simulated, "dut": _inline_netlist_file(table.table("dut"), profile_dir)}
     t.done()
-    return BenchPlan(kind, generator, scope, simulated)
+    return BenchPlan(kind, generator, scope, simulated, switch)
+
+
+def _batch(t: Table, profile_name: str) -> Batch:
+    """``[[batch.units]]`` listed one by one, or ``[batch.range]`` with a serial pattern; not both."""
+    name = t.string("name", profile_name)
+    if t.has("units") == t.has("range"):
+        raise t.error("units", "give the units either as [[batch.units]] (serial, channels) or as [batch.range] "
+                               "(count, serial pattern, first unit's channels), exactly one of them")
+    units = _listed_units(t) if t.has("units") else _ranged_units(t.table("range"))
+    t.done()
+    seen_serials: dict[str, int] = {}
+    seen_paths: dict[tuple[int, ...], str] = {}
+    for i, unit in enumerate(units):
+        if unit.serial in seen_serials:
+            raise t.error("units", f"serial {unit.serial!r} appears twice (units {seen_serials[unit.serial] + 1} "
+                                   f"and {i + 1}); every unit needs its own")
+        key = tuple(sorted(unit.channels))
+        if key in seen_paths:
+            raise t.error("units", f"units {seen_paths[key]!r} and {unit.serial!r} have the same switch path "
+                                   f"{scpi.format_channel_list(unit.channels)}; one would be measured as the other")
+        seen_serials[unit.serial] = i
+        seen_paths[key] = unit.serial
+    return Batch(name, tuple(units))
+
+
+def _listed_units(t: Table) -> list[BatchUnit]:
+    raw = t.raw("units")
+    if not isinstance(raw, list) or not raw or not all(isinstance(u, dict) for u in raw):
+        raise t.error("units", "must be a non-empty array of tables: [[batch.units]] serial = ..., channels = ...")
+    units = []
+    for i, entry in enumerate(raw):
+        u = Table(entry, t.source, f"{t.path}.units[{i}]", t.text)
+        nominal = u.table("nominal", {})
+        unit = BatchUnit(u.string("serial"), _channel_list(u, "channels"), _nominal(nominal))
+        nominal.done()
+        u.done()
+        units.append(unit)
+    return units
+
+
+def _nominal(t: Table) -> dict[str, Any]:
+    """A unit's own nominal values: numbers only (the comparator checks that each names a model part)."""
+    return {name: t.number(name) for name in list(t.data)}
+
+
+def _ranged_units(t: Table) -> list[BatchUnit]:
+    """``count`` units: serial ``pattern.format(n=first + i)``, channels the first unit's + i × channel_step."""
+    count = t.integer("count", min=1, max=10_000)
+    first = t.integer("first", 1, min=0)
+    pattern = _serial_pattern(t, "serial", first)
+    channels = _channel_list(t, "channels")
+    step = t.integer("channel_step", 1, min=1)
+    t.done()
+    return [BatchUnit(pattern.format(n=first + i), tuple(c + i * step for c in channels), {}) for i in range(count)]
+
+
+def _serial_pattern(t: Table, key: str, first: int) -> str:
+    """A serial pattern with one ``{n}`` (optionally ``{n:04d}``) for the unit number."""
+    pattern = t.string(key)
+    try:
+        fields = [(name, spec) for _, name, spec, _ in string.Formatter().parse(pattern) if name is not None]
+        if [name for name, _ in fields] != ["n"]:
+            raise ValueError("needs exactly one {n}")
+        pattern.format(n=first)
+    except (ValueError, IndexError, KeyError) as exc:
+        raise t.error(key, f"{pattern!r} is not a serial pattern ({exc}); write e.g. \"KT9-48{{n:02d}}\"") from None
+    return pattern
+
+
+def _channel_list(t: Table, key: str) -> tuple[int, ...]:
+    """Channels as a channel list ``"(@101,201)"`` or an array ``[101, 201]``: each once, at least one."""
+    raw = t.raw(key)
+    try:
+        if isinstance(raw, str):
+            channels = scpi.parse_channel_list(raw)
+        elif isinstance(raw, list) and all(isinstance(c, int) and not isinstance(c, bool) and c > 0 for c in raw):
+            channels = tuple(raw)
+        else:
+            raise ValueError(f"not a channel list, got {raw!r}")
+    except ValueError as exc:
+        raise t.error(key, f"{exc}; write \"(@101,201)\" or [101, 201]") from None
+    if not channels or len(set(channels)) != len(channels):
+        raise t.error(key, f"{raw!r} must name at least one channel, each once")
+    return channels
 
 
 def _inline_netlist_file(t: Table, profile_dir: Path) -> dict[str, Any]:

@@ -27,6 +27,7 @@ _COLUMN_HEADER = re.compile(r"^\s*(.*?)\s*(?:\[\s*([^\]]*?)\s*\])?\s*$")
 
 # settings key that says where t = 0 of a record came from, for records not triggered by acqd (a CSV).
 TIMING_SETTING = "timing"
+BATCH_SETTING = "batch"  # settings key of a batch record: the unit serial and the switch path that connected it
 
 
 @dataclass(frozen=True)
@@ -103,6 +104,17 @@ class Record:
     averages: int = 1
     analysis: dict[str, Any] | None = None
     index: int | None = None
+
+    @property
+    def unit_serial(self) -> str | None:
+        """The unit this record is of: the batch's serial (a switch chose it), else the [dut] table's."""
+        batch = self.settings.get(BATCH_SETTING) or {}
+        return batch.get("serial") or self.dut.get("serial")
+
+    @property
+    def switch_path(self) -> str | None:
+        """The switch channels that connected the unit, as a channel list ``(@101,201)``; None without a switch."""
+        return (self.settings.get(BATCH_SETTING) or {}).get("path")
 
     def channel(self, name: str) -> Channel:
         """The channel called ``name``; a KeyError lists the names that exist."""

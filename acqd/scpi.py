@@ -16,6 +16,7 @@ import numbers
 import re
 import string
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -142,6 +143,8 @@ def format_value(value: Any) -> str:
         return format_number(value)
     if isinstance(value, str):
         return _check_token_list(value)
+    if isinstance(value, ChannelList):
+        return format_channel_list(value.channels)
     if isinstance(value, (tuple, list)):
         return ",".join(format_value(v) for v in value)
     raise ValueError(f"cannot send a value of type {type(value).__name__}: {value!r}")
@@ -258,8 +261,10 @@ def parse_string(text: str) -> str:
 
 
 def split_reply(text: str, sep: str = ";") -> list[str]:
-    """Split a reply at ``sep`` outside quoted strings: several queries' answers (``;``) or values (``,``)."""
-    parts, current, quote = [], [], ""
+    """Split a reply at ``sep`` outside quoted strings and parentheses: several queries' answers (``;``) or
+    values (``,``). A parenthesised part is expression data (IEEE 488.2 §7.7.7), such as a channel list
+    ``(@101,102)``, whose commas belong to it."""
+    parts, current, quote, depth = [], [], "", 0
     for ch in text.strip():
         if quote:
             current.append(ch)
@@ -268,7 +273,10 @@ def split_reply(text: str, sep: str = ";") -> list[str]:
         elif ch in "\"'":
             quote = ch
             current.append(ch)
-        elif ch == sep:
+        elif ch in "()":
+            depth += 1 if ch == "(" else -1
+            current.append(ch)
+        elif ch == sep and depth == 0:
             parts.append("".join(current).strip())
             current = []
         else:
@@ -459,3 +467,77 @@ def parse_value_with_unit(text: str, unit: str) -> float:
     if not match:
         raise ValueError(f"expected a number with an optional {unit or 'unit'} suffix, got {text!r}")
     return float(match.group(1)) * suffix_multiplier(match.group(2), unit)
+
+
+# ---------------------------------------------------------------------------------------------------
+# Channel lists (SCPI-1999 Vol 1 §8.3.2, from memory): ``(@101,102)``, ranges ``(@101:108)``
+# ---------------------------------------------------------------------------------------------------
+
+_CHANNEL_LIST = re.compile(r"\(\s*@(?P<body>[^()]*)\)")
+_CHANNEL_ENTRY = re.compile(r"([0-9]+)(?:\s*:\s*([0-9]+))?")
+MAX_CHANNEL_LIST_ENTRIES = 10_000  # a range wider than a whole switch frame is a typo, not a path
+
+
+@dataclass(frozen=True)
+class ChannelList:
+    """Switch channel numbers to be sent as one channel list: ``format_value`` writes ``(@101,102)``."""
+
+    channels: tuple[int, ...]
+
+
+def format_channel_list(channels: Iterable[int]) -> str:
+    """``(@101,102,105:108)``: the channels in the order given, a run of three or more as a range.
+
+    Order matters to a switch (it acts on the list in turn), so the list is never sorted.
+    """
+    numbers_ = [_channel_number(c) for c in channels]
+    entries: list[str] = []
+    i = 0
+    while i < len(numbers_):
+        j = i
+        while j + 1 < len(numbers_) and numbers_[j + 1] == numbers_[j] + 1:
+            j += 1
+        if j - i >= 2:
+            entries.append(f"{numbers_[i]}:{numbers_[j]}")
+        else:
+            entries.extend(str(n) for n in numbers_[i:j + 1])
+        i = j + 1
+    return "(@" + ",".join(entries) + ")"
+
+
+def _channel_number(value: Any) -> int:
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral) or value < 1:
+        raise ValueError(f"a switch channel is a positive whole number, not {value!r}")
+    return int(value)
+
+
+def parse_channel_list(text: str) -> tuple[int, ...]:
+    """``(@101,103:105)`` → (101, 103, 104, 105); a descending range ``105:103`` lists 105, 104, 103.
+
+    Only the flat numeric form: module-qualified (``1!101``) and multi-dimensional entries are refused,
+    as is an empty entry; ``(@)`` is the empty list.
+    """
+    match = _CHANNEL_LIST.fullmatch(text.strip())
+    if not match:
+        raise ValueError(f"expected a channel list such as (@101,102) or (@101:108), got {text!r}")
+    body = match.group("body").strip()
+    if not body:
+        return ()
+    channels: list[int] = []
+    for entry in body.split(","):
+        part = _CHANNEL_ENTRY.fullmatch(entry.strip())
+        if not part:
+            raise ValueError(f"channel list {text!r}: entry {entry.strip()!r} is not a channel or a range "
+                             f"first:last of channel numbers")
+        first = int(part.group(1))
+        last = int(part.group(2) or first)
+        step = 1 if last >= first else -1
+        if abs(last - first) + len(channels) >= MAX_CHANNEL_LIST_ENTRIES:
+            raise ValueError(f"channel list {text!r} holds more than {MAX_CHANNEL_LIST_ENTRIES} channels")
+        channels.extend(range(first, last + step, step))
+    return tuple(channels)
+
+
+def parse_bool_list(text: str) -> tuple[bool, ...]:
+    """A comma-separated list of 1/0 (ON/OFF), one per channel asked about (``ROUTe:CLOSe?``)."""
+    return tuple(parse_bool(v) for v in split_reply(text, ",")) if text.strip() else ()

@@ -37,7 +37,7 @@ from multiprocessing.connection import Connection
 from typing import Any
 
 from ..errors import AcqdError
-from ..judge import make_judge
+from ..batch import batch_judge
 from ..profile import Profile
 from ..record import Record
 from .runlog import describe
@@ -59,7 +59,7 @@ def _serve(conn: Connection, profile: Profile) -> None:
     for sig in STOP_SIGNALS:
         signal.signal(sig, signal.SIG_IGN)
     os.nice(WORKER_NICENESS)
-    judge = make_judge(profile)
+    judge = batch_judge(profile)
     try:
         conn.send(READY)
         while (record := conn.recv()) is not None:

@@ -23,6 +23,8 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from .. import scpi
+from ..batch import check_batch_limits, open_left_closed, run_unit
 from ..benchsession import Bench, open_bench
 from ..judge import make_judge
 from ..errors import ConfigError
@@ -100,15 +102,16 @@ class BenchSession:
         return self.bench
 
     def close(self, reason: str) -> None:
-        """Output off first (belt and braces: every step test already ends with it), then close."""
+        """Output off and every relay open first (belt and braces: every step test already ends so), then close."""
         if self.bench is None:
             return
         bench, stack = self.bench, self._stack
         self.bench, self._stack = None, None
-        try:
-            bench.generator.output(False)
-        except Exception:  # noqa: BLE001 - the link may be the thing that failed; closing still matters
-            pass
+        for safe in (lambda: bench.generator.output(False), lambda: bench.switch and bench.switch.open_all()):
+            try:
+                safe()
+            except Exception:  # noqa: BLE001 - the link may be the thing that failed; closing still matters
+                pass
         try:
             stack.close()
         except Exception as exc:  # noqa: BLE001 - a bench that fails to close is logged, the campaign goes on
@@ -165,7 +168,12 @@ class CampaignRunner:
         self.reconcile(new=row is None)
         bench = self.session.get()
         for step in self.spec.steps:
-            check_limits(step.profile, bench.generator)
+            if bench.switch is None:
+                check_limits(step.profile, bench.generator)
+            else:
+                check_batch_limits(step.profile, bench.generator, bench.switch)
+        if bench.switch is not None and (found := open_left_closed(bench.switch)):
+            self._log("switch_found_closed", channels=scpi.format_channel_list(found))
         if self.comparator is not None:
             self.comparator.wait_ready()  # a worker that cannot start is a start-up error, not a nightly fault
 
@@ -336,7 +344,9 @@ class CampaignRunner:
                 if step.number in stored:
                     continue
                 self.activity = f"slot {slot}, {step.label}"
-                self.keeper.put(Acquired(self._acquire(slot, step), slot, step, scheduled))
+                record = self._acquire(slot, step)
+                if record is not None:
+                    self.keeper.put(Acquired(record, slot, step, scheduled))
         except _Stopped:
             self.keeper.put(SlotEnd(slot, started, self._faults, interrupted=True))
         except _SlotFailed as failure:
@@ -346,9 +356,10 @@ class CampaignRunner:
         finally:
             self.activity = "waiting"
 
-    def _acquire(self, slot: int, step: Step) -> Record:
+    def _acquire(self, slot: int, step: Step) -> Record | None:
         """One record of ``step``: each failed attempt is logged, the bench reconnected, and the attempt
-        retried after ``retry_backoff_s`` (doubling), until the slot's ``retries`` are used up."""
+        retried after ``retry_backoff_s`` (doubling), until the slot's ``retries`` are used up. None when
+        the step's unit was skipped (its switch path did not verify): logged, never measured elsewhere."""
         while True:
             if self.stop.requested:
                 raise _Stopped()
@@ -356,7 +367,14 @@ class CampaignRunner:
             self._log("attempt", slot=slot, step=step.number, setting=step.label, attempt=attempt)
             try:
                 bench = self.session.get()
-                return run_step_test(step.profile, bench.generator, bench.scope)[0]
+                if step.unit is None:
+                    return run_step_test(step.profile, bench.generator, bench.scope)[0]
+                result = run_unit(step.profile, step.unit, bench.generator, bench.scope, bench.switch)
+                if result.skipped is not None:
+                    self._log("unit_skipped", slot=slot, step=step.number, serial=step.unit.serial,
+                              reason=result.skipped)
+                    return None
+                return result.records[0]
             except Exception as exc:  # noqa: BLE001 - any failed attempt is logged and retried; the daemon goes on
                 self._faults += 1
                 self._log("fault", slot=slot, step=step.number, attempt=attempt, error=describe(exc))

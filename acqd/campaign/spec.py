@@ -42,7 +42,8 @@ from apscheduler.triggers.cron import CronTrigger
 
 from ..config import Table
 from ..errors import ConfigError
-from ..profile import Profile, StimulusPlan
+from ..batch import unit_profile
+from ..profile import Batch, BatchUnit, Profile, StimulusPlan
 from ..record import EDGES, LOADS
 
 SCHEDULES = ("interval", "cron", "back_to_back")
@@ -57,13 +58,16 @@ CRON_LATENESS_LIMIT_S = 60.0
 class Step:
     """One step test of a slot: a stimulus setting and one edge, so exactly one record.
 
-    ``profile`` is the campaign's profile with this step's stimulus, ready for ``run_step_test``.
+    ``profile`` is the campaign's profile with this step's stimulus, ready for ``run_step_test``. In a
+    batch every unit has its own steps: ``unit`` is the unit the switch connects for it, and ``profile``
+    carries that unit's serial and nominal values.
     """
 
     number: int
     label: str
     setting: dict[str, Any]
     profile: Profile
+    unit: BatchUnit | None = None
 
 
 @dataclass(frozen=True)
@@ -219,7 +223,14 @@ def _steps(sweep: Table, profile: Profile) -> tuple[Step, ...]:
             plan = replace(stimulus, edges=(edge,))
             step_setting = {**setting, "edge": edge}
             steps.append(Step(len(steps) + 1, _label(step_setting), step_setting, replace(profile, stimulus=plan)))
-    return tuple(steps)
+    return tuple(steps) if profile.batch is None else _unit_steps(steps, profile.batch)
+
+
+def _unit_steps(steps: list[Step], batch: Batch) -> tuple[Step, ...]:
+    """Every step on every unit, unit by unit (one pass of the switch per slot), numbered anew."""
+    per_unit = [(unit, step) for unit in batch.units for step in steps]
+    return tuple(Step(n, f"{unit.serial}, {step.label}", {**step.setting, "serial": unit.serial},
+                      unit_profile(step.profile, unit), unit) for n, (unit, step) in enumerate(per_unit, start=1))
 
 
 def _label(setting: dict[str, Any]) -> str:

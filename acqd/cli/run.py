@@ -14,14 +14,18 @@ from typing import Any
 from rich.console import Console
 from rich.text import Text
 
-from ..benchsession import Replay, open_bench
+from .. import scpi
+from ..batch import open_left_closed, run_batch, summarise, unit_judges
+from ..benchsession import Bench, Replay, open_bench
 from ..errors import AcqdError, ConfigError, InstrumentError
 from ..judge import make_judge
 from ..plan import ready_profile
+from ..display import label, si
+from ..profile import Profile
 from ..record import Record
 from ..steptest import Applied, check_limits, output_guard, run_step_test
 from ..store import RecordStore
-from .common import SAFETY_NOTE, add_command, add_count, add_out, console, progress_bar, record_line
+from .common import SAFETY_NOTE, add_command, add_count, add_out, console, progress_bar, record_line, verdict_text
 from .sim import parse_selection
 
 
@@ -60,6 +64,8 @@ def run_command(args: argparse.Namespace) -> int:
     if args.records is not None and args.replay is None:
         raise ConfigError("command line", "--records", "only has a meaning with --replay FILE")
     profile = ready_profile(args.profile)
+    if profile.batch is not None:
+        return _batch_command(args, profile)
     judge = make_judge(profile)  # validates [dut] before anything is started
     out = args.out or profile.output.file
     screen = console(soft_wrap=True)
@@ -67,6 +73,7 @@ def run_command(args: argparse.Namespace) -> int:
     failed = 0
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
+        _open_switch(bench, screen)
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         out.parent.mkdir(parents=True, exist_ok=True)
@@ -131,6 +138,73 @@ class _Keeper:
             self.wait()
         finally:
             self._pool.shutdown(wait=True)
+
+
+def _open_switch(bench: Bench, screen: Console) -> None:
+    """A bench with a switch starts with every relay open, saying so if an earlier run left some closed."""
+    if bench.switch is None:
+        return
+    found = open_left_closed(bench.switch)
+    if found:
+        screen.print(Text(f"switch: {scpi.format_channel_list(found)} found closed at start-up; all opened"))
+
+
+def _batch_command(args: argparse.Namespace, profile: Profile) -> int:
+    """``-n`` passes over the batch: every unit in turn, each record stored before its line, then the summary."""
+    if args.replay is not None:
+        raise ConfigError("command line", "--replay", "a batch profile steps a switch; replay a single-unit profile")
+    judges = unit_judges(profile, profile.batch)
+    out = args.out or profile.output.file
+    screen = console(soft_wrap=True)
+    results, stored, skipped = [], 0, 0
+    with sigterm_raises(), open_bench(profile) as bench:
+        _open_switch(bench, screen)
+        screen.print(Text(SAFETY_NOTE))
+        out.parent.mkdir(parents=True, exist_ok=True)
+        with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
+                progress_bar(screen) as progress:
+            task = progress.add_task(f"{profile.name}: batch {profile.batch.name}",
+                                     total=args.count * len(profile.batch.units))
+            for _ in range(args.count):
+                for result in run_batch(profile, bench.generator, bench.scope, bench.switch):
+                    serial, path = result.unit.serial, scpi.format_channel_list(result.unit.channels)
+                    if result.skipped is not None:
+                        skipped += 1
+                        progress.console.print(Text(f"{serial} {path} skipped: {result.skipped}"))
+                    for record in result.records:
+                        record.analysis = _judged(judges[serial], record, progress.console)
+                        index = store.append(record)
+                        stored += 1
+                        progress.console.print(Text(f"{serial} {path} ").append_text(record_line(index, record)))
+                    results.append(result)
+                    progress.advance(task)
+    print_batch_summary(screen, results, profile.dut)
+    screen.print(Text(f"{stored} record(s) stored in {out}; {skipped} unit(s) skipped"))
+    return 1 if skipped else 0
+
+
+def print_batch_summary(screen: Console, results: list[Any], dut: dict[str, Any]) -> None:
+    """Pass/fail and fitted values per unit, then each parameter's spread over the batch against its tolerance."""
+    units, spreads = summarise(results, dut)
+    names = [s.parameter for s in spreads]
+    screen.print(Text(f"batch summary: {sum(u.verdict == 'pass' for u in units)} of {len(units)} unit(s) pass"))
+    for u in units:
+        line = Text(f"  {u.serial:<14} ").append_text(verdict_text(u.verdict) if u.verdict != "skipped"
+                                                       else Text("skipped"))
+        fitted = "  ".join(f"{label(n)} {si(u.fitted[n], _unit(spreads, n))}" for n in names if n in u.fitted)
+        line.append(f"  {fitted}" if fitted else "")
+        if u.verdict in ("fail", "skipped") and u.reason:
+            line.append(f"  ({u.reason})")
+        screen.print(line, soft_wrap=True)
+    for s in spreads:
+        tolerance = f"tolerance ±{s.tolerance_pct:g} %" if s.tolerance_pct is not None else "no tolerance"
+        screen.print(Text(f"  {label(s.parameter)}: nominal {si(s.nominal, s.unit)}, {si(s.minimum, s.unit)} – "
+                          f"{si(s.maximum, s.unit)}, mean {si(s.mean, s.unit)}, s.d. {100 * s.std / abs(s.nominal):.2g} %,"
+                          f" worst {s.worst_deviation_pct:.2g} % off nominal; {tolerance}"), soft_wrap=True)
+
+
+def _unit(spreads: list[Any], name: str) -> str:
+    return next((s.unit for s in spreads if s.parameter == name), "")
 
 
 def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,

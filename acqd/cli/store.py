@@ -12,6 +12,7 @@ from rich.table import Table
 from rich.text import Text
 
 from ..display import edge_label, si, stimulus_text
+from ..record import BATCH_SETTING
 from ..store import RecordReader, RecordSummary, export_csv, open_records
 from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
                      verdict_text)
@@ -24,6 +25,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                                  "index, UTC time, edge, samples per channel and verdict.")
     add_store(ls)
     add_json(ls)
+    ls.add_argument("--by-unit", action="store_true",
+                    help="one line per unit serial (a batch): its switch path, records and verdicts "
+                         "(reads each record's metadata, still no samples)")
     ls.set_defaults(func=_ls)
 
     show = add_command(subparsers, "show", help="summarise one record: DUT, stimulus, instruments, verdict, fit",
@@ -55,6 +59,8 @@ def _open(path: str) -> RecordReader:
 def _ls(args: argparse.Namespace) -> int:
     with _open(args.store) as reader:
         summaries = reader.index()
+        if args.by_unit:
+            return _ls_by_unit(args, summaries, [reader.metadata(s.index) for s in summaries])
     if args.json:
         print(json.dumps([dataclasses.asdict(s) for s in summaries], indent=1))
         return 0
@@ -76,6 +82,33 @@ def _ls(args: argparse.Namespace) -> int:
         table.add_row(*row, str(s.n_samples), verdict_text(s.verdict))
     out = console()
     out.print(Text(f"{args.store}: {len(summaries)} record(s)"), soft_wrap=True)  # a long path must not wrap
+    out.print(table)
+    return 0
+
+
+def _ls_by_unit(args: argparse.Namespace, summaries: list[RecordSummary], metas: list[dict[str, Any]]) -> int:
+    """The records grouped by the unit they are of, in the order each unit first appears."""
+    units: dict[str, dict[str, Any]] = {}
+    for s, meta in zip(summaries, metas, strict=True):
+        batch = (meta.get("settings") or {}).get(BATCH_SETTING) or {}
+        serial = batch.get("serial") or (meta.get("dut") or {}).get("serial") or "(no serial)"
+        unit = units.setdefault(serial, {"serial": serial, "paths": [], "records": [], "verdicts": []})
+        if batch.get("path") and batch["path"] not in unit["paths"]:
+            unit["paths"].append(batch["path"])
+        unit["records"].append(s.index)
+        unit["verdicts"].append(s.verdict)
+    if args.json:
+        print(json.dumps(list(units.values()), indent=1))
+        return 0
+    table = Table()
+    for name, justify in (("serial", "left"), ("switch path", "left"), ("records", "right"), ("pass", "right"),
+                          ("fail", "right"), ("last", "left")):
+        table.add_column(name, justify=justify, no_wrap=True)
+    for u in units.values():
+        table.add_row(Text(u["serial"]), Text(" ".join(u["paths"]) or "-"), str(len(u["records"])),
+                      str(u["verdicts"].count("pass")), str(u["verdicts"].count("fail")), verdict_text(u["verdicts"][-1]))
+    out = console()
+    out.print(Text(f"{args.store}: {len(summaries)} record(s) of {len(units)} unit(s)"), soft_wrap=True)
     out.print(table)
     return 0
 

@@ -27,7 +27,7 @@ from ..errors import ConfigError
 from ..record import EDGES, LOADS
 from .expression import Expression, ExpressionError
 
-ROLES = ("generator", "scope")
+ROLES = ("generator", "scope", "switch")
 
 # Each role's operations and the named inputs the role hands to them (SI units, role vocabulary).
 OPERATIONS: dict[str, dict[str, tuple[str, ...]]] = {
@@ -45,6 +45,11 @@ OPERATIONS: dict[str, dict[str, tuple[str, ...]]] = {
         "arm": (),
         "abort": (),
     },
+    "switch": {
+        "close": ("channels",),
+        "open": ("channels",),
+        "open_all": (),
+    },
 }
 # Operations a driver may leave out: without ``abort`` a timed-out acquisition is only drained.
 OPTIONAL_OPERATIONS = frozenset({"abort"})
@@ -58,7 +63,7 @@ VOCABULARY: dict[str, tuple[str, ...]] = {
     "slope": EDGES,
 }
 
-PLACEHOLDER_TYPES = ("float", "int", "bool", "enum", "channel")
+PLACEHOLDER_TYPES = ("float", "int", "bool", "enum", "channel", "channels")
 REPLY_TYPES = ("float", "int", "bool", "text")
 NUMERIC = ("float", "int")
 SCALING_RULE = ("volts_per_code", "volts_at_code_0", "sample_interval_s", "first_sample_s")
@@ -70,6 +75,10 @@ HOOK_POINTS = ("after_fetch",)
 SANE_MAX_LEVEL_V = 60.0
 SANE_MAX_FREQUENCY_HZ = 10e9
 SANE_MAX_SAMPLES = 10_000_000
+# A switch driver's own limits are capped like the generator's (the same 60 V extra-low-voltage bound);
+# 10 A is beyond any signal-relay card, and a settling wait over 10 s is a typo for milliseconds.
+SANE_MAX_SWITCH_CURRENT_A = 10.0
+SANE_MAX_SETTLE_S = 10.0
 # Hooks are code: a driver file may name one only from acqd's own hooks module or from the modules the
 # operator lists in this environment variable (module names, separated by commas). Nothing is imported
 # before the name is allowed, so a rejected hook runs no code.
@@ -145,6 +154,15 @@ class FetchRule:
 
 
 @dataclass(frozen=True)
+class SwitchRule:
+    """A switch's channels, its settling wait and the query that verifies a path (one 1/0 per channel)."""
+
+    channels: tuple[int, ...]
+    settle_s: float
+    closed_query: Template
+
+
+@dataclass(frozen=True)
 class Driver:
     path: Path
     name: str
@@ -161,6 +179,7 @@ class Driver:
     wait: WaitRule | None
     fetch: FetchRule | None
     hooks: dict[str, Callable[..., Any]] = field(default_factory=dict)
+    switch: SwitchRule | None = None
 
     @property
     def source(self) -> str:
@@ -210,6 +229,8 @@ class Driver:
                 raise ConfigError(self.source, name, f"{value!r} is not a channel of driver {self.name}; "
                                                      f"allowed: {', '.join(self.channels)}")
             return self.channels[value]
+        if kind == "channels":
+            return self._channel_list(name, value)
         if kind == "bool":
             if not isinstance(value, bool):
                 raise ConfigError(self.source, name, f"must be true or false, not {value!r}")
@@ -221,6 +242,17 @@ class Driver:
                 raise ConfigError(self.source, name, f"must be a whole number, not {value!r}")
             return int(round(value))
         return float(value)
+
+    def _channel_list(self, name: str, value: Any) -> scpi.ChannelList:
+        """A non-empty sequence of this switch's channel numbers, to be sent as one channel list."""
+        known = set(self.switch.channels) if self.switch else set()
+        if not isinstance(value, (tuple, list)) or not value:
+            raise ConfigError(self.source, name, f"must be a non-empty list of channel numbers, not {value!r}")
+        unknown = [c for c in value if isinstance(c, bool) or not isinstance(c, int) or c not in known]
+        if unknown:
+            raise ConfigError(self.source, name, f"{unknown[0]!r} is not a channel of switch driver {self.name}; "
+                                                 f"allowed: {scpi.format_channel_list(sorted(known))}")
+        return scpi.ChannelList(tuple(value))
 
     def enum_word(self, enum: str, reply: str) -> str:
         """The role word for an enum token read back (long or short form, any case): ``POS`` → rising."""
@@ -261,6 +293,8 @@ def load_driver(path: str | Path) -> Driver:
     description = head.string("description", None) or ""
     idn = _regex(head, "idn")
     channels = _channels(head) if role == "scope" else {}
+    switch_channels = _switch_channels(head) if role == "switch" else ()
+    settle_s = head.number("settle_s", positive=True, max=SANE_MAX_SETTLE_S, unit="s") if role == "switch" else 0.0
     hooks = _hooks(head.table("hooks", {}))
     head.done()
 
@@ -276,9 +310,14 @@ def load_driver(path: str | Path) -> Driver:
         channel_readback = _readbacks(top.table("channel_readback", {}), builder, {"channel": "channel"}, enums)
         wait = _wait(top.table("wait"), builder)
         fetch = _fetch(top.table("fetch"), builder)
+    switch = None
+    if role == "switch":
+        verify = top.table("verify")
+        switch = SwitchRule(switch_channels, settle_s, builder.one(verify, "query", {"channels": "channels"}))
+        verify.done()
     top.done()
     return Driver(path, path.stem, role, description, idn, limits, channels, enums, setup, operations,
-                  readback, channel_readback, wait, fetch, hooks)
+                  readback, channel_readback, wait, fetch, hooks, switch)
 
 
 def _regex(t: Table, key: str) -> re.Pattern[str]:
@@ -295,6 +334,18 @@ def _channels(t: Table) -> dict[str, int]:
     table.done()
     if not channels:
         raise t.error("channels", "needs at least one channel, e.g. channels = { CH1 = 1 }")
+    return channels
+
+
+def _switch_channels(t: Table) -> tuple[int, ...]:
+    """The channels a switch has, as one channel list: ``channels = "(@101:132,201:232)"``."""
+    text = t.string("channels")
+    try:
+        channels = scpi.parse_channel_list(text)
+    except ValueError as exc:
+        raise t.error("channels", str(exc)) from None
+    if not channels or len(set(channels)) != len(channels):
+        raise t.error("channels", f"{text!r} must list at least one channel, each once")
     return channels
 
 
@@ -371,6 +422,10 @@ def _limits(t: Table, role: str) -> dict[str, Any]:
                                               unit="Hz")
         limits["max_frequency_hz"] = t.number("max_frequency_hz", min=limits["min_frequency_hz"],
                                               max=SANE_MAX_FREQUENCY_HZ, unit="Hz")
+    elif role == "switch":
+        limits = {"max_voltage_v": t.number("max_voltage_v", positive=True, max=SANE_MAX_LEVEL_V, unit="V"),
+                  "max_current_a": t.number("max_current_a", positive=True, max=SANE_MAX_SWITCH_CURRENT_A,
+                                            unit="A")}
     else:
         limits = {"min_samples": t.integer("min_samples", min=1, max=SANE_MAX_SAMPLES)}
         limits["max_samples"] = t.integer("max_samples", min=limits["min_samples"], max=SANE_MAX_SAMPLES)
@@ -431,7 +486,7 @@ class _TemplateReader:
             forced = names[name]
             if forced is not None and kind != forced:
                 raise fail(f"placeholder {{{name}}} must have type {forced}")
-            if forced is None and kind in ("enum", "channel", "bool"):
+            if forced is None and kind in ("enum", "channel", "channels", "bool"):
                 raise fail(f"placeholder {{{name}}} is a number; type must be float or int")
             if kind == "enum" and name not in self.enums:
                 raise fail(f"placeholder {{{name}:enum}} needs an [enums] table '{name}' mapping the role's "
@@ -447,8 +502,8 @@ def _input_types(inputs: tuple[str, ...], computed: Mapping[str, Expression]) ->
     for name in (*inputs, *computed):
         if name in VOCABULARY:
             names[name] = "enum"
-        elif name == "channel":
-            names[name] = "channel"
+        elif name in ("channel", "channels"):
+            names[name] = name
         elif name == "on":
             names[name] = "bool"
         else:

@@ -292,6 +292,76 @@ class Scope(_Role):
         return settings
 
 
+class Switch(_Role):
+    """A relay multiplexer between the instruments and a fixture of units: channel lists closed and opened.
+
+    Every change is followed by the driver's settling wait (relay contacts bounce for a few milliseconds
+    after they move), so whatever is measured next sees a settled path.
+    """
+
+    role = "switch"
+
+    @property
+    def channels(self) -> tuple[int, ...]:
+        return self.driver.switch.channels
+
+    @property
+    def settle_s(self) -> float:
+        return self.driver.switch.settle_s
+
+    def check_stimulus(self, stimulus: Stimulus) -> None:
+        """SafetyError if the stimulus could drive more voltage or current through a relay than it is rated
+        for; sends nothing. The worst case is the generator's open-circuit voltage (EMF) across the open
+        contacts, and that EMF into a short behind the generator's source resistance through closed ones."""
+        limits, src = self.driver.limits, self.driver.source
+        peak_v = max(abs(v) for v in stimulus.levels_emf())
+        if peak_v > limits["max_voltage_v"]:
+            raise SafetyError(src, "limits.max_voltage_v", f"the stimulus reaches {peak_v:g} V open-circuit, over "
+                                                          f"the switch's {limits['max_voltage_v']:g} V; nothing "
+                                                          f"was closed")
+        peak_a = peak_v / stimulus.source_resistance_ohm
+        if peak_a > limits["max_current_a"]:
+            raise SafetyError(src, "limits.max_current_a", f"the stimulus can drive {peak_a:g} A into a short "
+                                                          f"({peak_v:g} V behind {stimulus.source_resistance_ohm:g} "
+                                                          f"ohm), over the switch's {limits['max_current_a']:g} A; "
+                                                          f"nothing was closed")
+
+    def close_channels(self, channels: tuple[int, ...]) -> None:
+        """Close these relays (``close`` alone is the role's: it closes the connection)."""
+        self._change("close", channels)
+
+    def open_channels(self, channels: tuple[int, ...]) -> None:
+        self._change("open", channels)
+
+    def open_all(self) -> None:
+        self._change("open_all", None)
+
+    def _change(self, operation: str, channels: tuple[int, ...] | None) -> None:
+        inputs = {} if channels is None else {"channels": tuple(channels)}
+        self._send(self.driver.commands(operation, **inputs), f"switch {operation.replace('_', ' ')}")
+        time.sleep(self.settle_s)
+
+    def closed(self, channels: tuple[int, ...]) -> tuple[bool, ...]:
+        """Whether each channel is closed, as the switch reports it (one answer per channel asked)."""
+        query = self.driver.render(self.driver.switch.closed_query, channels=tuple(channels))
+        reply = self.session.query(query)
+        try:
+            states = scpi.parse_bool_list(reply)
+        except ValueError as exc:
+            raise InstrumentError(self.resource, f"reply {reply!r} to {query!r}: {exc}") from None
+        if len(states) != len(channels):
+            raise InstrumentError(self.resource, f"reply {reply!r} to {query!r} has {len(states)} states for "
+                                                 f"{len(channels)} channels")
+        return states
+
+    def closed_channels(self) -> tuple[int, ...]:
+        """Every channel of the switch that is closed now (an earlier run may have left some closed)."""
+        return tuple(c for c, on in zip(self.channels, self.closed(self.channels)) if on)
+
+    def read_settings(self) -> dict[str, Any]:
+        return self._read(self.driver.readback)
+
+
 def _require(source: str, field: str, value: Any, problem: str,
              ok: Callable[[float], bool] = lambda v: True) -> None:
     """ConfigError unless ``value`` is a finite number (not a bool) for which ``ok`` holds."""
@@ -300,7 +370,7 @@ def _require(source: str, field: str, value: Any, problem: str,
 
 
 def open_instrument(resource: str, driver: str | Path, *, backend: str = DEFAULT_BACKEND,
-                    timeout_s: float = 5.0) -> Generator | Scope:
+                    timeout_s: float = 5.0) -> Generator | Scope | Switch:
     """Load the driver, connect, check ``*IDN?`` against it, run its setup; the role the driver declares.
 
     The driver file is validated before the instrument is touched; an identity the driver does not accept
@@ -313,7 +383,7 @@ def open_instrument(resource: str, driver: str | Path, *, backend: str = DEFAULT
             raise InstrumentError(resource, f"identifies as {session.identity!r}, which driver {drv.name} does "
                                             f"not accept (idn = {drv.idn.pattern!r}); `acqd identify {resource}` "
                                             f"names a driver that fits")
-        role = Generator(session, drv) if drv.role == "generator" else Scope(session, drv)
+        role = {"generator": Generator, "scope": Scope, "switch": Switch}[drv.role](session, drv)
         role.setup()
     except BaseException:
         session.close()

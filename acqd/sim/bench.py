@@ -21,6 +21,9 @@ dut           table  the DUT model, as acqd.models.build_model reads it; its sou
                      the generator's 50 Ω for the physics to match the bench
 wiring        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
 drift         table  a slow change of one DUT parameter (below); absent: the DUT never changes
+fixture       table  a fixture of N units behind a simulated switch (acqd.sim.fixture); also made, with its
+                     defaults, when the profile has a [batch]. The units replace ``dut`` (each is ``dut``
+                     with its parts scattered) and a drift is not applied to them
 
 ``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
 known drift in minutes:
@@ -68,6 +71,8 @@ from .plant import Plant
 from .scope import N_CHANNELS, DigitiserScope
 from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
 from .divscope import DivScope
+from .fixture import Fixture, FixtureConfig
+from .switch import SimSwitch
 
 TABLE = "bench.simulated"
 DRIFT_TABLE = f"{TABLE}.drift"
@@ -119,6 +124,7 @@ class SimBenchConfig:
     dut: Mapping[str, Any] = field(default_factory=lambda: dict(DEMO_DUT))
     wiring: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_WIRING))
     drift: DriftConfig | None = None
+    fixture: FixtureConfig | None = None
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
     drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
@@ -135,8 +141,12 @@ class SimBenchConfig:
         return f"{self.source} [{TABLE}.dut]"
 
     @classmethod
-    def from_mapping(cls, mapping: Mapping[str, Any], source: str, text: str = "") -> SimBenchConfig:
-        """Validate the table; any problem is one ConfigError naming the file, key and what is allowed."""
+    def from_mapping(cls, mapping: Mapping[str, Any], source: str, text: str = "",
+                     batch_units: int | None = None) -> SimBenchConfig:
+        """Validate the table; any problem is one ConfigError naming the file, key and what is allowed.
+
+        ``batch_units``: the profile's [batch] holds this many units, so the bench gets a fixture (and a
+        switch) of that many units even without a ``fixture`` table."""
         table = Table(mapping, source, TABLE, text)
         d = cls()
         values = dict(
@@ -152,6 +162,8 @@ class SimBenchConfig:
             dut=dict(table.table("dut", dict(DEMO_DUT)).data),
             wiring=dict(table.table("wiring", dict(DEMO_WIRING)).data),
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
+            fixture=FixtureConfig.from_table(table.table("fixture", {}), batch_units)
+            if table.has("fixture") or batch_units is not None else None,
         )
         table.done()
         return cls(**values, source=source)
@@ -272,7 +284,8 @@ class ServedBench:
 
 
 class SimBench(ServedBench):
-    """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``divscope``, around one DUT plant."""
+    """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``divscope``, around one DUT plant; with a fixture a
+    fourth, ``switch`` (SW), choosing which of the fixture's units the others see."""
 
     def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
         super().__init__(host)
@@ -282,6 +295,11 @@ class SimBench(ServedBench):
         self.wiring = self.config.parsed_wiring()
         self._plant = Plant(self.config.model)
         self.plant_source: Callable[[], Plant] = self._drifted_plant if self.config.drift else lambda: self._plant
+        self.fixture: Fixture | None = None
+        self.switch: SimSwitch | None = None
+        if self.config.fixture is not None:
+            self.fixture = Fixture.build(self.config.fixture, self.config.dut, self.config.dut_source)
+            self.plant_source = self._fixture_plant
         self.generator: Generator | None = None
         self.scope: DigitiserScope | None = None
         self.divscope: DivScope | None = None
@@ -324,10 +342,20 @@ class SimBench(ServedBench):
             raise SCPIError(-300, f"simulated drift took {name} to {dut[name]:.6g} after {hours:.4g} h; "
                                   f"{exc.field} {exc.problem}") from None
 
+    def _fixture_plant(self) -> Any:
+        """The unit the switch connects now, seen through its relays (−300 when none or two are connected)."""
+        s = self.switch.settings
+        return self.fixture.plant(s.closed, s.last_close_s)
+
     def create_instruments(self) -> dict[str, SCPIInstrument]:
         scope_seed, divscope_seed = np.random.SeedSequence(self.config.seed).spawn(2)
         self.generator = Generator(edge_time_s=self.config.edge_time_s, log_path=self.config.command_log)
         self.scope = DigitiserScope(self, np.random.default_rng(scope_seed))
         self.divscope = DivScope(self, np.random.default_rng(divscope_seed))
         self._started_s = time.monotonic()
-        return {"generator": self.generator, "scope": self.scope, "divscope": self.divscope}
+        instruments: dict[str, SCPIInstrument] = {"generator": self.generator, "scope": self.scope,
+                                                  "divscope": self.divscope}
+        if self.fixture is not None:
+            self.switch = SimSwitch(log_path=self.config.command_log)
+            instruments["switch"] = self.switch
+        return instruments

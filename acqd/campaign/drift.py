@@ -305,7 +305,7 @@ def drift_table(summary: DriftSummary) -> Table:
                       si(s.values[-1], s.unit, 5), per_hour(t.slope_per_h, s.unit) if t else "-",
                       " … ".join(per_hour(v, s.unit) for v in t.ci95) if t else "-",
                       Text("yes", style="yellow") if t and t.significant else ("no" if t else "-"),
-                      Text(str(len(s.outside)), style="red") if s.outside else "0")
+                      str(len(s.outside)))
     return table
 
 

@@ -200,3 +200,45 @@ def test_a_profile_dut_table_builds_the_netlist_and_overrides_values():
     with pytest.raises(ConfigError) as info:
         build_model({**table, "L9": 1.0}, "kt9.toml [dut]")
     assert "L9" in str(info.value) and "R1, L1, C1" in str(info.value)
+
+
+# The built-in circuits as a person would draw them, with the outputs of each built-in named by its netlist
+# equivalent. The built-in builders stay (they are what the simulated bench and older profiles use); this
+# proves each equal to its netlist, output by output, through the transfer function C (sI − A)⁻¹ B + D,
+# which does not depend on how either model chose its states (any linear-systems text: the transfer
+# function is invariant under a change of state coordinates).
+BUILT_IN_AS_NETLIST = {
+    "series_rlc": ({"r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9},
+                   "V1 in 0\nR1 in mid 22\nL1 mid out 3.3m\nC1 out 0 100n",
+                   {"v_src": "v_src", "v_rl": "v(mid)", "v_c": "v(out)", "i_l": "i(L1)"}),
+    "parallel_rlc": ({"r_ohm": 470.0, "l_h": 1.5e-3, "c_f": 220e-9},
+                     "V1 in 0\nR1 in 0 470\nL1 in 0 1.5m\nC1 in 0 220n",
+                     {"v_src": "v_src", "v_c": "v(in)", "i_l": "i(L1)"}),
+    "rc_lowpass": ({"r_ohm": 1000.0, "c_f": 47e-9}, "V1 in 0\nR1 in out 1k\nC1 out 0 47n",
+                   {"v_src": "v_src", "v_c": "v(out)", "i_c": "i(R1)"}),
+    "series_rl": ({"r_ohm": 68.0, "l_h": 10e-3}, "V1 in 0\nR1 in mid 68\nL1 mid 0 10m",
+                  {"v_src": "v_src", "v_rl": "v(mid)", "i_l": "i(L1)"}),
+}
+
+
+def transfer(model, output: str, s: complex) -> complex:
+    k = model.output_index(output)
+    n = model.A.shape[0]
+    return complex((model.C[k] @ np.linalg.solve(s * np.eye(n) - model.A, model.B[:, 0])) + model.D[k, 0])
+
+
+@pytest.mark.parametrize("name", list(BUILT_IN_AS_NETLIST))
+def test_each_built_in_circuit_equals_its_netlist(name):
+    values, netlist, outputs = BUILT_IN_AS_NETLIST[name]
+    built_in = build_model({"model": name, **values, "source_resistance_ohm": SOURCE_OHM}, "test")
+    drawn = netlist_model(netlist, "V1", SOURCE_OHM)
+    assert built_in.A.shape == drawn.A.shape  # the same number of states (one per C and L)
+    np.testing.assert_allclose(np.sort_complex(np.linalg.eigvals(built_in.A)),
+                               np.sort_complex(np.linalg.eigvals(drawn.A)), rtol=1e-9)
+    corner = max(abs(np.linalg.eigvals(built_in.A)))
+    points = [0.0, *(1j * corner * f for f in (0.01, 0.3, 1.0, 3.0, 100.0))]
+    for ours, theirs in outputs.items():
+        a = np.array([transfer(built_in, ours, s) for s in points])
+        b = np.array([transfer(drawn, theirs, s) for s in points])
+        # relative to the output's largest response: v_rl has a zero at resonance, where both are ~1e-16
+        np.testing.assert_allclose(a, b, rtol=0, atol=1e-9 * np.max(np.abs(a)), err_msg=f"{name} {ours}")

@@ -1,7 +1,7 @@
 """The reader: ``open_records(path)`` sees every record of every segment in order, the live one included.
 
 It never writes: a live ``.part`` (whether its writer is running or died) is first opened by a child
-process (``recovery.probe``) so that a damaged file cannot crash the caller, then opened here with
+process (``recovery.examine``) so that a damaged file cannot crash the caller, then opened here with
 ``swmr=True``. Only rows that verify are visible; ``refresh()`` picks up records appended since.
 """
 
@@ -16,7 +16,7 @@ from ..errors import ConfigError
 from ..record import Record
 from .naming import LIVE, Segment, StorePaths
 from .overview import is_overview
-from .recovery import probe
+from .recovery import examine
 from .schema import row_summary
 from .segment import SegmentView
 
@@ -82,7 +82,7 @@ class RecordReader:
     def _open(self, seg: Segment) -> SegmentView | None:
         """Open a segment; a live one after a child process showed it opens; None if it is unreadable."""
         if seg.state == LIVE:
-            why = probe(seg.path)
+            why = examine(seg.path)
             if why and not seg.path.exists() and self._paths.finished(seg.number).exists():
                 return self._open(Segment(seg.number, self._paths.finished(seg.number), ""))  # finished meanwhile
             if why:

@@ -1,4 +1,4 @@
-"""Recovery of a live segment left behind by a writer that died, and the probe readers run first.
+"""Recovery of a live segment left behind by a writer that died, and the check readers run first.
 
 The risky part - opening a file that a killed process left half-written - runs in a child process
 (``main`` below), because a damaged HDF5 file can crash the process that opens it. The
@@ -53,9 +53,9 @@ def _run_child(*args: str) -> tuple[dict | None, str]:
     return None, lines[-1] if lines else f"exit status {proc.returncode}"
 
 
-def probe(path: Path) -> str:
+def examine(path: Path) -> str:
     """Why ``path`` (a live segment) cannot be opened safely, or "" if it can; readers ask before opening it."""
-    report, why = _run_child("probe", str(path))
+    report, why = _run_child("examine", str(path))
     return "" if report is not None else why
 
 
@@ -126,10 +126,10 @@ def _copy_verified(part: Path, dest: Path) -> dict:
 
 
 def main(argv: list[str]) -> int:
-    """Child side: ``probe PART`` or ``copy PART DEST``; prints a JSON report, exit 3 for a non-store."""
+    """Child side: ``examine PART`` or ``copy PART DEST``; prints a JSON report, exit 3 for a non-store."""
     command, *paths = argv
     try:
-        if command == "probe":
+        if command == "examine":
             view = SegmentView(Path(paths[0]), live=True)
             report = {"rows": len(view.rows)}
         else:

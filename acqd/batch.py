@@ -12,7 +12,6 @@ switch path in ``settings["batch"]`` (``Record.unit_serial``, ``Record.switch_pa
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
@@ -24,6 +23,7 @@ from .judge import Judge, make_judge
 from .profile import Batch, BatchUnit, Profile
 from .record import BATCH_SETTING, Record, Stimulus
 from .steptest import GeneratorRole, ScopeRole, check_limits, run_step_test
+from .units import Spread, UnitSummary, summarise_units
 
 
 class SwitchRole(Protocol):
@@ -129,89 +129,12 @@ def run_batch(profile: Profile, generator: GeneratorRole, scope: ScopeRole, swit
                 yield UnitResult(unit, skipped=f"not acquired: {exc}")
 
 
-# ---------------------------------------------------------------------------------------------------
-# The batch summary
-# ---------------------------------------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class Spread:
-    """One fitted parameter over the batch: nominal, extremes, mean, standard deviation, tolerance (± %)."""
-
-    parameter: str
-    unit: str
-    nominal: float
-    minimum: float
-    maximum: float
-    mean: float
-    std: float
-    tolerance_pct: float | None
-
-    @property
-    def worst_deviation_pct(self) -> float:
-        return 100 * max(abs(self.minimum - self.nominal), abs(self.maximum - self.nominal)) / abs(self.nominal)
-
-
-@dataclass(frozen=True)
-class UnitSummary:
-    serial: str
-    verdict: str  # pass | fail | untested | skipped
-    fitted: dict[str, float]
-    reason: str = ""
-
-
 def summarise(results: Iterable[UnitResult], dut: dict[str, Any]) -> tuple[list[UnitSummary], list[Spread]]:
-    """Per unit (all its records, over every pass of the batch): the worst verdict and its fitted values;
-    per parameter: the spread over the units. A unit never measured is ``skipped`` with the last reason."""
-    grouped: dict[str, tuple[list[Record], list[str]]] = {}
+    """The batch summary of a run's results (every pass over a unit merged; see ``acqd.units``)."""
+    grouped: dict[str, tuple[list[dict[str, Any]], list[str]]] = {}
     for result in results:
-        records, reasons = grouped.setdefault(result.unit.serial, ([], []))
-        records.extend(result.records)
+        analyses, reasons = grouped.setdefault(result.unit.serial, ([], []))
+        analyses.extend(r.analysis or {} for r in result.records)
         if result.skipped is not None:
             reasons.append(result.skipped)
-    units, values, nominal, units_of = [], {}, {}, {}
-    for serial, (records, skips) in grouped.items():
-        if not records:
-            units.append(UnitSummary(serial, "skipped", {}, skips[-1]))
-            continue
-        analyses = [r.analysis or {} for r in records]
-        verdicts = [a.get("verdict", "untested") for a in analyses]
-        verdict = "fail" if "fail" in verdicts else "pass" if verdicts and all(v == "pass" for v in verdicts) \
-            else "untested"
-        fitted = _fitted(analyses, nominal, units_of)
-        for name, value in fitted.items():
-            values.setdefault(name, []).append(value)
-        reasons = list(dict.fromkeys(reason for a in analyses for reason in a.get("reasons", [])))
-        units.append(UnitSummary(serial, verdict, fitted, "; ".join([*reasons, *skips])))
-    spreads = [_spread(name, vals, nominal[name], units_of.get(name, ""), dut) for name, vals in values.items()]
-    return units, spreads
-
-
-def _fitted(analyses: list[dict[str, Any]], nominal: dict[str, float], units_of: dict[str, str]) -> dict[str, float]:
-    """A unit's fitted model parameters (nuisance values such as the edge instant left out), averaged
-    over its records (one per edge and pass)."""
-    sums: dict[str, list[float]] = {}
-    for analysis in analyses:
-        fit = analysis.get("fit") or {}
-        for name, value in (fit.get("values") or {}).items():
-            if name in (fit.get("nuisance") or ()) or value is None:
-                continue
-            sums.setdefault(name, []).append(float(value))
-            nominal.setdefault(name, float(fit["nominal"][name]))
-            units_of.setdefault(name, (fit.get("units") or {}).get(name, ""))
-    return {name: sum(v) / len(v) for name, v in sums.items()}
-
-
-def _spread(name: str, values: list[float], nominal: float, unit: str, dut: dict[str, Any]) -> Spread:
-    mean = sum(values) / len(values)
-    std = math.sqrt(sum((v - mean) ** 2 for v in values) / (len(values) - 1)) if len(values) > 1 else 0.0
-    return Spread(name, unit, nominal, min(values), max(values), mean, std, parameter_tolerance_pct(dut, name))
-
-
-def parameter_tolerance_pct(dut: dict[str, Any], name: str) -> float | None:
-    """The ± % the [dut] table allows this parameter (``parameter_pct``: one number or a table)."""
-    pct = (dut.get("tolerances") or {}).get("parameter_pct")
-    if isinstance(pct, dict):
-        pct = pct.get(name)
-    return float(pct) if isinstance(pct, (int, float)) and not isinstance(pct, bool) else None
-
-
+    return summarise_units(((serial, a, r) for serial, (a, r) in grouped.items()), dut)

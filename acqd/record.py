@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import re
 import zlib
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -28,6 +29,13 @@ _COLUMN_HEADER = re.compile(r"^\s*(.*?)\s*(?:\[\s*([^\]]*?)\s*\])?\s*$")
 # settings key that says where t = 0 of a record came from, for records not triggered by acqd (a CSV).
 TIMING_SETTING = "timing"
 BATCH_SETTING = "batch"  # settings key of a batch record: the unit serial and the switch path that connected it
+
+
+def unit_serial_of(settings: Mapping[str, Any] | None, dut: Mapping[str, Any] | None) -> str | None:
+    """A record's unit serial from its stored ``settings`` and ``dut`` (what readers of metadata have):
+    the batch's serial when a switch chose the unit, else the [dut] table's."""
+    batch = (settings or {}).get(BATCH_SETTING) or {}
+    return batch.get("serial") or (dut or {}).get("serial")
 
 
 @dataclass(frozen=True)
@@ -108,8 +116,7 @@ class Record:
     @property
     def unit_serial(self) -> str | None:
         """The unit this record is of: the batch's serial (a switch chose it), else the [dut] table's."""
-        batch = self.settings.get(BATCH_SETTING) or {}
-        return batch.get("serial") or self.dut.get("serial")
+        return unit_serial_of(self.settings, self.dut)
 
     @property
     def switch_path(self) -> str | None:

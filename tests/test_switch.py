@@ -365,3 +365,24 @@ def test_acqd_run_ends_with_the_batch_summary_and_ls_groups_by_unit(tmp_path: Pa
             expected.setdefault(reader.read(i).unit_serial, []).append(i)
     assert {u["serial"]: u["records"] for u in grouped} == expected
     assert [u["paths"] for u in grouped] == [["(@101,201)"], ["(@102,202)"], ["(@103,203)"]]
+    # acqd drift --by-unit: each unit's series hold exactly that unit's records and their fitted values
+    assert main(["drift", store, "--by-unit", "--json"]) == 0
+    per_unit = {(s["serial"], s["name"]): s for s in json.loads(capsys.readouterr().out)["series"]}
+    with open_records(store) as reader:
+        for serial, indices in expected.items():
+            c = per_unit[(serial, "c_f")]
+            assert c["indices"] == indices
+            assert c["values"] == [reader.read(i).analysis["fit"]["values"]["c_f"] for i in indices]
+    assert main(["drift", store, "--json"]) == 0  # pooled: one series over every unit, serial empty
+    pooled = [s for s in json.loads(capsys.readouterr().out)["series"] if s["name"] == "c_f"]
+    assert [s["serial"] for s in pooled] == [""] and len(pooled[0]["indices"]) == 6
+    # the report groups the batch by unit too: one row per serial with its path, record count and verdict
+    page_path = tmp_path / "batch.html"
+    assert main(["report", store, "-o", str(page_path)]) == 0
+    page = page_path.read_text(encoding="utf-8")
+    units = page[page.index("<h2>Units</h2>"):page.index("</table>", page.index("<h2>Units</h2>"))]
+    assert "2 of 3 unit(s) pass" in units
+    for serial, indices in expected.items():
+        row = units[units.index(f"<td>{serial}</td>"):].split("</tr>")[0]
+        verdict = "FAIL" if serial == "KT9-4801" else "pass"
+        assert f"<td>{len(indices)}</td>" in row and f">{verdict}</span>" in row, row

@@ -29,6 +29,7 @@ from scipy import stats
 from ..compare import parse_dut_table
 from ..display import UNPREFIXED, edge_label, label, si, unit_symbol
 from ..errors import AcqdError, ConfigError
+from ..record import unit_serial_of
 from ..store import open_records
 from .ledger import verdict_text
 
@@ -65,6 +66,7 @@ class Series:
     name: str  # "r_ohm", or "v_c.overshoot_pct" for a channel's metric
     kind: str  # "parameter" (fitted) or "metric"
     unit: str
+    serial: str = ""  # the unit's serial when the series are kept apart per unit (a batch), else ""
     indices: list[int] = field(default_factory=list)
     utc: list[str] = field(default_factory=list)
     hours: list[float] = field(default_factory=list)
@@ -139,18 +141,20 @@ def _hours_to_limit(series: Series) -> float | None:
     return max(0.0, t_cross - series.hours[-1])
 
 
-def analyse_store(path: str | Path, last: int | None = None) -> DriftSummary:
+def analyse_store(path: str | Path, last: int | None = None, by_unit: bool = False) -> DriftSummary:
     """Read every record's stored analysis (no samples), or the ``last`` records', and build the series
-    and trends."""
+    and trends; ``by_unit`` keeps each unit's series apart (a batch: one trend per unit serial, since a
+    slope pooled over units would be the spread between them, not a drift)."""
     with open_records(path) as reader:
         analyses = reader.analyses()
         analyses = analyses[-last:] if last else analyses
         tolerances = _tolerances(reader, analyses)
         labels = _setting_labels(reader)
+        serials = _serials(reader, analyses) if by_unit else {}
         notes = list(reader.notes)
     times = [_parse_utc(a.utc) for a in analyses]
     t0 = min((t for t in times if t is not None), default=None)
-    series: dict[str, Series] = {}
+    groups: dict[str, dict[str, Series]] = {}
     failed, compared, undated = [], 0, 0
     for entry, when in zip(analyses, times):
         analysis = entry.analysis
@@ -161,12 +165,17 @@ def analyse_store(path: str | Path, last: int | None = None) -> DriftSummary:
             continue
         compared += 1
         hours = (when - t0).total_seconds() / 3600.0
+        series = groups.setdefault(serials.get(entry.index, ""), {})
         _add_parameters(series, analysis, entry.index, entry.utc, hours)
         label = labels.get(entry.index, "")
         _add_metrics(series, analysis, entry.index, entry.utc, hours, label)
         _mark_outside(series, analysis, entry.index, label)
         if verdict_text(analysis) == "fail":
             failed.append(entry.index)
+    for serial, group in groups.items():
+        for s in group.values():
+            s.serial = serial
+    series = {(s.serial, s.name): s for group in groups.values() for s in group.values()}
     for s in series.values():
         _apply_tolerances(s, tolerances)
         s.trend = slope_trend(s.hours, s.values)
@@ -178,9 +187,18 @@ def analyse_store(path: str | Path, last: int | None = None) -> DriftSummary:
         notes.append(f"{len(analyses) - compared} of {len(analyses)} record(s) carry no comparator result")
     dated = [t for t in times if t is not None]
     span = (max(dated) - t0).total_seconds() / 3600.0 if dated else 0.0
-    ordered = sorted(series.values(), key=lambda s: (s.kind != "parameter", s.name))
+    ordered = sorted(series.values(), key=lambda s: (s.serial, s.kind != "parameter", s.name))
     return DriftSummary(str(path), len(analyses), compared, _iso(t0), _iso(max(dated) if dated else None), span,
                         METHOD, ordered, failed, notes)
+
+
+def _serials(reader: Any, analyses: list[Any]) -> dict[int, str]:
+    """Record index → its unit's serial (``(no serial)`` for a record that names none)."""
+    serials = {}
+    for entry in analyses:
+        meta = reader.metadata(entry.index)
+        serials[entry.index] = unit_serial_of(meta.get("settings"), meta.get("dut")) or "(no serial)"
+    return serials
 
 
 def _parse_utc(text: str) -> datetime | None:
@@ -301,7 +319,7 @@ def drift_table(summary: DriftSummary) -> Table:
         table.add_column(column, justify="right" if column in ("n", "outside") else "left")
     for s in summary.series:
         t = s.trend
-        table.add_row(Text(series_label(s.name)), str(len(s.values)), si(s.values[0], s.unit, 5),
+        table.add_row(Text(f"{s.serial} {series_label(s.name)}" if s.serial else series_label(s.name)), str(len(s.values)), si(s.values[0], s.unit, 5),
                       si(s.values[-1], s.unit, 5), per_hour(t.slope_per_h, s.unit) if t else "-",
                       " … ".join(per_hour(v, s.unit) for v in t.ci95) if t else "-",
                       Text("yes", style="yellow") if t and t.significant else ("no" if t else "-"),
@@ -348,7 +366,8 @@ def write_outputs(summary: DriftSummary, out_dir: str | Path) -> list[Path]:
             trend_label="" if trend is None else
             f"trend {per_hour(trend.slope_per_h, s.unit)} (95 %: {per_hour(trend.ci95[0], s.unit)} … "
             f"{per_hour(trend.ci95[1], s.unit)})")
-        path = out / f"drift-{re.sub(r'[^A-Za-z0-9._-]', '_', s.name)}.png"
+        stem = f"{s.serial}-{s.name}" if s.serial else s.name
+        path = out / f"drift-{re.sub(r'[^A-Za-z0-9._-]', '_', stem)}.png"
         fig.savefig(path, dpi=100)
         written.append(path)
     return written

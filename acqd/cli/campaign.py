@@ -39,6 +39,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     add_last(p, "of the store")
     add_json(p, "print the JSON summary instead of a table")
     add_figures(p, "write drift.json and one PNG per parameter into DIR")
+    p.add_argument("--by-unit", action="store_true",
+                   help="a trend per unit serial (a batch's records), not one pooled over the units")
     p.set_defaults(func=drift_command)
 
 
@@ -71,7 +73,7 @@ def status_command(args: argparse.Namespace) -> int:
 def drift_command(args: argparse.Namespace) -> int:
     from ..campaign.drift import analyse_store, drift_table, write_outputs
 
-    summary = analyse_store(args.store, last=args.last)
+    summary = analyse_store(args.store, last=args.last, by_unit=args.by_unit)
     if args.figures is not None:
         written = write_outputs(summary, args.figures)
     if args.json:

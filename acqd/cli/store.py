@@ -12,7 +12,7 @@ from rich.table import Table
 from rich.text import Text
 
 from ..display import edge_label, si, stimulus_text
-from ..record import BATCH_SETTING
+from ..record import BATCH_SETTING, unit_serial_of
 from ..store import RecordReader, RecordSummary, export_csv, open_records
 from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
                      verdict_text)
@@ -91,7 +91,7 @@ def _ls_by_unit(args: argparse.Namespace, summaries: list[RecordSummary], metas:
     units: dict[str, dict[str, Any]] = {}
     for s, meta in zip(summaries, metas, strict=True):
         batch = (meta.get("settings") or {}).get(BATCH_SETTING) or {}
-        serial = batch.get("serial") or (meta.get("dut") or {}).get("serial") or "(no serial)"
+        serial = unit_serial_of(meta.get("settings"), meta.get("dut")) or "(no serial)"
         unit = units.setdefault(serial, {"serial": serial, "paths": [], "records": [], "verdicts": []})
         if batch.get("path") and batch["path"] not in unit["paths"]:
             unit["paths"].append(batch["path"])

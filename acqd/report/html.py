@@ -33,6 +33,7 @@ from ..compare import CompareSpec, Traces, compare_spec, parse_dut_table, stored
 from ..display import edge_label, label, si, stimulus_text, unit_symbol
 from ..errors import AcqdError, ConfigError
 from ..record import Record
+from ..units import summarise_units
 from .figures import channel_figure, parameter_vs_time_figure, png_bytes, trajectory_figure
 
 MAX_FULL = 12  # failed records drawn in full unless asked for by number: a night of failures stays mailable
@@ -67,6 +68,9 @@ class _Entry:
     thumbnail: str = ""
     figures: str = ""  # the full figures' HTML, for the records drawn in full
     limits: dict[str, tuple[float, float]] = field(default_factory=dict)  # fitted parameter → tolerance band
+    serial: str = ""  # the unit's serial (a batch's, else the [dut] table's)
+    path: str = ""  # the switch channels that connected it, in a batch
+    dut_table: dict[str, Any] = field(default_factory=dict)  # the record's [dut], for the batch's tolerances
 
     @property
     def verdict(self) -> str:
@@ -218,7 +222,8 @@ def _entry(index: int, record: Record, recompute: SpecFor | None, specs: _Specs,
     stim = record.stimulus
     entry = _Entry(index, record.utc or "", edge_label(stim.edge, stim.low_v, stim.high_v), _dut_text(record.dut),
                    stimulus_text(_stimulus_dict(record)), tuple(sorted((record.identities or {}).items())),
-                   record.acqd_version or "?", analysis, problem, thumbnail(record))
+                   record.acqd_version or "?", analysis, problem, thumbnail(record),
+                   serial=record.unit_serial or "", path=record.switch_path or "", dut_table=dict(record.dut or {}))
     if analysis:
         entry.limits = _parameter_limits(spec, analysis.get("fit"))
         if full(index, entry.verdict):
@@ -301,6 +306,40 @@ def _summary(entries: list[_Entry]) -> str:
                     f"<td>{_verdict_span(e.verdict)}</td>" + "".join(f"<td>{c}</td>" for c in cells)
                     + f"<td>{e.thumbnail}</td></tr>")
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
+
+
+def _units(entries: list[_Entry]) -> str:
+    """A batch (records of more than one unit): each unit's verdict and fitted values over its records,
+    and each fitted parameter's spread over the units against its tolerance (``acqd.units``)."""
+    grouped: dict[str, list[_Entry]] = {}
+    for e in entries:
+        grouped.setdefault(e.serial or "(no serial)", []).append(e)
+    if len(grouped) < 2:
+        return ""
+    summaries, spreads = summarise_units(((serial, [e.analysis for e in group if e.analysis], [])
+                                          for serial, group in grouped.items()), entries[-1].dut_table)
+    names = [sp.parameter for sp in spreads]
+    unit_of = {sp.parameter: unit_symbol(sp.unit) for sp in spreads}
+    head = "".join(f"<th>{h}</th>" for h in ("unit", "switch path", "records", "verdict",
+                                              *(html.escape(label(n)) for n in names), "reasons"))
+    rows = []
+    for u in summaries:
+        group = grouped[u.serial]
+        paths = " ".join(dict.fromkeys(e.path for e in group if e.path)) or "–"
+        cells = [html.escape(u.serial), html.escape(paths), str(len(group)),
+                 _verdict_span(NOT_COMPARED if u.verdict == "skipped" else u.verdict),
+                 *(html.escape(si(u.fitted[n], unit_of[n])) if n in u.fitted else "–" for n in names),
+                 f'<span class="note">{html.escape(u.reason)}</span>' if u.reason else ""]
+        rows.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    spread_rows = "".join(
+        f"<li>{html.escape(label(sp.parameter))}: nominal {html.escape(si(sp.nominal, unit_of[sp.parameter]))}, "
+        f"{html.escape(si(sp.minimum, unit_of[sp.parameter]))} – {html.escape(si(sp.maximum, unit_of[sp.parameter]))}, "
+        f"worst {sp.worst_deviation_pct:.2g} % off nominal"
+        + (f"; tolerance ±{sp.tolerance_pct:g} %" if sp.tolerance_pct is not None else "") + "</li>"
+        for sp in spreads)
+    passing = sum(u.verdict == "pass" for u in summaries)
+    return (f"<h2>Units</h2><p>{passing} of {len(summaries)} unit(s) pass; fitted values are each unit's mean "
+            f"over its records.</p><table><tr>{head}</tr>{''.join(rows)}</table><ul>{spread_rows}</ul>")
 
 
 def _when(entries: list[_Entry]) -> list[datetime] | list[int]:
@@ -408,7 +447,7 @@ def write_report(source: RecordSource, out: str | Path, numbers: Sequence[int], 
             f'<p class="counts">{len(entries)} records: ' + ", ".join(f"{n} {v}" for v, n in counts.items()) + ".</p>"
             "<p>NRMSE is the RMS error over the simulated trace's peak-to-peak range. The thumbnail is the output "
             "channel's envelope over the record.</p>"
-            f"{_drift(entries)}<h2>Records</h2>{_summary(entries)}"
+            f"{_units(entries)}{_drift(entries)}<h2>Records</h2>{_summary(entries)}"
             + (f"<h2>Records in full</h2><p>The failed records and those asked for ({len(shown)})"
                + (f"; {left_out} more failed record(s) not drawn in full (acqd report --full LIST draws them)" if left_out else "")
                + ".</p>" + "".join(_section(e) for e in shown) if shown or left_out else ""))

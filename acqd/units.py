@@ -1,15 +1,18 @@
 """A batch's results per unit: each unit's verdict and fitted values, each parameter's spread over the units.
 
-From stored analyses only (``CompareResult.to_dict()`` as a record keeps it), so the run that measured the
-batch, ``acqd ls --by-unit`` and the report summarise a batch the same way from the same numbers.
+From stored analyses and metadata only (``CompareResult.to_dict()`` and the settings a record keeps), so
+the run that measured the batch, ``acqd ls --by-unit``, ``acqd status --by-unit`` and the report summarise
+a batch the same way from the same numbers.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
-from dataclasses import dataclass
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
 from typing import Any
+
+from .record import BATCH_SETTING, unit_serial_of
 
 
 
@@ -89,3 +92,30 @@ def parameter_tolerance_pct(dut: dict[str, Any], name: str) -> float | None:
     return float(pct) if isinstance(pct, (int, float)) and not isinstance(pct, bool) else None
 
 
+
+
+@dataclass
+class UnitRecords:
+    """The records of one unit in a store: the switch paths that reached it, their indices and verdicts."""
+
+    serial: str
+    paths: list[str] = field(default_factory=list)
+    records: list[int] = field(default_factory=list)
+    verdicts: list[str | None] = field(default_factory=list)
+
+
+def records_by_unit(indices: Sequence[int], verdicts: Sequence[str | None],
+                    metas: Sequence[dict[str, Any]]) -> list[UnitRecords]:
+    """Records grouped by their unit's serial (``(no serial)`` when one names none), in the order each
+    unit first appears; ``metas`` are the records' stored metadata (settings and dut)."""
+    units: dict[str, UnitRecords] = {}
+    for index, verdict, meta in zip(indices, verdicts, metas, strict=True):
+        settings = meta.get("settings") or {}
+        serial = unit_serial_of(settings, meta.get("dut")) or "(no serial)"
+        unit = units.setdefault(serial, UnitRecords(serial))
+        path = (settings.get(BATCH_SETTING) or {}).get("path")
+        if path and path not in unit.paths:
+            unit.paths.append(path)
+        unit.records.append(index)
+        unit.verdicts.append(verdict)
+    return list(units.values())

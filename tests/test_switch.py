@@ -335,6 +335,18 @@ def test_sigkill_mid_batch_campaign_then_restart_measures_every_unit_once(tmp_pa
                                   for k, s in enumerate(serials, start=1))
     events = [line for line in (data / "runlog.jsonl").read_text().splitlines() if '"campaign_resume"' in line]
     assert events, "the second start did not resume the campaign"
+    # acqd status --by-unit: each unit of the campaign with its own records, as read back from the store
+    import json
+
+    status = subprocess.run([sys.executable, "-m", "acqd", "status", "-d", str(data), "--by-unit", "--json"],
+                            capture_output=True, text=True, timeout=60)
+    assert status.returncode == 0, status.stderr
+    units = {u["serial"]: u for u in json.loads(status.stdout)["units"]["lot48"]}
+    assert sorted(units) == serials
+    for k, serial in enumerate(serials, start=1):
+        mine = [i for i, r in enumerate(records) if r.unit_serial == serial]
+        assert units[serial]["records"] == mine and units[serial]["paths"] == [f"(@{100 + k},{200 + k})"]
+        assert units[serial]["verdicts"] == [records[i].analysis["verdict"] for i in mine]
 
 
 def _stored(path: Path) -> int:

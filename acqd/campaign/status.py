@@ -207,12 +207,13 @@ def status_table(statuses: list[CampaignStatus], activity: dict[str, str] | None
             state += f" (slot {s.slot_running} unfinished)"
         when = f" {s.next_utc[:19].replace('T', ' ')}" if s.next_utc else ""
         nxt = "" if s.next_slot is None else f"#{s.next_slot}{when}"
-        verdicts = "".join(_mark(v["verdict"]) for v in reversed(s.last_verdicts))
+        verdicts = "".join(verdict_mark(v["verdict"]) for v in reversed(s.last_verdicts))
         table.add_row(s.name, state, f"{s.slots_handled}{total}" + (f" ({s.slots_failed} failed)" if s.slots_failed else ""),
                       nxt, str(s.records), str(s.passed), str(s.failed), str(s.faults), str(s.slots_missed), verdicts)
     table.caption = "last: P pass, F fail, u untested (no tolerance), - not compared; oldest first"
     return table
 
 
-def _mark(verdict: str) -> str:
+def verdict_mark(verdict: str | None) -> str:
+    """One verdict as the one-letter mark of the status tables (rich markup: colour on the verdict only)."""
     return {"pass": "[green]P[/green]", "fail": "[bold red]F[/bold red]", "untested": "u"}.get(verdict, "-")

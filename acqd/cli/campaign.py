@@ -3,11 +3,16 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
+import json
 import sys
 from pathlib import Path
+from typing import Any
 
+from rich.table import Table
 from rich.text import Text
 
+from ..errors import ConfigError
 from .common import SAFETY_NOTE, add_command, add_data_dir, add_figures, add_json, add_last, add_store, console
 
 
@@ -28,6 +33,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                                 "its last verdicts and its last event. Reads the daemon's files only.")
     add_data_dir(p)
     add_json(p)
+    p.add_argument("--by-unit", action="store_true",
+                   help="each campaign's records per unit serial too (a batch), read from its store")
     p.set_defaults(func=status_command)
 
     p = add_command(sub, "drift", help="fitted parameters and metrics over time, with a trend per parameter",
@@ -57,8 +64,14 @@ def status_command(args: argparse.Namespace) -> int:
 
     statuses = collect(args.data_dir)
     pid = daemon_pid(args.data_dir)
+    units = {s.name: _units_of(s.store) for s in statuses} if args.by_unit else {}
     if args.json:
-        print(as_json(statuses, pid))
+        text = as_json(statuses, pid)
+        if args.by_unit:
+            data = json.loads(text)
+            data["units"] = {name: [dataclasses.asdict(u) for u in found] for name, found in units.items()}
+            text = json.dumps(data, indent=2)
+        print(text)
         return 0
     screen = console(wide=True)
     screen.print(Text(f"{args.data_dir}: " + (f"daemon running (pid {pid})" if pid else "no daemon running")))
@@ -67,7 +80,39 @@ def status_command(args: argparse.Namespace) -> int:
         if s.last_event:
             event = s.last_event
             screen.print(Text(f"{s.name}: last event {event['utc'][:19]} {event['event']}"))
+    for name, found in units.items():
+        if found:
+            screen.print(unit_table(name, found))
     return 0
+
+
+def _units_of(store: str) -> list[Any]:
+    """A campaign's records per unit, read-only from its store (none yet: an empty list)."""
+    from ..store import open_records
+    from ..units import records_by_unit
+
+    try:
+        with open_records(store) as reader:
+            summaries = reader.index()
+            return records_by_unit([r.index for r in summaries], [r.verdict for r in summaries],
+                                   [reader.metadata(r.index) for r in summaries])
+    except ConfigError:  # the campaign has stored nothing yet
+        return []
+
+
+def unit_table(campaign: str, units: list[Any]) -> Table:
+    """One row per unit: its switch path, records, passes, failures and last verdicts (oldest first)."""
+    from ..campaign.status import LAST_VERDICTS, verdict_mark
+
+    table = Table(title=f"{campaign}: {len(units)} unit(s)", show_edge=False, header_style="bold")
+    for column, justify in (("unit", "left"), ("switch path", "left"), ("records", "right"), ("pass", "right"),
+                            ("fail", "right"), (f"last {LAST_VERDICTS}", "left")):
+        table.add_column(column, justify=justify, no_wrap=True)
+    for u in units:
+        last = "".join(verdict_mark(v) for v in u.verdicts[-LAST_VERDICTS:])
+        table.add_row(Text(u.serial), Text(" ".join(u.paths) or "-"), str(len(u.records)),
+                      str(u.verdicts.count("pass")), str(u.verdicts.count("fail")), last)
+    return table
 
 
 def drift_command(args: argparse.Namespace) -> int:

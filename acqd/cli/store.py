@@ -12,8 +12,8 @@ from rich.table import Table
 from rich.text import Text
 
 from ..display import edge_label, si, stimulus_text
-from ..record import BATCH_SETTING, unit_serial_of
 from ..store import RecordReader, RecordSummary, export_csv, open_records
+from ..units import records_by_unit
 from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
                      verdict_text)
 from .results import renderables
@@ -88,25 +88,17 @@ def _ls(args: argparse.Namespace) -> int:
 
 def _ls_by_unit(args: argparse.Namespace, summaries: list[RecordSummary], metas: list[dict[str, Any]]) -> int:
     """The records grouped by the unit they are of, in the order each unit first appears."""
-    units: dict[str, dict[str, Any]] = {}
-    for s, meta in zip(summaries, metas, strict=True):
-        batch = (meta.get("settings") or {}).get(BATCH_SETTING) or {}
-        serial = unit_serial_of(meta.get("settings"), meta.get("dut")) or "(no serial)"
-        unit = units.setdefault(serial, {"serial": serial, "paths": [], "records": [], "verdicts": []})
-        if batch.get("path") and batch["path"] not in unit["paths"]:
-            unit["paths"].append(batch["path"])
-        unit["records"].append(s.index)
-        unit["verdicts"].append(s.verdict)
+    units = records_by_unit([s.index for s in summaries], [s.verdict for s in summaries], metas)
     if args.json:
-        print(json.dumps(list(units.values()), indent=1))
+        print(json.dumps([dataclasses.asdict(u) for u in units], indent=1))
         return 0
     table = Table()
     for name, justify in (("serial", "left"), ("switch path", "left"), ("records", "right"), ("pass", "right"),
                           ("fail", "right"), ("last", "left")):
         table.add_column(name, justify=justify, no_wrap=True)
-    for u in units.values():
-        table.add_row(Text(u["serial"]), Text(" ".join(u["paths"]) or "-"), str(len(u["records"])),
-                      str(u["verdicts"].count("pass")), str(u["verdicts"].count("fail")), verdict_text(u["verdicts"][-1]))
+    for u in units:
+        table.add_row(Text(u.serial), Text(" ".join(u.paths) or "-"), str(len(u.records)),
+                      str(u.verdicts.count("pass")), str(u.verdicts.count("fail")), verdict_text(u.verdicts[-1]))
     out = console()
     out.print(Text(f"{args.store}: {len(summaries)} record(s) of {len(units)} unit(s)"), soft_wrap=True)
     out.print(table)

@@ -50,7 +50,7 @@ def build_scheduler(database: Path, campaigns: int) -> BackgroundScheduler:
     """A scheduler with the SQLite job store and one worker per campaign (each drives its own bench).
 
     ``misfire_grace_time=None``: APScheduler runs a late wake-up however late, and the campaign's own
-    misfire policy decides (and records) what happens to the slot. ``coalesce``: many missed wake-ups are
+    late-slot policy (`late_slots`) decides (and records) what happens to the slot. ``coalesce``: many missed wake-ups are
     delivered as one. ``max_instances=MAX_INSTANCES``: APScheduler drops a wake-up while the job's earlier
     one has not returned, and a wake-up arriving just as the earlier one finishes its last look at the
     clock would be lost; so a second instance is let in, and ``CampaignRunner.fire`` makes sure only one

@@ -69,7 +69,9 @@ from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant
 from .scope import N_CHANNELS, DigitiserScope
-from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
+from .engine import SCPIError, SCPIInstrument
+from .rawsocket import SocketServer
+from .serving import LoopThread, TransportServer
 from .divscope import DivScope
 from .fixture import Fixture, FixtureConfig
 from .switch import SimSwitch
@@ -224,7 +226,7 @@ class ServedBench:
 
     def __init__(self, host: str = "127.0.0.1") -> None:
         self.host = host
-        self._servers: dict[str, InstrumentServer] = {}
+        self._servers: dict[str, TransportServer] = {}
         self._thread: LoopThread | None = None
 
     def create_instruments(self) -> dict[str, SCPIInstrument]:
@@ -244,7 +246,7 @@ class ServedBench:
         """Create the instruments and start listening (ports chosen by the OS)."""
         try:
             for name, instrument in self.create_instruments().items():
-                server = InstrumentServer(instrument, self.host)
+                server = SocketServer(instrument, self.host)
                 self._servers[name] = server
                 await server.start()
         except OSError:

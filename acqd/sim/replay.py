@@ -54,7 +54,7 @@ from .bench import ServedBench
 from .generator import Generator
 from .scope import (N_CHANNELS, CaptureRequest, Captured, DigitiserScope, channel_scaling, completed,
                     trace_reply, word_bits)
-from .server import SCPIError, SCPIInstrument
+from .engine import SCPIError, SCPIInstrument
 
 INTERVAL_REL_TOL = 1e-9  # SWEep:TIME / SWEep:POINts against the stored interval (both are decimal round trips)
 _INPUT = re.compile(r"CH([0-9]+)")

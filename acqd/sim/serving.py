@@ -1,0 +1,111 @@
+"""What every transport of the simulated bench shares: a TCP listener whose connections end with it, and an
+event loop in a background thread to host servers in-process.
+
+A transport server (``rawsocket.SocketServer``, ``hislip.HislipServer``, ``vxi11.Vxi11Server``) serves one
+instrument and offers ``instrument``, ``resource`` (the VISA resource string that reaches it), ``start()``
+and ``stop()``; all listen on 127.0.0.1 unless told otherwise, on a port the OS picks unless given one.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import socket
+import threading
+from collections.abc import Awaitable, Callable, Coroutine
+from typing import Any, Protocol
+
+from .engine import SCPIInstrument
+
+Handler = Callable[[asyncio.StreamReader, asyncio.StreamWriter], Awaitable[None]]
+
+
+class TransportServer(Protocol):
+    """One instrument served over one transport."""
+
+    instrument: SCPIInstrument
+
+    @property
+    def resource(self) -> str: ...
+
+    async def start(self) -> None: ...
+
+    async def stop(self) -> None: ...
+
+
+class Listener:
+    """A listening TCP socket; ``stop()`` closes it and ends every connection it accepted."""
+
+    def __init__(self, handle: Handler, host: str = "127.0.0.1", port: int = 0, limit: int = 1 << 16) -> None:
+        self.handle, self.host, self.port, self.limit = handle, host, port, limit
+        self._server: asyncio.base_events.Server | None = None
+        self._tasks: set[asyncio.Task] = set()
+
+    async def start(self) -> None:
+        self._server = await asyncio.start_server(self._accept, self.host, self.port, limit=self.limit)
+        self.port = self._server.sockets[0].getsockname()[1]
+
+    async def stop(self) -> None:
+        if self._server is not None:
+            self._server.close()
+            for task in list(self._tasks):
+                task.cancel()
+            await asyncio.gather(*self._tasks, return_exceptions=True)
+            await self._server.wait_closed()
+            self._server = None
+
+    async def _accept(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        task = asyncio.current_task()
+        self._tasks.add(task)
+        try:
+            await self.handle(reader, writer)
+        except asyncio.CancelledError:
+            pass
+        finally:
+            writer.close()
+            self._tasks.discard(task)
+
+
+def ack_promptly(writer: asyncio.StreamWriter) -> None:
+    """Ask Linux to acknowledge the next segment at once rather than after its ~40 ms delay.
+
+    A client that writes a command and then a query as two small packets (Nagle's algorithm on, as in
+    pyvisa-py's default) otherwise waits for that delayed ACK before its query leaves. Quick-ACK mode
+    does not persist, so it is renewed after every read. A no-op where the option does not exist.
+    """
+    sock = writer.get_extra_info("socket")
+    if sock is not None and hasattr(socket, "TCP_QUICKACK"):
+        try:
+            sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_QUICKACK, 1)
+        except OSError:
+            pass
+
+
+class LoopThread:
+    """An event loop in a background thread, so tests and the step test can host servers in-process."""
+
+    def __init__(self, name: str = "acqd-sim") -> None:
+        self.loop = asyncio.new_event_loop()
+        self._thread = threading.Thread(target=self._run, name=name, daemon=True)
+
+    def _run(self) -> None:
+        asyncio.set_event_loop(self.loop)
+        self.loop.run_forever()
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def run(self, coro: Coroutine[Any, Any, Any], timeout_s: float = 10.0) -> Any:
+        """Run a coroutine on the loop and return its result (raises what it raised)."""
+        return asyncio.run_coroutine_threadsafe(coro, self.loop).result(timeout_s)
+
+    def call(self, func: Callable[..., Any], *args: Any) -> Any:
+        """Call ``func`` in the loop's thread (instrument state belongs to that thread)."""
+        async def invoke() -> Any:
+            return func(*args)
+        return self.run(invoke())
+
+    def stop(self) -> None:
+        if self._thread.is_alive():
+            self.loop.call_soon_threadsafe(self.loop.stop)
+            self._thread.join(10)
+        self.loop.close()

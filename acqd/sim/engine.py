@@ -588,6 +588,8 @@ class SCPIInstrument:
         self._log_messages = log_messages or log_path is not None
         self._log_path = Path(log_path) if log_path else None
         self._opc_armed = False  # *OPC received; set ESR bit 0 when pending operations finish
+        self.remote = False  # remote/local state as a LAN transport sets it (no front panel to lock out)
+        self.local_lockout = False
         self._output_pending = False
         self._table = [(compile_pattern(c.pattern), c) for c in BASE_COMMANDS + self.COMMANDS]
 
@@ -640,6 +642,14 @@ class SCPIInstrument:
     def device_cleared(self) -> None:
         """A client cleared the device: a received ``*OPC`` no longer waits to set ESR bit 0 (§12.5.2)."""
         self._opc_armed = False
+
+    def remote_local(self, remote: bool | None, lockout: bool | None) -> None:
+        """A transport's remote/local control (HiSLIP AsyncRemoteLocalControl, VXI-11 device_remote and
+        device_local); None leaves that state unchanged. Kept and reported only: there is no front panel."""
+        if remote is not None:
+            self.remote = remote
+        if lockout is not None:
+            self.local_lockout = lockout
 
     def power_cycle(self) -> None:
         """Fault injection "a reset": defaults, empty queue, PON set, as after switching off and on."""

@@ -8,36 +8,44 @@ faults act on the wire: ``drop_mid_block`` sends half the response and closes th
 from __future__ import annotations
 
 import asyncio
+import functools
+from collections.abc import Mapping
 
 from .engine import ConnectionLost, MessageExchange, Response, SCPIInstrument
 from .serving import Listener, ack_promptly
 
 
 class SocketServer:
-    """One instrument on one TCP port; ``resource`` is the VISA resource string to reach it."""
+    """Each instrument on a TCP port of its own (the OS picks them); ``resources`` reach them."""
 
-    def __init__(self, instrument: SCPIInstrument, host: str = "127.0.0.1", port: int = 0) -> None:
-        self.instrument = instrument
-        self._listener = Listener(self._serve, host, port, limit=MessageExchange.MAX_MESSAGE_BYTES)
+    def __init__(self, instruments: Mapping[str, SCPIInstrument], host: str = "127.0.0.1") -> None:
+        self.instruments = dict(instruments)
+        self._listeners = {name: Listener(functools.partial(_serve, instrument), host,
+                                          limit=MessageExchange.MAX_MESSAGE_BYTES)
+                           for name, instrument in self.instruments.items()}
 
     @property
-    def resource(self) -> str:
-        return f"TCPIP0::{self._listener.host}::{self._listener.port}::SOCKET"
+    def resources(self) -> dict[str, str]:
+        """VISA resource strings by instrument name (``TCPIP0::127.0.0.1::PORT::SOCKET``)."""
+        return {name: f"TCPIP0::{listener.host}::{listener.port}::SOCKET" for name, listener in self._listeners.items()}
 
     async def start(self) -> None:
-        await self._listener.start()
+        for listener in self._listeners.values():
+            await listener.start()
 
     async def stop(self) -> None:
-        await self._listener.stop()
+        for listener in self._listeners.values():
+            await listener.stop()
 
-    async def _serve(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
-        """A reader that hands each line to the exchange, and the exchange running them one at a time."""
-        exchange = MessageExchange(self.instrument, lambda response: _send(writer, response))
-        reading = asyncio.ensure_future(_read(reader, writer, exchange))
-        try:
-            await exchange.run()
-        finally:
-            reading.cancel()
+
+async def _serve(instrument: SCPIInstrument, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+    """A reader that hands each line to the exchange, and the exchange running them one at a time."""
+    exchange = MessageExchange(instrument, lambda response: _send(writer, response))
+    reading = asyncio.ensure_future(_read(reader, writer, exchange))
+    try:
+        await exchange.run()
+    finally:
+        reading.cancel()
 
 
 async def _read(reader: asyncio.StreamReader, writer: asyncio.StreamWriter, exchange: MessageExchange) -> None:

@@ -1,9 +1,9 @@
 """What every transport of the simulated bench shares: a TCP listener whose connections end with it, and an
 event loop in a background thread to host servers in-process.
 
-A transport server (``rawsocket.SocketServer``, ``hislip.HislipServer``, ``vxi11.Vxi11Server``) serves one
-instrument and offers ``instrument``, ``resource`` (the VISA resource string that reaches it), ``start()``
-and ``stop()``; all listen on 127.0.0.1 unless told otherwise, on a port the OS picks unless given one.
+A transport server (``rawsocket.SocketServer``, ``hislip.HislipServer``, ``vxi11.Vxi11Server``) serves the
+bench's instruments and offers ``resources`` (the VISA resource string of each, by name), ``start()`` and
+``stop()``; all listen on 127.0.0.1 unless told otherwise.
 """
 
 from __future__ import annotations
@@ -14,18 +14,16 @@ import threading
 from collections.abc import Awaitable, Callable, Coroutine
 from typing import Any, Protocol
 
-from .engine import SCPIInstrument
 
 Handler = Callable[[asyncio.StreamReader, asyncio.StreamWriter], Awaitable[None]]
 
 
 class TransportServer(Protocol):
-    """One instrument served over one transport."""
-
-    instrument: SCPIInstrument
+    """The bench's instruments served over one transport."""
 
     @property
-    def resource(self) -> str: ...
+    def resources(self) -> dict[str, str]:
+        """VISA resource strings by instrument name."""
 
     async def start(self) -> None: ...
 

@@ -122,6 +122,12 @@ class Program:
     procedures: Mapping[int, Procedure]
 
 
+async def _null(args: XdrReader) -> bytes:
+    """Procedure 0 of every program takes nothing and returns nothing (RFC 5531, by convention; RFC 1833
+    lists it for the portmapper)."""
+    return b""
+
+
 async def read_record(reader: asyncio.StreamReader) -> bytes:
     """One record: fragments up to and including the one marked last (RFC 5531 §11)."""
     parts, size = [], 0
@@ -172,7 +178,7 @@ async def answer(call: bytes, programs: Mapping[int, Program]) -> bytes | None:
     if version != program.version:
         return accepted(xid, AcceptStatus.PROG_MISMATCH,
                         XdrWriter().uint(program.version).uint(program.version).encoded())
-    procedure = program.procedures.get(proc)
+    procedure = program.procedures.get(proc, _null if proc == 0 else None)  # 0: NULL, every program's
     if procedure is None:
         return accepted(xid, AcceptStatus.PROC_UNAVAIL)
     try:
@@ -200,9 +206,6 @@ async def serve_connection(reader: asyncio.StreamReader, writer: asyncio.StreamW
 def portmapper(mappings: Callable[[], Mapping[tuple[int, int], int]]) -> Program:
     """The portmapper over TCP; ``mappings()`` gives (program, version) → TCP port as served now."""
 
-    async def null(args: XdrReader) -> bytes:
-        return b""
-
     async def refuse(args: XdrReader) -> bytes:  # SET, UNSET: the table is fixed
         return XdrWriter().bool(False).encoded()
 
@@ -217,4 +220,4 @@ def portmapper(mappings: Callable[[], Mapping[tuple[int, int], int]]) -> Program
             out.bool(True).uint(program).uint(version).uint(IPPROTO_TCP).uint(port)
         return out.bool(False).encoded()
 
-    return Program(PORTMAPPER_PROGRAM, PORTMAPPER_VERSION, {0: null, 1: refuse, 2: refuse, 3: getport, 4: dump})
+    return Program(PORTMAPPER_PROGRAM, PORTMAPPER_VERSION, {1: refuse, 2: refuse, 3: getport, 4: dump})

@@ -275,7 +275,7 @@ class HislipServer:
     def __init__(self, instruments: Mapping[str, SCPIInstrument], host: str = "127.0.0.1",
                  port: int = DEFAULT_PORT) -> None:
         self.instruments = dict(instruments)
-        self._listener = Listener(self._connection, host, port)
+        self._listener = Listener(self._connection, host, port, what="hislip")
         self._devices: dict[str, _Device] = {}  # by sub-address; made in the serving loop (asyncio.Condition)
         self._sessions: dict[int, _Session] = {}
         self._next_id = 0

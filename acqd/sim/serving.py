@@ -30,16 +30,29 @@ class TransportServer(Protocol):
     async def stop(self) -> None: ...
 
 
-class Listener:
-    """A listening TCP socket; ``stop()`` closes it and ends every connection it accepted."""
+class ListenError(OSError):
+    """A listener could not start; ``what`` names it (``hislip``, ``portmapper``, …) for the message."""
 
-    def __init__(self, handle: Handler, host: str = "127.0.0.1", port: int = 0, limit: int = 1 << 16) -> None:
-        self.handle, self.host, self.port, self.limit = handle, host, port, limit
+    def __init__(self, what: str, host: str, port: int, reason: str) -> None:
+        super().__init__(f"cannot listen on {host} port {port} ({what}): {reason}")
+        self.what, self.host, self.port, self.reason = what, host, port, reason
+
+
+class Listener:
+    """A listening TCP socket; ``stop()`` closes it and ends every connection it accepted. ``what`` names
+    it in a ListenError."""
+
+    def __init__(self, handle: Handler, host: str = "127.0.0.1", port: int = 0, limit: int = 1 << 16,
+                 what: str = "socket") -> None:
+        self.handle, self.host, self.port, self.limit, self.what = handle, host, port, limit, what
         self._server: asyncio.base_events.Server | None = None
         self._tasks: set[asyncio.Task] = set()
 
     async def start(self) -> None:
-        self._server = await asyncio.start_server(self._accept, self.host, self.port, limit=self.limit)
+        try:
+            self._server = await asyncio.start_server(self._accept, self.host, self.port, limit=self.limit)
+        except OSError as exc:
+            raise ListenError(self.what, self.host, self.port, exc.strerror or str(exc)) from None
         self.port = self._server.sockets[0].getsockname()[1]
 
     async def stop(self) -> None:

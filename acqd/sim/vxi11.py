@@ -170,11 +170,13 @@ class Vxi11Server:
                 20: self._not_supported, 22: self._not_supported, 23: self._destroy_link,
                 25: self._not_supported, 26: self._not_supported}
         self._core = Listener(functools.partial(self._serve, {CORE_PROGRAM: Program(CORE_PROGRAM, CORE_VERSION, core)}),
-                              host, port)
+                              host, port, what="vxi11")
         self._abort = Listener(functools.partial(self._serve, {ABORT_PROGRAM: Program(ABORT_PROGRAM, ABORT_VERSION,
-                                                                                      {1: self._device_abort})}), host)
+                                                                                      {1: self._device_abort})}), host,
+                               what="vxi11 abort channel")
         self._portmapper = None if portmapper_port is None else Listener(
-            functools.partial(self._serve, {PORTMAPPER_PROGRAM: portmapper(self._mappings)}), host, portmapper_port)
+            functools.partial(self._serve, {PORTMAPPER_PROGRAM: portmapper(self._mappings)}), host, portmapper_port,
+            what="portmapper")
 
     @property
     def resources(self) -> dict[str, str]:

@@ -178,7 +178,7 @@ async def _serve(bench: ServedBench, as_json: bool, command: str, what: str) -> 
             for transport, resources in served.items():
                 for name, resource in resources.items():
                     print(f"{name:<10} {resource}  ({bench.instruments[name].identity()})")
-            print(f"serving {what} over {', '.join(served)}; Ctrl-C stops it", flush=True)
+            print(f"serving {what}; Ctrl-C stops it", flush=True)
         await stop.wait()
     finally:
         await bench.astop()

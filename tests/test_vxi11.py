@@ -252,3 +252,12 @@ def test_pyvisa_finds_the_core_channel_through_the_portmapper_on_port_111():
     # DUMP lists the core, abort (0x0607B0) and portmapper programs, all TCP (protocol 6).
     assert {(p, v, proto) for p, v, proto, _ in seen["dump"]} == {(100000, 2, 6), (0x0607AF, 1, 6), (0x0607B0, 1, 6)}
     assert seen["idn"].startswith("acqd-sim,FG,") and seen["scope_idn"].startswith("acqd-sim,DIG,")
+    # python-vxi11, an independent client (its own RPC and VXI-11 code): a query, the status byte with the
+    # error-queue bit (SCPI-1999, from memory: bit 2), lock, clear, local/remote, abort, and device_trigger
+    # refused as not supported (VXI-11 error 8).
+    independent = seen["python_vxi11"]
+    if independent is None:
+        pytest.skip("python-vxi11 not installed (pip install -e '.[test]' brings it)")
+    assert independent["idn"].startswith("acqd-sim,DIG,") and independent["idn_again"] == independent["idn"]
+    assert independent["stb_after_error"] & 0x04 and independent["error"].startswith("-113")
+    assert independent["trigger"] == vxi11.ErrorCodes.operation_not_supported

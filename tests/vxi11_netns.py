@@ -24,6 +24,34 @@ def loopback_up() -> None:
         fcntl.ioctl(sock, SIOCSIFFLAGS, struct.pack(IFREQ, b"lo", flags | IFF_UP))
 
 
+def independent_client() -> dict[str, object] | None:
+    """What the python-vxi11 package (another VXI-11 client, of its own RPC code) sees; None without it."""
+    try:
+        import vxi11
+    except ImportError:
+        return None
+    seen: dict[str, object] = {}
+    scope = vxi11.Instrument("127.0.0.1", "inst1")
+    seen["idn"] = scope.ask("*IDN?")
+    scope.write("BOGUs")
+    seen["stb_after_error"] = scope.read_stb()
+    seen["error"] = scope.ask("SYSTem:ERRor?")
+    scope.lock()
+    scope.unlock()
+    scope.clear()
+    scope.local()
+    scope.remote()
+    scope.abort()  # the abort channel, with nothing in progress: no error
+    try:
+        scope.trigger()
+        seen["trigger"] = 0
+    except vxi11.vxi11.Vxi11Exception as exc:
+        seen["trigger"] = exc.err
+    seen["idn_again"] = scope.ask("*IDN?")
+    scope.close()
+    return seen
+
+
 def main() -> int:
     loopback_up()
     import pyvisa
@@ -47,6 +75,7 @@ def main() -> int:
         gen.close()
         with Session(bench.resources["scope"]) as scope:
             seen["scope_idn"] = scope.identity
+        seen["python_vxi11"] = independent_client()
     finally:
         bench.stop()
     print(json.dumps(seen))

@@ -1,12 +1,17 @@
-"""What the LAN-transport tests share: the demo step test run over a chosen transport of the embedded
-simulated bench (``[bench.simulated] transport``), its records read back from the store."""
+"""What the LAN-transport tests share: a quiet bench served over the raw socket and one other transport, and
+the demo step test run over a chosen transport of the embedded simulated bench (``[bench.simulated]
+transport``), its records read back from the store."""
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 from acqd.cli import main
 from acqd.record import Record
+from acqd.sim.bench import Serving, SimBench, SimBenchConfig
 from acqd.store import open_records
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -30,3 +35,14 @@ def run_and_read(folder: Path, transport: str, count: int = 1) -> list[Record]:
     assert main(["run", str(demo_profile(folder, transport)), "--count", str(count)]) == 0
     with open_records(folder / "records.h5") as reader:
         return [reader.read(i) for i in range(len(reader))]
+
+
+@contextmanager
+def served_beside_the_socket(table: Mapping[str, Any], transport: str) -> Iterator[SimBench]:
+    """A bench of ``table`` (unquantised) over the raw socket, the reference, and ``transport``."""
+    config = SimBenchConfig.from_mapping({**table, "quantise": False}, "test fixture")
+    bench = SimBench(config, serving=Serving(("socket", transport))).start()
+    try:
+        yield bench
+    finally:
+        bench.stop()

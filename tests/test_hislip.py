@@ -18,9 +18,8 @@ from pyvisa.util import from_ieee_block
 from pyvisa_py.protocols import hislip as pyvisa_hislip
 
 from acqd.errors import InstrumentError
-from acqd.sim.bench import Serving, SimBench, SimBenchConfig
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import run_and_read
+from lanbench import run_and_read, served_beside_the_socket
 
 TYPE = pyvisa_hislip.MESSAGETYPE  # an independent implementation's numbering of the message types
 HEADER = "!2sBBIQ"  # IVI-6.1 §3.1: "HS", message type, control code, message parameter, payload length
@@ -30,10 +29,8 @@ FIRST_MESSAGE_ID = 0xFFFF_FF00  # IVI-6.1 §3.1.2 (from memory): the first messa
 @pytest.fixture
 def bench(quiet_table):
     """A quiet, unquantised bench served over the raw socket and HiSLIP."""
-    config = SimBenchConfig.from_mapping({**quiet_table, "quantise": False}, "test fixture")
-    bench = SimBench(config, serving=Serving(("socket", "hislip"))).start()
-    yield bench
-    bench.stop()
+    with served_beside_the_socket(quiet_table, "hislip") as bench:
+        yield bench
 
 
 def hislip(bench) -> dict[str, str]:

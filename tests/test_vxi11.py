@@ -26,19 +26,17 @@ import pytest
 import pyvisa
 from pyvisa_py.protocols import rpc, vxi11
 
-from acqd.sim.bench import Serving, SimBench, SimBenchConfig
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import run_and_read
+from lanbench import run_and_read, served_beside_the_socket
 
 HERE = Path(__file__).resolve().parent
 
 
 @pytest.fixture
 def bench(quiet_table):
-    config = SimBenchConfig.from_mapping({**quiet_table, "quantise": False}, "test fixture")
-    bench = SimBench(config, serving=Serving(("socket", "vxi11"))).start()
-    yield bench
-    bench.stop()
+    """A quiet, unquantised bench served over the raw socket and VXI-11."""
+    with served_beside_the_socket(quiet_table, "vxi11") as bench:
+        yield bench
 
 
 def vxi(bench) -> dict[str, str]:

@@ -286,10 +286,6 @@ class HislipServer:
         return {name: f"TCPIP0::{self._listener.host}::{SUB_ADDRESS.format(n)},{self._listener.port}::INSTR"
                 for n, name in enumerate(self.instruments)}
 
-    @property
-    def port(self) -> int:
-        return self._listener.port
-
     async def start(self) -> None:
         self._devices = {SUB_ADDRESS.format(n): _Device(name, instrument)
                          for n, (name, instrument) in enumerate(self.instruments.items())}

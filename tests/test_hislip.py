@@ -19,7 +19,7 @@ from pyvisa_py.protocols import hislip as pyvisa_hislip
 
 from acqd.errors import InstrumentError
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
 
 TYPE = pyvisa_hislip.MESSAGETYPE  # an independent implementation's numbering of the message types
 HEADER = "!2sBBIQ"  # IVI-6.1 §3.1: "HS", message type, control code, message parameter, payload length
@@ -263,3 +263,8 @@ def test_an_unreachable_hislip_port_is_one_line():
     with pytest.raises(InstrumentError) as info:
         Session(resource, timeout_s=0.5).open()
     assert str(info.value).startswith(resource) and "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("fault", ["drop_mid_block", "garble_block_header"])
+def test_a_cut_or_garbled_block_is_one_line_and_the_session_recovers(bench, fault):
+    block_faults_recover(bench, hislip(bench)["scope"], fault)

@@ -27,7 +27,7 @@ import pyvisa
 from pyvisa_py.protocols import rpc, vxi11
 
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
 
 HERE = Path(__file__).resolve().parent
 
@@ -259,3 +259,8 @@ def test_pyvisa_finds_the_core_channel_through_the_portmapper_on_port_111():
     assert independent["idn"].startswith("acqd-sim,DIG,") and independent["idn_again"] == independent["idn"]
     assert independent["stb_after_error"] & 0x04 and independent["error"].startswith("-113")
     assert independent["trigger"] == vxi11.ErrorCodes.operation_not_supported
+
+
+@pytest.mark.parametrize("fault", ["drop_mid_block", "garble_block_header"])
+def test_a_cut_or_garbled_block_is_one_line_and_the_session_recovers(bench, fault):
+    block_faults_recover(bench, vxi(bench)["scope"], fault)

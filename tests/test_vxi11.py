@@ -264,3 +264,19 @@ def test_pyvisa_finds_the_core_channel_through_the_portmapper_on_port_111():
 @pytest.mark.parametrize("fault", ["drop_mid_block", "garble_block_header"])
 def test_a_cut_or_garbled_block_is_one_line_and_the_session_recovers(bench, fault):
     block_faults_recover(bench, vxi(bench)["scope"], fault)
+
+
+def test_a_closed_connection_ends_its_links_and_their_locks(bench, core):
+    first = core()
+    _, link, _, max_recv = first.create_link(1, True, 0, "inst0")  # lockDevice: the link holds the lock
+    # VXI-11 §B.6.11 (from memory): more than maxRecvSize bytes in one device_write is a parameter error.
+    assert first.device_write(link, 1000, 0, vxi11.OP_FLAG_END, b"*" * (max_recv + 1))[0] == \
+        vxi11.ErrorCodes.parameter_error
+    second = core()
+    _, other, _, _ = second.create_link(2, False, 0, "inst0")
+    assert second.device_lock(other, 0, 0) == vxi11.ErrorCodes.device_locked_by_another_link
+    first.close()  # no destroy_link: the client just went away
+    deadline = time.monotonic() + 2
+    while second.device_lock(other, 0, 0) != 0:
+        assert time.monotonic() < deadline, "the lock of a closed connection's link was never released"
+        time.sleep(0.05)

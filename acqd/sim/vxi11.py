@@ -13,8 +13,8 @@ error codes) is followed; clause numbers below are from memory. What is served:
   trigger, IEEE 488.2 DT0), device_clear (15; the engine's device clear and the link's unread response
   dropped), device_remote (16), device_local (17), device_lock (18; flag 0x01 waits up to
   ``lock_timeout``, else error 11 at once), device_unlock (19; error 12 without a lock), destroy_link (23;
-  its lock released). device_enable_srq, device_docmd and the interrupt channel (20, 22, 25, 26) answer
-  error 8. An unknown link is error 4.
+  its lock released; a connection that closes destroys the links made on it). device_enable_srq,
+  device_docmd and the interrupt channel (20, 22, 25, 26) answer error 8. An unknown link is error 4.
 * **Abort channel** (program 0x0607B0 version 1, TCP, on the port create_link names): device_abort (1)
   ends the link's device_read or lock wait in progress with error 23 (abort).
 * **Locks** are per instrument across links: reads and writes of another link get error 11 (after
@@ -29,6 +29,7 @@ error codes) is followed; clause numbers below are from memory. What is served:
 from __future__ import annotations
 
 import asyncio
+import contextvars
 import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -59,6 +60,10 @@ class Error(IntEnum):
     NO_LOCK_HELD = 12
     IO_TIMEOUT = 15
     ABORT = 23
+
+
+# The links made on the core-channel connection being served (each connection is served in a task of its own).
+_LINKS_OF_CONNECTION: contextvars.ContextVar[set[int]] = contextvars.ContextVar("links_of_connection")
 
 
 class Aborted(Exception):
@@ -169,7 +174,8 @@ class Vxi11Server:
                 15: self._clear, 16: self._remote, 17: self._local, 18: self._lock, 19: self._unlock,
                 20: self._not_supported, 22: self._not_supported, 23: self._destroy_link,
                 25: self._not_supported, 26: self._not_supported}
-        self._core = Listener(functools.partial(self._serve, {CORE_PROGRAM: Program(CORE_PROGRAM, CORE_VERSION, core)}),
+        self._core = Listener(functools.partial(self._serve_core, {CORE_PROGRAM: Program(CORE_PROGRAM, CORE_VERSION,
+                                                                                         core)}),
                               host, port, what="vxi11")
         self._abort = Listener(functools.partial(self._serve, {ABORT_PROGRAM: Program(ABORT_PROGRAM, ABORT_VERSION,
                                                                                       {1: self._device_abort})}), host,
@@ -210,6 +216,20 @@ class Vxi11Server:
                      writer: asyncio.StreamWriter) -> None:
         await serve_connection(reader, writer, programs)
 
+    async def _serve_core(self, programs: Mapping[int, Program], reader: asyncio.StreamReader,
+                          writer: asyncio.StreamWriter) -> None:
+        """The core channel; the links made on a connection end with it, their locks released (a client
+        that died without destroy_link must not keep the device locked; VXI-11 §B.? from memory)."""
+        made = _LINKS_OF_CONNECTION.set(set())
+        try:
+            await serve_connection(reader, writer, programs)
+        finally:
+            for link_id in _LINKS_OF_CONNECTION.get():
+                link = self._links.pop(link_id, None)
+                if link is not None:
+                    await link.close()
+            _LINKS_OF_CONNECTION.reset(made)
+
     # -- the procedures (arguments as in VXI-11 §C's Device_*Parms) --------------------------------------
     def _link(self, link_id: int) -> _Link | None:
         return self._links.get(link_id)
@@ -229,15 +249,18 @@ class Vxi11Server:
         if lock_device:
             device.lock_holder = link.id
         self._links[link.id] = link
+        _LINKS_OF_CONNECTION.get().add(link.id)
         return XdrWriter().int(Error.NONE).int(link.id).uint(self._abort.port).uint(MAX_RECV_BYTES).encoded()
 
     async def _write(self, args: XdrReader) -> bytes:
         """Device_WriteParms (lid, io_timeout, lock_timeout, flags, data) → (error, size)."""
         link = self._link(args.int())
         args.uint()
-        lock_timeout_ms, flags, data = args.uint(), args.int(), args.opaque(MAX_RECV_BYTES)
+        lock_timeout_ms, flags, data = args.uint(), args.int(), args.opaque()
         if link is None:
             return XdrWriter().int(Error.INVALID_LINK).uint(0).encoded()
+        if len(data) > MAX_RECV_BYTES:
+            return XdrWriter().int(Error.PARAMETER).uint(0).encoded()
         if not await unlocked(link, flags, lock_timeout_ms / 1000):
             return XdrWriter().int(Error.LOCKED_BY_ANOTHER_LINK).uint(0).encoded()
         if link.unread:

@@ -1,5 +1,5 @@
 """``acqd sim --transport``: the simulated bench served over the raw socket, HiSLIP and VXI-11 at once, each
-resource answering through pyvisa-py; ports in use and wrong values as one line.
+resource answering through pyvisa-py; ports in use and wrong values as one line; ``acqd identify`` over each.
 
 References: pyvisa-py's clients for each transport (its resource-string parser and protocols); IEEE 488.2
 §10.14 (from memory) for the ``*IDN?`` reply, the same instrument whatever carries it.
@@ -17,6 +17,7 @@ import sys
 import pytest
 
 from acqd.cli import main
+from lanbench import served_beside_the_socket
 
 
 @pytest.mark.timeout(60)
@@ -59,3 +60,16 @@ def test_the_profiles_transport_is_checked(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and str(profile) in err[0] and "bench.simulated.transport" in err[0]
     assert "socket, hislip, vxi11" in err[0]
+
+
+@pytest.mark.parametrize("transport", ["hislip", "vxi11"])
+def test_acqd_identify_names_the_same_driver_over_each_transport(quiet_table, capsys, transport):
+    with served_beside_the_socket(quiet_table, transport) as bench:
+        printed = {}
+        for over in ("socket", transport):
+            resource = bench.resources_by_transport[over]["scope"]
+            assert main(["identify", resource]) == 0
+            out = capsys.readouterr().out
+            assert out.startswith(f"{resource}: acqd-sim,DIG,")
+            printed[over] = out.split("\n", 1)[1]  # the driver line, the same whatever carries *IDN?
+    assert printed[transport] == printed["socket"] and "scpi-digitiser" in printed["socket"]

@@ -11,6 +11,12 @@ For each record length (float32 samples, REAL,32 big-endian, as ``TRACe? CH2`` o
   pyvisa binary    pyvisa-py's plain query_binary_values (read termination NL)
   pyvisa ascii     query_ascii_values with the scope switched to FORMat ASCii
   raw socket       socket.recv_into a preallocated buffer: the ceiling for a Python client
+  acqd HiSLIP      Session.query_block over the simulated bench's HiSLIP server (IVI-6.1), through
+                   pyvisa-py's HiSLIP client (read_bytes: its receive fills one buffer from 1 MiB
+                   Data messages)
+  acqd VXI-11      the same over its VXI-11 server: pyvisa-py asks one device_read RPC per 1 MiB
+                   (the server's maxRecvSize), each an XDR reply decoded and copied by pyvisa-py's
+                   RPC client; that per-call copy and round trip is VXI-11's overhead
 
 The simulated bench runs in a child process, so server and client do not share one interpreter lock, and
 the scope's encoded reply is cached there per record: the figures compare transports, not the simulator's
@@ -54,10 +60,10 @@ SLOW_PATH_BUDGET_S = 60.0
 
 def serve(conn: Any, quantise: bool) -> None:
     """Child process: the simulated bench, with the scope's block replies cached per record."""
-    from acqd.sim.bench import SimBench, SimBenchConfig
+    from acqd.sim.bench import TRANSPORTS, Serving, SimBench, SimBenchConfig
 
     config = SimBenchConfig(noise_v_rms=1e-3, jitter_s=0.0, quantise=quantise, wiring={"CH2": "v_c"})
-    bench = SimBench(config).start()
+    bench = SimBench(config, serving=Serving(TRANSPORTS)).start()
     scope = bench.scope
     original = scope._trace
     cache: dict[Any, Any] = {}
@@ -73,7 +79,7 @@ def serve(conn: Any, quantise: bool) -> None:
         return cache[key]
 
     scope._trace = cached_trace
-    conn.send(bench.resources)
+    conn.send(bench.resources_by_transport)
     conn.recv()  # until the parent is done
     bench.stop()
 
@@ -173,7 +179,8 @@ def compare(quantise: bool, sizes: list[int], repeats: int) -> None:
     server = ctx.Process(target=serve, args=(child, quantise), daemon=True)
     server.start()
     try:
-        resources = parent.recv()
+        served = parent.recv()
+        resources = served["socket"]
         generator = open_instrument(resources["generator"], "scpi-generator")
         generator.apply_stimulus(Stimulus("square", 0.0, 1.0, 1e3, "rising"))
         generator.output(True)
@@ -186,6 +193,8 @@ def compare(quantise: bool, sizes: list[int], repeats: int) -> None:
             "pyvisa binary": pyvisa_binary(inst),
             "pyvisa ascii": pyvisa_ascii(inst),
             "raw socket": raw_socket(resources["scope"]),
+            "acqd HiSLIP": acqd_path(served["hislip"]["scope"], direct_socket=True),
+            "acqd VXI-11": acqd_path(served["vxi11"]["scope"], direct_socket=True),
         }
         print(f"{'samples':>9} {'path':<17} {'MB/s':>9} {'÷ raw':>7}")
         cost_per_sample: dict[str, float] = {}  # a path's wall time at the last size, per sample

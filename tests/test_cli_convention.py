@@ -113,6 +113,8 @@ def test_record_defaults_to_the_last_record(capsys, demo_store, tmp_path):
     (["show", "{store}", "-r", "one"], "--record: 'one' is not a whole number"),
     (["run", "p.toml", "-n", "0"], "--count: must be 1 or more"),
     (["drift", "{store}", "--last", "0"], "--last: must be 1 or more"),
+    (["sim", "--transport", "usb"], "--transport: 'usb': give one or more of socket, hislip, vxi11"),
+    (["replay", "{store}", "--hislip-port", "70000"], "--hislip-port: '70000' is not a TCP port"),
 ])
 def test_old_and_wrong_options_are_one_error_line(capsys, demo_store, tmp_path, argv, named):
     store, _ = demo_store

@@ -106,6 +106,8 @@ def normalised(text: str, work: Path, numbers: bool = False) -> list[str]:
     text = text.replace(str(ROOT), "<root>").replace(README_ROOT, "<root>")
     text = re.sub(r"\d{4}-\d\d-\d\d[T ]\d\d:\d\d:\d\d(\.\d+)?(\+00:00)?", "<time>", text)
     text = re.sub(r"127\.0\.0\.1::\d+", "127.0.0.1::<port>", text)
+    text = re.sub(r"127\.0\.0\.1::hislip(\d),\d+", r"127.0.0.1::hislip\1,<port>", text)
+    text = re.sub(r"127\.0\.0\.1,\d+::", "127.0.0.1,<port>::", text)
     text = re.sub(r"duration_s=[\d.]+", "duration_s=<s>", text)
     text = re.sub(r"pid \d+", "pid <pid>", text)
     if numbers:

@@ -3,7 +3,10 @@
 
 Both run in the foreground on their own event loop; SIGINT or SIGTERM stops the servers and exits 0. Only
 the loopback interface is served unless ``--allow-remote``: the simulated instruments take commands from
-anyone who can reach the port. ``--json`` prints the resources as the first stdout line, one JSON object.
+anyone who can reach the port. ``--transport`` picks the interfaces served (raw socket, HiSLIP on
+``--hislip-port``, VXI-11 with its portmapper on port 111 unless ``--no-portmapper``). ``--json`` prints
+the resources as the first stdout line, one JSON object: ``{name: resource}`` for one transport,
+``{transport: {name: resource}}`` for several.
 """
 
 from __future__ import annotations
@@ -15,10 +18,14 @@ import json
 import re
 import signal
 import sys
+from collections.abc import Callable
 
 from ..config import load_toml
 from ..errors import ConfigError
-from ..sim.bench import TABLE, ServedBench, SimBench, SimBenchConfig
+from ..sim.bench import TABLE, TRANSPORTS, ServedBench, Serving, SimBench, SimBenchConfig
+from ..sim.hislip import DEFAULT_PORT as HISLIP_PORT
+from ..sim.oncrpc import PORTMAPPER_PORT
+from ..sim.serving import ListenError
 from .common import add_command, add_json, add_store
 
 
@@ -46,9 +53,49 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def _serving_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
-    add_json(parser, "print the resources as one JSON line first: {\"generator\": ..., \"scope\": ..., ...}")
+    add_json(parser, "print the resources as one JSON line first: {\"generator\": ..., \"scope\": ..., ...}, "
+                     "or {\"socket\": {...}, \"hislip\": {...}} for several transports")
     parser.add_argument("--allow-remote", action="store_true",
                         help="allow listening on an address other than loopback")
+    parser.add_argument("--transport", metavar="LIST", type=transports(parser.prog),
+                        help=f"what to serve the instruments over: {', '.join(TRANSPORTS)} or all, comma-separated "
+                             "(default: the profile's [bench.simulated] transport, else socket)")
+    parser.add_argument("--hislip-port", metavar="PORT", type=port_number(parser.prog, "--hislip-port"),
+                        default=HISLIP_PORT, help=f"the HiSLIP port, both channels (default {HISLIP_PORT}; 0: any free one)")
+    parser.add_argument("--vxi11-port", metavar="PORT", type=port_number(parser.prog, "--vxi11-port"), default=0,
+                        help="the VXI-11 core channel's port (default: any free one; the portmapper tells clients)")
+    parser.add_argument("--no-portmapper", action="store_true",
+                        help=f"serve VXI-11 without the portmapper on port {PORTMAPPER_PORT}; the resources then "
+                             "name the core channel's port (TCPIP0::HOST,PORT::inst0::INSTR)")
+
+
+def transports(command: str) -> Callable[[str], tuple[str, ...]]:
+    """An argparse ``type`` for ``socket,hislip`` or ``all`` → the transports in the order given."""
+    def parse(text: str) -> tuple[str, ...]:
+        names = [name.strip() for name in text.split(",")]
+        if names == ["all"]:
+            return TRANSPORTS
+        wrong = [name for name in names if name not in TRANSPORTS]
+        if wrong or len(set(names)) != len(names):
+            raise ConfigError(command, "--transport", f"{text!r}: give one or more of {', '.join(TRANSPORTS)} "
+                                                      "separated by commas, each once, or all")
+        return tuple(names)
+    return parse
+
+
+def port_number(command: str, option: str) -> Callable[[str], int]:
+    """An argparse ``type`` for a TCP port, 0 (any free one) to 65535."""
+    def parse(text: str) -> int:
+        if not text.isdigit() or int(text) > 65535:
+            raise ConfigError(command, option, f"{text!r} is not a TCP port; give 0 to 65535 (0: any free one)")
+        return int(text)
+    return parse
+
+
+def serving(args: argparse.Namespace, default: str) -> Serving:
+    """The transports and ports the command line asks for; ``default`` when it names no transport."""
+    return Serving(args.transport or (default,), hislip_port=args.hislip_port, vxi11_port=args.vxi11_port,
+                   portmapper_port=None if args.no_portmapper else PORTMAPPER_PORT)
 
 
 _SELECTION_ITEM = re.compile(r"\s*([0-9]+)\s*(?:-\s*([0-9]+)\s*)?")
@@ -98,7 +145,8 @@ def _check_host(args: argparse.Namespace) -> None:
 
 def run(args: argparse.Namespace) -> int:
     _check_host(args)
-    bench = SimBench(load_config(args.profile), host=args.host)
+    config = load_config(args.profile)
+    bench = SimBench(config, host=args.host, serving=serving(args, config.transport))
     asyncio.run(_serve(bench, args.json, "acqd sim", "the simulated bench"))
     return 0
 
@@ -108,7 +156,7 @@ def run_replay(args: argparse.Namespace) -> int:
 
     _check_host(args)
     records = parse_selection(args.records) if args.records is not None else None
-    bench = ReplayBench(args.store, records=records, host=args.host)
+    bench = ReplayBench(args.store, records=records, host=args.host, serving=serving(args, "socket"))
     asyncio.run(_serve(bench, args.json, "acqd replay", f"the records of {args.store}"))
     return 0
 
@@ -120,16 +168,33 @@ async def _serve(bench: ServedBench, as_json: bool, command: str, what: str) -> 
         loop.add_signal_handler(sig, stop.set)
     try:
         await bench.astart()
-    except OSError as exc:
-        raise ConfigError("command line", "--host", f"cannot listen on {bench.host}: {exc.strerror or exc}") from None
+    except ListenError as exc:
+        raise _listen_error(exc) from None
+    served = bench.resources_by_transport
     try:
         if as_json:
-            print(json.dumps(bench.resources), flush=True)
+            print(json.dumps(bench.resources if len(served) == 1 else served), flush=True)
         else:
-            for name, resource in bench.resources.items():
-                print(f"{name:<10} {resource}  ({bench.instruments[name].identity()})")
+            for transport, resources in served.items():
+                for name, resource in resources.items():
+                    print(f"{name:<10} {resource}  ({bench.instruments[name].identity()})")
             print(f"serving {what}; Ctrl-C stops it", flush=True)
         await stop.wait()
     finally:
         await bench.astop()
         print(f"{command}: stopped", file=sys.stderr)
+
+
+# What to change when a listener cannot start, by the listener's name (acqd.sim.serving.ListenError.what).
+_LISTEN_OPTIONS = {"hislip": "--hislip-port", "vxi11": "--vxi11-port", "portmapper": "--no-portmapper"}
+
+
+def _listen_error(exc: ListenError) -> ConfigError:
+    """One line naming the option that chose the port, with the way out for the portmapper's port 111."""
+    hint = ""
+    if exc.what == "portmapper":
+        hint = ("; port 111 needs root or a network namespace of its own (run it under `unshare -rn`), or give "
+                "--no-portmapper and reach the instruments at the core channel's port")
+    elif exc.what == "hislip":
+        hint = "; another server may hold it: give another --hislip-port, or 0 for any free one"
+    return ConfigError("command line", _LISTEN_OPTIONS.get(exc.what, "--host"), f"{exc}{hint}")

@@ -21,6 +21,8 @@ dut           table  the DUT model, as acqd.models.build_model reads it; its sou
                      the generator's 50 Ω for the physics to match the bench
 wiring        table  CH1..CH4 = "node" or "node_a - node_b"; an absent channel is left unconnected
 drift         table  a slow change of one DUT parameter (below); absent: the DUT never changes
+transport     str    how the embedded bench serves its instruments: socket (default), hislip (IVI-6.1 on a
+                     port the OS picks) or vxi11 (no portmapper: the resources name the core channel's port)
 fixture       table  a fixture of N units behind a simulated switch (acqd.sim.fixture); also made, with its
                      defaults, when the profile has a [batch]. The units replace ``dut`` (each is ``dut``
                      with its parts scattered) and a drift is not applied to them
@@ -69,7 +71,11 @@ from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant
 from .scope import N_CHANNELS, DigitiserScope
-from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
+from .engine import SCPIError, SCPIInstrument
+from .hislip import HislipServer
+from .rawsocket import SocketServer
+from .serving import LoopThread, TransportServer
+from .vxi11 import Vxi11Server
 from .divscope import DivScope
 from .fixture import Fixture, FixtureConfig
 from .switch import SimSwitch
@@ -125,6 +131,7 @@ class SimBenchConfig:
     wiring: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_WIRING))
     drift: DriftConfig | None = None
     fixture: FixtureConfig | None = None
+    transport: str = "socket"
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
     drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
@@ -164,6 +171,7 @@ class SimBenchConfig:
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
             fixture=FixtureConfig.from_table(table.table("fixture", {}), batch_units)
             if table.has("fixture") or batch_units is not None else None,
+            transport=table.string("transport", d.transport, choices=TRANSPORTS),
         )
         table.done()
         return cls(**values, source=source)
@@ -215,16 +223,43 @@ def _check_wiring(wiring: Mapping[str, Any], model: StateSpace, source: str) -> 
                                                   f"'a - b' of outputs: {', '.join(model.outputs)}")
 
 
+TRANSPORTS = ("socket", "hislip", "vxi11")
+
+
+@dataclass(frozen=True)
+class Serving:
+    """Which transports a served bench offers its instruments over, and on which ports.
+
+    ``hislip_port`` and ``vxi11_port`` (the VXI-11 core channel) 0: the OS picks one. ``portmapper_port``:
+    where the VXI-11 portmapper listens (clients ask port 111); None: no portmapper, so clients give the core
+    channel's port in the resource (``TCPIP0::host,PORT::inst0::INSTR``)."""
+
+    transports: tuple[str, ...] = ("socket",)
+    hislip_port: int = 0
+    vxi11_port: int = 0
+    portmapper_port: int | None = None
+
+    def server(self, transport: str, instruments: dict[str, SCPIInstrument], host: str) -> TransportServer:
+        if transport == "socket":
+            return SocketServer(instruments, host)
+        if transport == "hislip":
+            return HislipServer(instruments, host, self.hislip_port)
+        return Vxi11Server(instruments, host, self.vxi11_port, self.portmapper_port)
+
+
 class ServedBench:
-    """SCPI servers on one event loop, one per instrument that ``create_instruments`` makes.
+    """SCPI servers on one event loop for the instruments ``create_instruments`` makes, over each transport
+    ``serving`` names (the raw socket unless told otherwise).
 
     Use ``start()``/``stop()`` (or ``with``) to run them in a background thread, or ``astart()``/
     ``astop()`` from a running event loop (the ``acqd sim`` and ``acqd replay`` foregrounds).
     """
 
-    def __init__(self, host: str = "127.0.0.1") -> None:
+    def __init__(self, host: str = "127.0.0.1", serving: Serving | None = None) -> None:
         self.host = host
-        self._servers: dict[str, InstrumentServer] = {}
+        self.serving = serving or Serving()
+        self._instruments: dict[str, SCPIInstrument] = {}
+        self._servers: dict[str, TransportServer] = {}
         self._thread: LoopThread | None = None
 
     def create_instruments(self) -> dict[str, SCPIInstrument]:
@@ -233,19 +268,26 @@ class ServedBench:
 
     @property
     def resources(self) -> dict[str, str]:
-        """VISA resource strings by name, e.g. ``{"generator": "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ...}``."""
-        return {name: server.resource for name, server in self._servers.items()}
+        """VISA resource strings by name over the first transport served, e.g. ``{"generator":
+        "TCPIP0::127.0.0.1::PORT::SOCKET", "scope": ...}``."""
+        return next(iter(self.resources_by_transport.values()), {})
+
+    @property
+    def resources_by_transport(self) -> dict[str, dict[str, str]]:
+        """``{"socket": {"generator": ..., ...}, "hislip": {...}}``: every resource string served."""
+        return {transport: server.resources for transport, server in self._servers.items()}
 
     @property
     def instruments(self) -> dict[str, SCPIInstrument]:
-        return {name: server.instrument for name, server in self._servers.items()}
+        return dict(self._instruments)
 
     async def astart(self) -> None:
-        """Create the instruments and start listening (ports chosen by the OS)."""
+        """Create the instruments and start listening on every transport."""
+        self._instruments = self.create_instruments()
         try:
-            for name, instrument in self.create_instruments().items():
-                server = InstrumentServer(instrument, self.host)
-                self._servers[name] = server
+            for transport in self.serving.transports:
+                server = self.serving.server(transport, self._instruments, self.host)
+                self._servers[transport] = server
                 await server.start()
         except OSError:
             await self.astop()
@@ -287,9 +329,10 @@ class SimBench(ServedBench):
     """Three SCPI servers: ``gen``, ``scope`` (DIG) and ``divscope``, around one DUT plant; with a fixture a
     fourth, ``switch`` (SW), choosing which of the fixture's units the others see."""
 
-    def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1") -> None:
-        super().__init__(host)
+    def __init__(self, config: SimBenchConfig | None = None, host: str = "127.0.0.1",
+                 serving: Serving | None = None) -> None:
         self.config = config or SimBenchConfig()
+        super().__init__(host, serving or Serving((self.config.transport,)))
         self.realtime = self.config.realtime
         self.front_end = self.config.front_end()
         self.wiring = self.config.parsed_wiring()

@@ -15,7 +15,7 @@ import numpy as np
 from .frontend import ChannelSetup
 from .scope import (MAX_POINTS, N_CHANNELS, Acquisition, Bench, CaptureRequest, channel_data, number_list,
                     trace_axes)
-from .server import Choice, Cmd, Integer, Number, SCPIInstrument, setting
+from .engine import Choice, Cmd, Integer, Number, SCPIInstrument, setting
 
 VERTICAL_DIVISIONS = 8
 HORIZONTAL_DIVISIONS = 10

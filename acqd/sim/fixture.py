@@ -31,7 +31,7 @@ from ..errors import ConfigError
 from ..models import build_model, parameter_infos
 from ..models.signal import Signal
 from .plant import Plant
-from .server import SCPIError
+from .engine import SCPIError
 from .switch import BANKS, RELAYS_PER_BANK
 
 TABLE = "bench.simulated.fixture"

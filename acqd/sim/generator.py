@@ -13,7 +13,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
-from .server import Boolean, Choice, Cmd, LimitQuery, Number, SCPIError, SCPIInstrument, setting
+from .engine import Boolean, Choice, Cmd, LimitQuery, Number, SCPIError, SCPIInstrument, setting
 
 SOURCE_RESISTANCE_OHM = 50.0
 LEVEL_LIMIT_HIGHZ_V = 10.0  # |level| limit into high impedance; halved for a matched load

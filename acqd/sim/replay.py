@@ -50,11 +50,11 @@ from .. import __version__
 from ..errors import AcqdError, ConfigError
 from ..record import Record
 from ..store import open_records
-from .bench import ServedBench
+from .bench import ServedBench, Serving
 from .generator import Generator
 from .scope import (N_CHANNELS, CaptureRequest, Captured, DigitiserScope, channel_scaling, completed,
                     trace_reply, word_bits)
-from .server import SCPIError, SCPIInstrument
+from .engine import SCPIError, SCPIInstrument
 
 INTERVAL_REL_TOL = 1e-9  # SWEep:TIME / SWEep:POINts against the stored interval (both are decimal round trips)
 _INPUT = re.compile(r"CH([0-9]+)")
@@ -265,8 +265,9 @@ class ReplayBench(ServedBench):
     is opened when the bench starts: a missing store or record is a ConfigError then, before serving.
     """
 
-    def __init__(self, path: str | Path, records: Sequence[int] | None = None, host: str = "127.0.0.1") -> None:
-        super().__init__(host)
+    def __init__(self, path: str | Path, records: Sequence[int] | None = None, host: str = "127.0.0.1",
+                 serving: Serving | None = None) -> None:
+        super().__init__(host, serving)
         self.path = Path(path)
         self.selection = None if records is None else list(records)
         self.source: RecordSource | None = None

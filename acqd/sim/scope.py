@@ -35,7 +35,7 @@ from . import frontend
 from .frontend import ChannelSetup, FrontEndSettings
 from .generator import Generator
 from .plant import Plant
-from .server import Choice, ChannelRef, Cmd, Integer, Number, SCPIError, SCPIInstrument, setting
+from .engine import Choice, ChannelRef, Cmd, Integer, Number, SCPIError, SCPIInstrument, setting
 
 N_CHANNELS = 4
 TERMINAL_NODE = "v_src"  # the generator terminal in the circuit builders' node names

@@ -20,7 +20,7 @@ import time
 from dataclasses import dataclass, field
 
 from .. import scpi
-from .server import Cmd, Param, SCPIError, SCPIInstrument
+from .engine import Cmd, Param, SCPIError, SCPIInstrument
 
 BANKS = (100, 200)
 RELAYS_PER_BANK = 32

@@ -351,6 +351,8 @@ class Session:
             raise InstrumentError(self.resource, f"{exc.strerror or exc} during {command}") from None
         except UnicodeDecodeError:
             raise InstrumentError(self.resource, f"the reply to {command} is not text") from None
+        except RuntimeError as exc:  # pyvisa-py's HiSLIP client: a dropped channel or a message out of step
+            raise InstrumentError(self.resource, f"connection lost during {command} ({exc})") from None
 
     @staticmethod
     def _ms(seconds: float) -> int:

@@ -1,18 +1,21 @@
-"""SCPI server machinery for the simulated instruments: parser, command tree, IEEE 488.2 status, error queue.
+"""The SCPI engine of the simulated instruments: parser, command tree, IEEE 488.2 status, error queue, and
+the message exchange with one client — everything but the bytes on the wire.
 
-A simulated instrument is a real TCP server speaking line-terminated SCPI (raw socket, ``\\n`` ends a
-program message and a reply), so the client code path — pyvisa, terminations, timeouts, block reads — is
-the one used on a real bench. Clauses cited: IEEE 488.2-1992 (common commands, status, §6.3.2.3 query
+A simulated instrument is a real server, so the client code path — pyvisa, terminations, timeouts, block
+reads — is the one used on a real bench. The transports (``rawsocket``: NL-terminated SCPI on a TCP port;
+``hislip``: IVI-6.1; ``vxi11``: ONC RPC) each carry bytes between a client and one ``MessageExchange``,
+which takes program messages and gives response messages; device clear is the exchange's own operation.
+Clauses cited: IEEE 488.2-1992 (common commands, status, §5.8 device clear, §6.3.2.3 query
 interruption) and SCPI-1999 Vol 1 §6.2 (headers) / §7 (parameters), Vol 2 §21.8 (error queue).
 
-How a raw socket maps onto IEEE 488.2's message exchange (which assumes a bus with END and explicit
-reads), documented because the standard cannot be followed literally here:
+How the message exchange maps onto IEEE 488.2's (which assumes a bus with END and explicit reads),
+documented because the standard cannot be followed literally over a raw socket:
 
-* A reply counts as *read* once it has been written to the socket. A query whose reply is still being
+* A reply counts as *read* once it has been handed to the transport. A query whose reply is still being
   produced (``*OPC?`` waiting for an acquisition, or a slow reply under fault injection) is *interrupted*
-  when the next message arrives on that connection: the pending reply is discarded and −410 "Query
+  when the next message arrives from that client: the pending reply is discarded and −410 "Query
   INTERRUPTED" is queued (§6.3.2.3). So a client that timed out never receives a stale ``1`` later.
-* −420 "Query UNTERMINATED" is queued when the connection closes while an unterminated message holding a
+* −420 "Query UNTERMINATED" is queued when the client goes while an unterminated message holding a
   query is buffered: the query can never be answered. An unterminated *command* is discarded (not
   executed — a half-sent ``VOLT 1`` of ``VOLT 10`` must not reach the output) and −100 is queued.
 * After a command error (−1xx) the rest of the program message is skipped, since the parser's position in
@@ -21,18 +24,16 @@ reads), documented because the standard cannot be followed literally here:
 * A query on a header that only exists as a command (or the reverse) is −113: that header form is not
   defined on the device.
 """
-
 from __future__ import annotations
 
 import asyncio
 import logging
 import math
 import re
-import socket
 import threading
 import time
 from collections import deque
-from collections.abc import Awaitable, Callable, Coroutine, Iterable, Sequence
+from collections.abc import Awaitable, Callable, Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NamedTuple
@@ -557,7 +558,7 @@ class QueryInterrupted(Exception):
     """A new message arrived before the pending reply could be sent (IEEE 488.2 §6.3.2.3)."""
 
 
-class _ConnectionLost(Exception):
+class ConnectionLost(Exception):
     """The peer went away while a unit was blocked; the rest of its messages cannot be answered."""
 
 
@@ -587,6 +588,8 @@ class SCPIInstrument:
         self._log_messages = log_messages or log_path is not None
         self._log_path = Path(log_path) if log_path else None
         self._opc_armed = False  # *OPC received; set ESR bit 0 when pending operations finish
+        self.remote = False  # remote/local state as a LAN transport sets it (no front panel to lock out)
+        self.local_lockout = False
         self._output_pending = False
         self._table = [(compile_pattern(c.pattern), c) for c in BASE_COMMANDS + self.COMMANDS]
 
@@ -635,6 +638,18 @@ class SCPIInstrument:
         if self._opc_armed:
             self._opc_armed = False
             self.esr |= ESR_OPC
+
+    def device_cleared(self) -> None:
+        """A client cleared the device: a received ``*OPC`` no longer waits to set ESR bit 0 (§12.5.2)."""
+        self._opc_armed = False
+
+    def remote_local(self, remote: bool | None, lockout: bool | None) -> None:
+        """A transport's remote/local control (HiSLIP AsyncRemoteLocalControl, VXI-11 device_remote and
+        device_local); None leaves that state unchanged. Kept and reported only: there is no front panel."""
+        if remote is not None:
+            self.remote = remote
+        if lockout is not None:
+            self.local_lockout = lockout
 
     def power_cycle(self) -> None:
         """Fault injection "a reset": defaults, empty queue, PON set, as after switching off and on."""
@@ -691,7 +706,8 @@ class SCPIInstrument:
                 self.push_error(exc.code, exc.detail)
                 if -199 <= exc.code <= -100:
                     break
-        self._output_pending = False
+            finally:
+                self._output_pending = False
         return replies
 
     def _lookup(self, nodes: tuple[HeaderNode, ...], query: bool) -> tuple[Cmd, tuple[int, ...]]:
@@ -805,91 +821,118 @@ COMMON_COMMANDS: dict[str, Cmd] = {
 
 
 # ---------------------------------------------------------------------------------------------------
-# Serving over TCP
+# The message exchange with one client, whatever transport carries its bytes (IEEE 488.2 §6)
 # ---------------------------------------------------------------------------------------------------
 
-class _Connection:
-    """One client: a reader that queues messages and an executor that runs them one at a time."""
+@dataclass(frozen=True)
+class Response:
+    """One response message: the replies joined by ``;`` and ended by NL (IEEE 488.2 §8.4: the response
+    message terminator is NL with END; the transport adds END its own way).
+
+    ``tag`` is what the transport passed with the program message that produced it (HiSLIP: the message
+    ID); ``cut_at`` (fault injection) says to send only that many bytes and then drop the connection."""
+
+    data: bytes
+    tag: Any = None
+    cut_at: int | None = None
+
+
+class DeviceCleared(Exception):
+    """The client cleared the device (IEEE 488.2 §5.8) while a unit was blocked or a reply was pending."""
+
+
+class MessageExchange:
+    """The message exchange between one client and the instrument: program messages in, responses out.
+
+    A transport hands over the bytes it received (``receive``) and the end of its input (``end_of_input``),
+    runs ``run()`` for as long as the client is there, and gets each response through ``respond``. NL
+    ends a program message, and so does END where the transport carries one (HiSLIP DataEnd, VXI-11's END
+    flag). ``device_clear()`` is the engine's own device clear; status and settings are the instrument's.
+    """
 
     MAX_MESSAGE_BYTES = 1 << 20
 
-    def __init__(self, instrument: SCPIInstrument, reader: asyncio.StreamReader,
-                 writer: asyncio.StreamWriter) -> None:
-        self.instrument, self.reader, self.writer = instrument, reader, writer
-        self.messages: asyncio.Queue[str | None] = asyncio.Queue()
-        self.input_arrived = asyncio.Event()
-        self.closed = asyncio.Event()
+    def __init__(self, instrument: SCPIInstrument, respond: Callable[[Response], Awaitable[None]]) -> None:
+        self.instrument, self.respond = instrument, respond
+        self._messages: asyncio.Queue[tuple[str, Any] | None] = asyncio.Queue()
+        self._partial = bytearray()
+        self._input_arrived = asyncio.Event()
+        self._closed = asyncio.Event()
+        self._cleared = asyncio.Event()  # replaced at every clear: a waiter holds the one it started with
 
-    async def serve(self) -> None:
-        reading = asyncio.ensure_future(self._read())
-        try:
-            await self._run()
-        finally:
-            reading.cancel()
-            self.writer.close()
-
-    def _ack_promptly(self) -> None:
-        """Ask Linux to acknowledge the next segment at once rather than after its ~40 ms delay.
-
-        A client that writes a command and then a query as two small packets (Nagle's algorithm on, as in
-        pyvisa-py's default) otherwise waits for that delayed ACK before its query leaves. Quick-ACK mode
-        does not persist, so it is renewed after every read. A no-op where the option does not exist.
-        """
-        sock = self.writer.get_extra_info("socket")
-        if sock is not None and hasattr(socket, "TCP_QUICKACK"):
-            try:
-                sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_QUICKACK, 1)
-            except OSError:
-                pass
-
-    async def _read(self) -> None:
-        while True:
-            self._ack_promptly()
-            try:
-                line = await self.reader.readuntil(b"\n")
-            except asyncio.IncompleteReadError as exc:
-                self._unterminated(exc.partial.decode("latin-1"))
-                break
-            except asyncio.LimitOverrunError:
-                self.instrument.push_error(-223, "message longer than 1 MiB; connection closed")
-                break
-            except ConnectionError:
-                break
-            text = line[:-1].decode("latin-1").rstrip("\r")
+    # -- input ---------------------------------------------------------------------------------------
+    def receive(self, data: bytes, end: bool = False, tag: Any = None) -> None:
+        """Bytes from the client; every NL, and END (``end``), completes a program message."""
+        self._partial += data
+        *complete, rest = self._partial.split(b"\n")
+        if end and rest:
+            complete.append(rest)
+            rest = bytearray()
+        if len(rest) > self.MAX_MESSAGE_BYTES:
+            self.instrument.push_error(-223, "message longer than 1 MiB discarded")
+            rest = bytearray()
+        self._partial = bytearray(rest)
+        for message in complete:
+            text = bytes(message).decode("latin-1").rstrip("\r")
             self.instrument.log_message(text)
-            await self.messages.put(text)
-            self.input_arrived.set()
-        self.closed.set()
-        await self.messages.put(None)
+            self._messages.put_nowait((text, tag))
+            self._input_arrived.set()
 
-    def _unterminated(self, partial: str) -> None:
-        if not partial.strip():
-            return
-        self.instrument.log_message(partial)
-        if "?" in partial:
-            self.instrument.push_error(-420, "connection closed before the query was terminated")
-        else:
-            self.instrument.push_error(-100, "unterminated message discarded when the connection closed")
+    def end_of_input(self, partial: bytes = b"") -> None:
+        """The client is gone. An unterminated query can never be answered (−420); an unterminated command
+        is discarded, not executed (−100): a half-sent ``VOLT 1`` of ``VOLT 10`` must not reach the output."""
+        text = (bytes(self._partial) + partial).decode("latin-1")
+        self._partial = bytearray()
+        if text.strip():
+            self.instrument.log_message(text)
+            if "?" in text:
+                self.instrument.push_error(-420, "connection closed before the query was terminated")
+            else:
+                self.instrument.push_error(-100, "unterminated message discarded when the connection closed")
+        self._closed.set()
+        self._messages.put_nowait(None)
 
-    async def _run(self) -> None:
-        while (message := await self.messages.get()) is not None:
-            if self.messages.empty():
-                self.input_arrived.clear()
+    def device_clear(self) -> None:
+        """IEEE 488.2 §5.8 device clear: input buffer and output queue emptied, the parser reset, a blocked
+        ``*OPC?``/``*WAI`` abandoned and ``*OPC`` disarmed (§12.5, the OPC state machines back to idle, from
+        memory); settings, status registers, the error queue and an armed acquisition stay as they are."""
+        self._partial = bytearray()
+        while not self._messages.empty():
+            if self._messages.get_nowait() is None:  # the client left meanwhile: keep telling run()
+                self._messages.put_nowait(None)
+                break
+        self._input_arrived.clear()
+        self.instrument.device_cleared()
+        self._cleared.set()
+        self._cleared = asyncio.Event()
+
+    # -- execution -----------------------------------------------------------------------------------
+    async def run(self) -> None:
+        """Execute the program messages one at a time until the client is gone."""
+        while (item := await self._messages.get()) is not None:
+            message, tag = item
+            if self._messages.empty():
+                self._input_arrived.clear()
             try:
                 replies = await self.instrument.execute(message, self._wait)
                 if replies:
-                    await self._send(replies)
+                    if self.instrument.faults.reply_delay_s > 0:
+                        await self._wait(asyncio.sleep(self.instrument.faults.reply_delay_s), True)
+                    await self.respond(self._response(replies, tag))
             except QueryInterrupted:
                 self.instrument.push_error(-410, "a new message arrived before the reply was sent")
-            except (_ConnectionLost, ConnectionError):
+            except DeviceCleared:
+                continue
+            except (ConnectionLost, ConnectionError):
                 return
 
     async def _wait(self, awaitable: Awaitable[Any], reply_pending: bool) -> Any:
-        """Await a blocked unit; give up with -410 if new input arrives while a reply is pending."""
+        """Await a blocked unit; give up with −410 if new input arrives while a reply is pending (§6.3.2.3),
+        quietly on a device clear."""
         task = asyncio.ensure_future(awaitable)
-        watchers = [asyncio.ensure_future(self.closed.wait())]
+        watchers = [asyncio.ensure_future(self._closed.wait()), asyncio.ensure_future(self._cleared.wait())]
         if reply_pending:
-            watchers.append(asyncio.ensure_future(self.input_arrived.wait()))
+            watchers.append(asyncio.ensure_future(self._input_arrived.wait()))
         try:
             done, _ = await asyncio.wait({task, *watchers}, return_when=asyncio.FIRST_COMPLETED)
         except asyncio.CancelledError:
@@ -901,100 +944,28 @@ class _Connection:
         if task in done:
             return task.result()
         task.cancel()
-        if self.closed.is_set():
-            raise _ConnectionLost
+        if self._closed.is_set():
+            raise ConnectionLost
+        if watchers[1] in done:
+            raise DeviceCleared
         raise QueryInterrupted
 
-    async def _send(self, replies: list[Reply]) -> None:
+    def _response(self, replies: list[Reply], tag: Any) -> Response:
+        """The response message, with the block faults applied to its first block."""
         faults = self.instrument.faults
-        if faults.reply_delay_s > 0:
-            await self._wait(asyncio.sleep(faults.reply_delay_s), True)
         parts = [r.encode("ascii") if isinstance(r, str) else r for r in replies]
-        block_at = self._first_block_offset(replies, parts)
+        block_at = _first_block_offset(replies, parts)
         data = b";".join(parts) + b"\n"
         if block_at is not None and faults.garble_block_header:
             data = data[:block_at + 1] + b"?" + data[block_at + 2:]
-        if block_at is not None and faults.drop_mid_block:
-            self.writer.write(data[: block_at + (len(data) - block_at) // 2])
-            await self.writer.drain()
-            self.writer.transport.abort()
-            raise _ConnectionLost
-        self.writer.write(data)
-        await self.writer.drain()
-
-    @staticmethod
-    def _first_block_offset(replies: list[Reply], parts: list[bytes]) -> int | None:
-        offset = 0
-        for reply, part in zip(replies, parts):
-            if isinstance(reply, bytes):
-                return offset
-            offset += len(part) + 1
-        return None
+        cut_at = block_at + (len(data) - block_at) // 2 if block_at is not None and faults.drop_mid_block else None
+        return Response(data, tag, cut_at)
 
 
-class InstrumentServer:
-    """One instrument on one TCP port; ``resource`` is the VISA resource string to reach it."""
-
-    def __init__(self, instrument: SCPIInstrument, host: str = "127.0.0.1", port: int = 0) -> None:
-        self.instrument, self.host, self.port = instrument, host, port
-        self._server: asyncio.base_events.Server | None = None
-        self._tasks: set[asyncio.Task] = set()
-
-    @property
-    def resource(self) -> str:
-        return f"TCPIP0::{self.host}::{self.port}::SOCKET"
-
-    async def start(self) -> None:
-        self._server = await asyncio.start_server(self._accept, self.host, self.port,
-                                                  limit=_Connection.MAX_MESSAGE_BYTES)
-        self.port = self._server.sockets[0].getsockname()[1]
-
-    async def stop(self) -> None:
-        if self._server is not None:
-            self._server.close()
-            for task in list(self._tasks):
-                task.cancel()
-            await asyncio.gather(*self._tasks, return_exceptions=True)
-            await self._server.wait_closed()
-            self._server = None
-
-    async def _accept(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
-        task = asyncio.current_task()
-        self._tasks.add(task)
-        try:
-            await _Connection(self.instrument, reader, writer).serve()
-        except asyncio.CancelledError:
-            writer.close()
-        finally:
-            self._tasks.discard(task)
-
-
-class LoopThread:
-    """An event loop in a background thread, so tests and the step test can host servers in-process."""
-
-    def __init__(self, name: str = "acqd-sim") -> None:
-        self.loop = asyncio.new_event_loop()
-        self._thread = threading.Thread(target=self._run, name=name, daemon=True)
-
-    def _run(self) -> None:
-        asyncio.set_event_loop(self.loop)
-        self.loop.run_forever()
-
-    def start(self) -> None:
-        self._thread.start()
-
-    def run(self, coro: Coroutine[Any, Any, Any], timeout_s: float = 10.0) -> Any:
-        """Run a coroutine on the loop and return its result (raises what it raised)."""
-        return asyncio.run_coroutine_threadsafe(coro, self.loop).result(timeout_s)
-
-    def call(self, func: Callable[..., Any], *args: Any) -> Any:
-        """Call ``func`` in the loop's thread (instrument state belongs to that thread)."""
-        async def invoke() -> Any:
-            return func(*args)
-        return self.run(invoke())
-
-    def stop(self) -> None:
-        if self._thread.is_alive():
-            self.loop.call_soon_threadsafe(self.loop.stop)
-            self._thread.join(10)
-        self.loop.close()
+def _first_block_offset(replies: list[Reply], parts: list[bytes]) -> int | None:
+    offset = 0
+    for reply, part in zip(replies, parts):
+        if isinstance(reply, bytes):
+            return offset
+        offset += len(part) + 1
+    return None

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from .config import Table, load_toml
-from .record import EDGES, LOADS, Stimulus
+from .record import EDGES, LOADS, Stimulus, bench_id_problem
 from .visa import DEFAULT_BACKEND, NAMED_BACKENDS
 
 SHAPES = ("square", "pulse")
@@ -42,6 +42,7 @@ class BenchPlan:
     generator: InstrumentPlan
     scope: InstrumentPlan
     simulated: dict[str, Any] | None  # the [bench.simulated] table, validated by the simulated bench
+    bench_id: str = ""  # the bench's name, carried by every record it takes; "" when the profile gives none
 
 
 @dataclass(frozen=True)
@@ -190,6 +191,9 @@ def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
 
 def _bench(t: Table, profile_dir: Path) -> BenchPlan:
     kind = t.string("kind", choices=BENCH_KINDS)
+    bench_id = t.string("bench_id", None) or ""
+    if t.has("bench_id") and bench_id_problem(bench_id):
+        raise t.error("bench_id", bench_id_problem(bench_id))
     generator = _instrument(t.table("generator"), "generator", kind)
     scope = _instrument(t.table("scope"), "scope", kind)
     simulated = t.raw("simulated", None)
@@ -202,7 +206,7 @@ def _bench(t: Table, profile_dir: Path) -> BenchPlan:
         if isinstance(simulated.get("dut"), dict):
             simulated = {**simulated, "dut": _inline_netlist_file(table.table("dut"), profile_dir)}
     t.done()
-    return BenchPlan(kind, generator, scope, simulated)
+    return BenchPlan(kind, generator, scope, simulated, bench_id)
 
 
 def _inline_netlist_file(t: Table, profile_dir: Path) -> dict[str, Any]:

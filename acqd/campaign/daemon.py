@@ -18,6 +18,7 @@ import signal
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import ExitStack, contextmanager
+from dataclasses import replace
 from pathlib import Path
 from types import FrameType
 from typing import Any
@@ -58,6 +59,16 @@ def load_specs(profiles: Sequence[Path]) -> list[CampaignSpec]:
         names[spec.name] = spec
     bench_claims(specs)
     return specs
+
+
+def with_bench_id(spec: CampaignSpec, bench_id: str) -> CampaignSpec:
+    """The campaign with ``bench_id`` in place of its profile's (``acqd daemon --bench-id``): one profile
+    can then serve every bench of a line, each daemon naming its own."""
+    def named(profile: Profile) -> Profile:
+        return replace(profile, bench=replace(profile.bench, bench_id=bench_id))
+
+    return replace(spec, profile=named(spec.profile),
+                   steps=tuple(replace(step, profile=named(step.profile)) for step in spec.steps))
 
 
 def bench_claims(specs: Sequence[CampaignSpec]) -> None:
@@ -113,13 +124,17 @@ def stop_on_signals(stop: StopFlag) -> Iterator[None]:
 
 
 class Daemon:
-    def __init__(self, profiles: Sequence[Path], data_dir: Path, console: Console, *, live: bool) -> None:
+    def __init__(self, profiles: Sequence[Path], data_dir: Path, console: Console, *, live: bool,
+                 bench_id: str = "") -> None:
         self.profiles, self.data_dir, self.console, self.live = list(profiles), Path(data_dir), console, live
+        self.bench_id = bench_id
         self.stop = StopFlag()
         self._removed: set[str] = set()  # campaigns whose jobs were removed once finished
 
     def run(self) -> int:
         specs = load_specs(self.profiles)
+        if self.bench_id:
+            specs = [with_bench_id(spec, self.bench_id) for spec in specs]
         try:
             self.data_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 from rich.text import Text
 
-from .common import SAFETY_NOTE, add_command, add_data_dir, add_figures, add_json, add_last, add_store, console
+from .common import SAFETY_NOTE, add_bench_id, add_command, add_data_dir, add_figures, add_json, add_last, add_store, console
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -20,6 +20,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("profiles", type=Path, nargs="+", metavar="PROFILE", help="bench profile with a [campaign] table")
     add_data_dir(p)
     p.add_argument("--plain", action="store_true", help="one line per event even in a terminal (no live view)")
+    add_bench_id(p, "this bench's name in every record, in place of the profiles' [bench] bench_id")
     p.set_defaults(func=daemon_command)
 
     p = add_command(sub, "status", help="every campaign of a data directory: next slot, counts, last verdicts",
@@ -47,7 +48,7 @@ def daemon_command(args: argparse.Namespace) -> int:
 
     screen = console()
     return Daemon(args.profiles, args.data_dir, screen,
-                  live=screen.is_terminal and not args.plain).run()
+                  live=screen.is_terminal and not args.plain, bench_id=args.bench_id or "").run()
 
 
 def status_command(args: argparse.Namespace) -> int:

@@ -21,6 +21,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     add_data_dir(p)
     p.add_argument("--plain", action="store_true", help="one line per event even in a terminal (no live view)")
     add_bench_id(p, "this bench's name in every record, in place of the profiles' [bench] bench_id")
+    p.add_argument("--sync", metavar="URL", help="send each finished segment to this archive from a background "
+                                                 "thread (see acqd sync); acquisition never waits for it")
+    p.add_argument("--endpoint-url", metavar="URL", help="with --sync: an S3-compatible store's endpoint, in "
+                                                         "place of AWS_ENDPOINT_URL or the client's configuration")
     p.set_defaults(func=daemon_command)
 
     p = add_command(sub, "status", help="every campaign of a data directory: next slot, counts, last verdicts",
@@ -48,7 +52,8 @@ def daemon_command(args: argparse.Namespace) -> int:
 
     screen = console()
     return Daemon(args.profiles, args.data_dir, screen,
-                  live=screen.is_terminal and not args.plain, bench_id=args.bench_id or "").run()
+                  live=screen.is_terminal and not args.plain, bench_id=args.bench_id or "",
+                  sync_url=args.sync, endpoint_url=args.endpoint_url).run()
 
 
 def status_command(args: argparse.Namespace) -> int:

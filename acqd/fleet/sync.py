@@ -29,12 +29,14 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import ConfigError
+from ..store import faults
 from ..store.lockfile import release_lock, take_lock
 from ..store.naming import finished_segments
 from ..store.segment import SegmentView
 from .archive import HASH_CHUNK_BYTES, INCOMING, Archive, ArchiveError, reaching
 
 SYNC_LOCK = "sync.lock"
+UPLOAD_BLOCK_BYTES = 8 << 20  # the part size of a multipart upload (S3 allows 5 MiB and up)
 Log = Callable[..., Any]
 
 
@@ -193,17 +195,24 @@ def _state(archive: Archive, seg: LocalSegment, key: str, entry: dict[str, Any] 
 
 
 def _upload(archive: Archive, seg: LocalSegment, key: str, token: str) -> None:
-    """Send to a temporary key, read it back and compare SHA-256, then move it to ``key``."""
+    """Send to a temporary key, read it back and compare SHA-256, then move it to ``key``. The bytes go in
+    chunks through the client's own writer (multipart on an object store), so a kill can land mid-upload
+    (the crash tests place one there with ``ACQD_STORE_KILL_AT=sync:chunk@N``)."""
     temporary = archive.key(seg.bench_id, INCOMING, f"{seg.campaign}--{seg.path.name}.{token}")
     archive.parent_ready(temporary)
     archive.parent_ready(key)
-    archive.fs.put_file(str(seg.path), temporary)
+    with open(seg.path, "rb") as local, archive.fs.open(temporary, "wb", block_size=UPLOAD_BLOCK_BYTES) as remote:
+        while chunk := local.read(HASH_CHUNK_BYTES):
+            remote.write(chunk)
+            faults.step("sync:chunk")
+    faults.step("sync:uploaded")
     got = archive.sha256(temporary)
     if got != seg.sha256:
         archive.fs.rm_file(temporary)
         raise ArchiveError(archive.url, f"{temporary} read back with SHA-256 {got}, not {seg.sha256} as sent; "
                                         "nothing was kept")
     archive.fs.mv(temporary, key)
+    faults.step("sync:moved")
     if archive.size(key) != seg.bytes:
         raise ArchiveError(archive.url, f"{key} has {archive.size(key)} bytes after the move, not {seg.bytes}")
 

@@ -172,14 +172,19 @@ def s3_server() -> Iterator[str]:
 
 
 @pytest.fixture(scope="module")
-def scheduler() -> Iterator[str]:
-    """A LocalCluster of 2 worker processes; the commands reach it with --scheduler."""
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
-                                       host="127.0.0.1")
+def local_cluster() -> Iterator[Any]:
+    """A LocalCluster of 2 worker processes on 127.0.0.1; the commands reach it with --scheduler."""
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address="127.0.0.1:0", host="127.0.0.1")
     try:
-        yield cluster.scheduler_address
+        yield cluster
     finally:
         cluster.close()
+
+
+@pytest.fixture
+def scheduler(local_cluster: Any) -> str:
+    return local_cluster.scheduler_address
 
 
 @pytest.fixture(scope="module")
@@ -187,15 +192,19 @@ def fleet(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     """Three benches' daemons, each syncing to the file:// archive from its background thread as it goes."""
     root = tmp_path_factory.mktemp("fleet")
     archive = root / "share"
-    data = {}
-    for bench in BENCHES:
+    data, running = {}, []
+    for bench in BENCHES:  # the three daemons run side by side, as on a line of benches
         folder = root / bench
         folder.mkdir()
         # b3 names itself on the command line, b1 and b2 in their profiles
         profile = write_profile(folder / "bench.toml", bench, named=bench != "b3")
-        argv = ["daemon", "--plain", str(profile), "-d", str(folder / "data"), "--sync", archive.as_uri()]
-        assert main(argv + (["--bench-id", "b3"] if bench == "b3" else [])) == 0
+        argv = [sys.executable, "-m", "acqd", "daemon", "--plain", str(profile), "-d", str(folder / "data"),
+                "--sync", archive.as_uri(), *(["--bench-id", "b3"] if bench == "b3" else [])]
+        running.append(subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True))
         data[bench] = folder / "data"
+    for proc in running:
+        _, err = proc.communicate(timeout=120)
+        assert proc.returncode == 0, err
     return {"root": root, "data": data, "file_url": archive.as_uri()}
 
 
@@ -292,8 +301,9 @@ def big_store(folder: Path, bench: str) -> Path:
     return data
 
 
-@pytest.mark.parametrize("kind", ["file", "s3"])
-@pytest.mark.parametrize("kill_at", ["sync:chunk@2", "sync:uploaded", "sync:moved"])
+@pytest.mark.parametrize("kind, kill_at", [("file", "sync:chunk@2"), ("s3", "sync:chunk@2"),  # mid-upload
+                                            ("file", "sync:uploaded"),  # sent, not yet read back
+                                            ("s3", "sync:moved")])  # at its key, not yet in the catalog
 def test_a_sync_killed_mid_upload_is_finished_by_the_next(kind: str, kill_at: str, fleet, request, tmp_path,
                                                           capsys) -> None:
     url = archive_url(kind, fleet, request)
@@ -428,13 +438,28 @@ def test_fleet_drift_filters_and_figures(fleet, scheduler, tmp_path, capsys) -> 
     assert late["benches"] == [] and late["distributions"] == []
 
 
-def test_fleet_compare_gives_one_table_on_one_and_two_workers(fleet, scheduler, tmp_path, capsys) -> None:
+def workers_now(cluster: Any, n: int) -> None:
+    cluster.scale(n)
+    with distributed.Client(cluster) as client:
+        client.wait_for_workers(n, timeout=60)
+        deadline = time.monotonic() + 60
+        while len(client.scheduler_info()["workers"]) != n:
+            assert time.monotonic() < deadline
+            time.sleep(0.05)
+
+
+def test_fleet_compare_gives_one_table_on_one_and_two_workers(fleet, local_cluster, scheduler, tmp_path,
+                                                                capsys) -> None:
     url = fleet["file_url"]
     tight = write_profile(tmp_path / "tight.toml", "b1", tolerance_pct=5.0)  # R within 5 % of 22 Ω
     two = run_json(capsys, "fleet", "compare", url, "-p", str(tight), "-o", str(tmp_path / "two.parquet"),
                    "--scheduler", scheduler, "--json")
-    one = run_json(capsys, "fleet", "compare", url, "-p", str(tight), "-o", str(tmp_path / "one.parquet"),
-                   "--workers", "1", "--json")
+    workers_now(local_cluster, 1)
+    try:
+        one = run_json(capsys, "fleet", "compare", url, "-p", str(tight), "-o", str(tmp_path / "one.parquet"),
+                       "--scheduler", scheduler, "--json")
+    finally:
+        workers_now(local_cluster, 2)
     table_two, table_one = pq.read_table(tmp_path / "two.parquet"), pq.read_table(tmp_path / "one.parquet")
     assert table_two.equals(table_one) and one == {**two, "out": one["out"]}
     rows = [r for r in table_two.to_pylist() if r["bench"] in BENCHES]

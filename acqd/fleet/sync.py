@@ -4,17 +4,19 @@ What makes it safe to run at any time, as often as one likes, and to kill:
 
 * Only finished segments go (``store.naming.finished_segments``): closed, renamed files that no writer
   touches again. A live ``.part`` never leaves the machine. Local files are only ever read.
-* An upload goes to a temporary key under ``<bench>/.incoming/``, is read back from the archive and its
-  SHA-256 compared with the local file's, and only then moved to its final key (a rename on a share, a
-  server-side copy on an object store, which makes the object appear whole or not at all). So an object at
-  a final key is always a complete, verified segment; a kill leaves at most a temporary object, which the
-  next sync removes.
+* An upload is read back from the archive and its SHA-256 compared with the local file's before the
+  catalog lists it. On a share it is written under ``<bench>/.incoming/`` and renamed to its final name
+  once verified; on an object store it goes straight to its final key, where an object appears only
+  whole, when its upload completes. So a file or object at a final name is always a complete segment;
+  a kill leaves at most a temporary file (removed by the next sync) or a complete object not yet
+  listed.
 * The bench's catalog is rewritten (whole, by a move) after each segment. A kill between the move and the
   catalog leaves a final object the catalog does not list: the next sync reads it back, and adopts it when
   its SHA-256 is the local file's.
 * A segment is skipped when the catalog lists it with the local file's SHA-256 and the object has its
-  size; so a second sync uploads nothing. An object or catalog entry with the same name but other bytes
-  is never overwritten: that is an error naming both (two benches given one bench id, say).
+  size; so a second sync uploads nothing. A catalog entry with the same name but another SHA-256 is never
+  overwritten, nor is a file on a share: that is an error naming both (two benches given one bench id,
+  say). Only an object the catalog does not list (never verified) may be sent again.
 """
 
 from __future__ import annotations
@@ -190,28 +192,37 @@ def _state(archive: Archive, seg: LocalSegment, key: str, entry: dict[str, Any] 
         return "missing"
     if size == seg.bytes and (entry is not None or archive.sha256(key) == seg.sha256):
         return "archived" if entry is not None else "unlisted"
+    if entry is None and not archive.local:
+        return "missing"  # an upload that completed but was never verified nor listed: sent again
     raise ArchiveError(archive.url, f"{key} exists with other content ({size} bytes) than {seg.path} "
                                     f"({seg.bytes} bytes); an archived segment is never replaced")
 
 
 def _upload(archive: Archive, seg: LocalSegment, key: str, token: str) -> None:
-    """Send to a temporary key, read it back and compare SHA-256, then move it to ``key``. The bytes go in
-    chunks through the client's own writer (multipart on an object store), so a kill can land mid-upload
-    (the crash tests place one there with ``ACQD_STORE_KILL_AT=sync:chunk@N``)."""
-    temporary = archive.key(seg.bench_id, INCOMING, f"{seg.campaign}--{seg.path.name}.{token}")
-    archive.parent_ready(temporary)
+    """Send the segment, read it back from the archive and compare SHA-256 with the local file's.
+
+    On a share the bytes go to a temporary name that is renamed to ``key`` once verified (a kill leaves a
+    partial file under that temporary name only). On an object store they go straight to ``key``: an
+    object appears there only when its upload completes, whole, so there is no copy to pay for; a kill
+    between completion and verification leaves a complete object the catalog does not list, which the
+    next sync reads back and adopts (or replaces, if it does not match). The bytes go in chunks through
+    the client's own writer (multipart on an object store), so a kill can land mid-upload (the crash tests
+    place one there with ``ACQD_STORE_KILL_AT=sync:chunk@N``)."""
+    target = archive.key(seg.bench_id, INCOMING, f"{seg.campaign}--{seg.path.name}.{token}") if archive.local else key
+    archive.parent_ready(target)
     archive.parent_ready(key)
-    with open(seg.path, "rb") as local, archive.fs.open(temporary, "wb", block_size=UPLOAD_BLOCK_BYTES) as remote:
+    with open(seg.path, "rb") as local, archive.fs.open(target, "wb", block_size=UPLOAD_BLOCK_BYTES) as remote:
         while chunk := local.read(HASH_CHUNK_BYTES):
             remote.write(chunk)
             faults.step("sync:chunk")
     faults.step("sync:uploaded")
-    got = archive.sha256(temporary)
+    got = archive.sha256(target)
     if got != seg.sha256:
-        archive.fs.rm_file(temporary)
-        raise ArchiveError(archive.url, f"{temporary} read back with SHA-256 {got}, not {seg.sha256} as sent; "
+        archive.fs.rm_file(target)
+        raise ArchiveError(archive.url, f"{target} read back with SHA-256 {got}, not {seg.sha256} as sent; "
                                         "nothing was kept")
-    archive.fs.mv(temporary, key)
+    if target != key:
+        archive.fs.mv(target, key)
     faults.step("sync:moved")
     if archive.size(key) != seg.bytes:
         raise ArchiveError(archive.url, f"{key} has {archive.size(key)} bytes after the move, not {seg.bytes}")

@@ -10,9 +10,11 @@
 2. Fleet compare. ``--records`` records of the closed-form series-RLC step response with noise (1500
    samples, two channels, R fitted) are stored in segments of ``--segment-records`` and synced to a
    ``file://`` archive. ``fleet compare``'s work (every task, every row) is timed on a LocalCluster of 1
-   and of 2 worker processes (cluster start-up excluded and printed apart), and the same comparisons in
-   this process, reading the local store. Printed: records/s of each, 2 workers ÷ 1, and the per-record
-   cost of 1 worker ÷ in-process.
+   and of 2 worker processes (cluster start-up excluded and printed apart). Then, segment by segment for
+   ``--rounds`` segments, the same comparisons in this process (records already read from the local
+   store) and as one task on the 1-worker cluster (reading the archive), interleaved because this
+   machine's speed drifts. Printed: records/s on 1 and 2 workers and their ratio, and the median per-record
+   cost of the task ÷ in-process.
 """
 
 from __future__ import annotations
@@ -135,36 +137,48 @@ def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Gener
         proc.wait(timeout=10)
 
 
-def bench_compare(folder: Path, records: int, per_segment: int, rng: np.random.Generator) -> None:
+def in_process(data: Path, first: int, last: int, spec) -> float:
+    """Seconds to compare records ``first..last`` of the local store in this process."""
+    with open_records(data / "night.h5") as reader:
+        records = [reader.read(i) for i in range(first, last + 1)]
+    start = time.perf_counter()
+    for record in records:
+        compare_spec(record, spec).to_dict()
+    return time.perf_counter() - start
+
+
+def bench_compare(folder: Path, records: int, per_segment: int, rounds: int, rng: np.random.Generator) -> None:
     data = folder / "compare-data"
     data.mkdir()
     make_records_store(data, records, per_segment, rng)
     url = (folder / "compare-share").as_uri()
     sync(data, open_archive(url))
     refs = archived_segments(open_archive(url))
+    options = {"url": url, "endpoint_url": None, "dut_json": json.dumps(DUT), "source": "bench [dut]"}
+    spec = parse_dut_table(DUT, "bench [dut]")
     rates = {}
     for workers in (1, 2):
         start = time.perf_counter()
         with cluster(None, workers) as client:
             up = time.perf_counter() - start
             start = time.perf_counter()
-            parts = run_per_segment(client, compare_task, refs, url=url, endpoint_url=None,
-                                    dut_json=json.dumps(DUT), source="bench [dut]")
+            parts = run_per_segment(client, compare_task, refs, **options)
             seconds = time.perf_counter() - start
-        rows = sum(len(p) for p in parts)
-        assert rows == records
-        rates[workers] = rows / seconds
-        print(f"fleet compare, {workers} worker(s): {rows} records in {seconds:.1f} s, {rates[workers]:.0f} records/s "
-              f"(cluster start-up {up:.1f} s apart)")
-    spec = parse_dut_table(DUT, "bench [dut]")
-    start = time.perf_counter()
-    with open_records(data / "night.h5") as reader:
-        for record in reader:
-            compare_spec(record, spec).to_dict()
-    here = records / (time.perf_counter() - start)
-    print(f"in this process: {records} records, {here:.0f} records/s")
-    print(f"2 workers ÷ 1: {rates[2] / rates[1]:.2f}×; per-record cost of 1 worker ÷ in-process: "
-          f"{here / rates[1]:.2f}×")
+            rows = sum(len(p) for p in parts)
+            assert rows == records
+            rates[workers] = rows / seconds
+            print(f"fleet compare, {workers} worker(s): {rows} records in {seconds:.1f} s, {rates[workers]:.1f} "
+                  f"records/s (cluster start-up {up:.1f} s apart)")
+            if workers == 1:  # per-record cost, interleaved with the in-process comparator segment by segment
+                ratios = []
+                for ref in refs[:rounds]:
+                    here = in_process(data, ref.first_index, ref.first_index + ref.records - 1, spec)
+                    start = time.perf_counter()
+                    run_per_segment(client, compare_task, [ref], **options)
+                    ratios.append((time.perf_counter() - start) / here)
+                print(f"per-record cost, 1 worker ÷ in-process (the same segment, {len(ratios)} interleaved rounds): "
+                      f"median {statistics.median(ratios):.2f}, rounds {min(ratios):.2f}–{max(ratios):.2f}")
+    print(f"2 workers ÷ 1: {rates[2] / rates[1]:.2f}×")
 
 
 def main() -> None:
@@ -177,7 +191,7 @@ def main() -> None:
     rng = np.random.default_rng(14)
     with tempfile.TemporaryDirectory(prefix="acqd-bench-fleet-") as tmp:
         bench_sync(Path(tmp), args.sync_mb, args.rounds, rng)
-        bench_compare(Path(tmp), args.records, args.segment_records, rng)
+        bench_compare(Path(tmp), args.records, args.segment_records, args.rounds, rng)
 
 
 if __name__ == "__main__":

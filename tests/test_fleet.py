@@ -36,6 +36,7 @@ from acqd.cli import main  # noqa: E402
 from acqd.compare import compare_spec, parse_dut_table  # noqa: E402
 from acqd.profile import load_profile  # noqa: E402
 from acqd.store import RecordStore, open_records  # noqa: E402
+from test_campaign_daemon import PROFILE, SIMULATED  # noqa: E402
 from test_store import make_record  # noqa: E402
 
 BUCKET = "fleet-archive"
@@ -43,88 +44,22 @@ BENCHES = {"b1": 22.0, "b2": 22.0, "b3": 26.0}  # the simulated DUT's resistor o
 SERIALS = {"b1": "KT9-0417", "b2": "KT9-0502", "b3": "KT9-0417"}  # b3 measures b1's unit after a rework
 RECORDS = 3  # per bench: segments of 2 and 1 records (rotate_records = 2)
 
-PROFILE = """
-[bench]
-kind = "simulated"
-{bench_id}
-
-[bench.generator]
-driver = "scpi-generator"
-
-[bench.scope]
-driver = "scpi-digitiser"
-
-[bench.simulated]
-seed = {seed}
-noise_v_rms = 0.002
-
-[bench.simulated.dut]
-model = "series_rlc"
-r_ohm = {r_ohm}
-l_h = 3.3e-3
-c_f = 100e-9
-
-[bench.simulated.wiring]
-CH1 = "v_src"
-CH3 = "v_c"
-
-[limits]
-max_level_v = 2.0
-max_frequency_hz = 10e3
-
-[stimulus]
-low_v = 0.0
-high_v = 1.0
-frequency_hz = 200.0
-edge = "rising"
-
-[acquisition]
-window_s = 1.5e-3
-samples = 1500
-
-[acquisition.channels.CH1]
-name = "v_src"
-range_v = 0.8
-offset_v = 0.5
-
-[acquisition.channels.CH3]
-name = "v_c"
-range_v = 1.0
-offset_v = 0.75
-
-[output]
-fsync = false
-rotate_records = 2
-
-[dut]
-model = "series_rlc"
-serial = "{serial}"
-r_ohm = 22.0
-l_h = 3.3e-3
-c_f = 100e-9
-
-[dut.fit]
-free = ["r_ohm"]
-
-[dut.channels]
-v_c = "v_c"
-
-[dut.tolerances]
-nrmse_max = 0.05
-parameter_pct = {{ r_ohm = {tolerance_pct} }}
-
-[campaign]
-name = "night"
-back_to_back = true
-slots = {slots}
-"""
-
-
 def write_profile(path: Path, bench: str, *, named: bool = True, tolerance_pct: float = 50.0, slots: int = RECORDS
                   ) -> Path:
-    path.write_text(PROFILE.format(bench_id=f'bench_id = "{bench}"' if named else "", seed=int(bench[1:]),
-                                   r_ohm=BENCHES.get(bench, 22.0), serial=SERIALS.get(bench, "KT9-0001"),
-                                   tolerance_pct=tolerance_pct, slots=slots))
+    """The daemon tests' simulated-bench profile, with this bench's DUT resistor, seed and serial, R fitted,
+    two records per segment and a back-to-back campaign of ``slots`` slots."""
+    simulated = SIMULATED.format(log=path.with_suffix(".gen.log")).replace("seed = 5", f"seed = {bench[1:]}")
+    simulated = simulated.replace("r_ohm = 22.0", f"r_ohm = {BENCHES.get(bench, 22.0)}")
+    text = PROFILE.format(kind="simulated", generator_resource="", scope_resource="", simulated=simulated,
+                          campaign=f'name = "night"\nback_to_back = true\nslots = {slots}')
+    edits = {'kind = "simulated"': 'kind = "simulated"' + (f'\nbench_id = "{bench}"' if named else ""),
+             "[dut]\n": f'[output]\nfsync = false\nrotate_records = 2\n\n[dut]\nserial = "{SERIALS.get(bench, "KT9-0001")}"\n',
+             "[dut.tolerances]\nnrmse_max = 0.05": "[dut.fit]\nfree = [\"r_ohm\"]\n\n[dut.tolerances]\nnrmse_max = 0.05\n"
+                                                 f"parameter_pct = {{ r_ohm = {tolerance_pct} }}"}
+    for old, replacement in edits.items():
+        assert text.count(old) == 1, old
+        text = text.replace(old, replacement)
+    path.write_text(text)
     return path
 
 

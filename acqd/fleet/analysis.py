@@ -24,6 +24,7 @@ parameter drifts (see its trend) inflates its own spread, which makes the tests 
 from __future__ import annotations
 
 import json
+import logging
 import math
 import os
 from collections import defaultdict
@@ -59,6 +60,7 @@ class SegmentRef:
     segment: str
     key: str  # relative to the archive's root
     records: int
+    first_index: int | None
     first_utc: str | None
     last_utc: str | None
 
@@ -70,7 +72,7 @@ def archived_segments(archive: Archive) -> list[SegmentRef]:
         for bench in archive.benches():
             for e in archive.read_catalog(bench)["segments"]:
                 refs.append(SegmentRef(bench, e["campaign"], e["segment"], e["key"], int(e["records"]),
-                                       e.get("first_utc"), e.get("last_utc")))
+                                       e.get("first_index"), e.get("first_utc"), e.get("last_utc")))
     return sorted(refs, key=lambda r: (r.bench, r.campaign, r.segment))
 
 
@@ -100,8 +102,10 @@ def cluster(scheduler: str | None = None, workers: int | None = None) -> Iterato
         with client:
             yield client
         return
+    # silence_logs: a worker's heartbeat cut short by the shutdown is logged as an error; it is not one
     with LocalCluster(n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                      dashboard_address="127.0.0.1:0", host="127.0.0.1") as local, Client(local) as client:
+                      dashboard_address="127.0.0.1:0", host="127.0.0.1", silence_logs=logging.CRITICAL) as local, \
+            Client(local) as client:
         yield client
 
 

@@ -275,7 +275,10 @@ def test_bad_archive_input_is_one_line_and_touches_nothing(fleet: dict[str, Any]
              (["sync", "file:///x", "-d", str(data), "--endpoint-url", dead], "s3:// archive only"),
              (["sync", "file:///x", "-d", str(tmp_path / "absent")], "no such data directory"),
              (["sync", f"s3://{BUCKET}/lab", "-d", str(data), "--endpoint-url", dead], "failed"),
-             (["fleet", "compare", fleet["file_url"], "-o", str(tmp_path / "t.parquet")], "--profile")]
+             (["fleet", "compare", fleet["file_url"], "-o", str(tmp_path / "t.parquet")], "--profile"),
+             (["fleet", "drift", (tmp_path / "empty").as_uri()], "no archived segment"),
+             (["fleet", "drift", fleet["file_url"], "--scheduler", "nonsense"], "tcp://host:8786"),
+             (["fleet", "drift", fleet["file_url"], "--since", "yesterday"], "ISO 8601")]
     env = {"AWS_ACCESS_KEY_ID": "x", "AWS_SECRET_ACCESS_KEY": "y", "AWS_MAX_ATTEMPTS": "1"}
     saved = {k: os.environ.get(k) for k in env}
     os.environ.update(env)

@@ -136,10 +136,10 @@ def fleet_ls_command(args: argparse.Namespace) -> int:
 
 def fleet_drift_command(args: argparse.Namespace) -> int:
     from ..campaign.drift import drift_table
-    from ..fleet.analysis import archived_segments, cluster, drift_task, fleet_drift, run_per_segment, write_figures
+    from ..fleet.analysis import cluster, drift_task, fleet_drift, run_per_segment, segments_to_analyse, write_figures
     from ..fleet.archive import open_archive
 
-    refs = archived_segments(open_archive(args.url, args.endpoint_url))
+    refs = segments_to_analyse(open_archive(args.url, args.endpoint_url))
     with cluster(args.scheduler, args.workers) as client:
         parts = run_per_segment(client, drift_task, refs, url=args.url, endpoint_url=args.endpoint_url)
     entries = [e for part in parts for e in part]
@@ -182,7 +182,8 @@ def fleet_compare_command(args: argparse.Namespace) -> int:
     import pyarrow.parquet as pq
 
     from ..compare import parse_dut_table
-    from ..fleet.analysis import archived_segments, cluster, compare_summary, compare_table, compare_task, run_per_segment
+    from ..fleet.analysis import (cluster, compare_summary, compare_table, compare_task, run_per_segment,
+                                  segments_to_analyse)
     from ..fleet.archive import open_archive
     from ..profile import load_profile
 
@@ -192,7 +193,7 @@ def fleet_compare_command(args: argparse.Namespace) -> int:
     if "model" not in profile.dut:
         raise ConfigError(profile.source, "dut.model", "missing; fleet compare needs a model to compare with")
     parse_dut_table(profile.dut, profile.source, profile.text)  # a bad table is one line before any task runs
-    refs = archived_segments(open_archive(args.url, args.endpoint_url))
+    refs = segments_to_analyse(open_archive(args.url, args.endpoint_url))
     with cluster(args.scheduler, args.workers) as client:
         parts = run_per_segment(client, compare_task, refs, url=args.url, endpoint_url=args.endpoint_url,
                                 dut_json=json.dumps(profile.dut), source=profile.source)

@@ -76,6 +76,15 @@ def archived_segments(archive: Archive) -> list[SegmentRef]:
     return sorted(refs, key=lambda r: (r.bench, r.campaign, r.segment))
 
 
+def segments_to_analyse(archive: Archive) -> list[SegmentRef]:
+    """``archived_segments``, refused in one line when there are none (before any cluster is started)."""
+    refs = archived_segments(archive)
+    if not refs:
+        raise ConfigError(archive.url, "", "holds no archived segment (no <bench_id>/catalog.json lists one); "
+                                           "send some with acqd sync first")
+    return refs
+
+
 def listing(refs: list[SegmentRef]) -> list[dict[str, Any]]:
     """``acqd fleet ls``: per bench and campaign, segments, records and time span, from the catalogs."""
     groups: dict[tuple[str, str], list[SegmentRef]] = defaultdict(list)
@@ -97,8 +106,9 @@ def cluster(scheduler: str | None = None, workers: int | None = None) -> Iterato
     if scheduler:
         try:
             client = Client(scheduler, timeout="10s")
-        except (OSError, TimeoutError) as exc:
-            raise ConfigError("--scheduler", "", f"cannot reach {scheduler} ({exc})") from None
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise ConfigError("--scheduler", "", f"cannot reach {scheduler} ({exc}); give the scheduler's "
+                                                 "address, e.g. tcp://host:8786") from None
         with client:
             yield client
         return

@@ -31,6 +31,7 @@ from collections import defaultdict
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -218,7 +219,8 @@ class FleetDrift:
 def fleet_drift(entries: list[dict[str, Any]], serial: str | None = None, since: str | None = None) -> FleetDrift:
     """Drift per bench and campaign and per serial, and the fleet's distribution of each fitted parameter,
     from the drift tasks' entries (in any order: they are sorted first)."""
-    chosen = [e for e in entries if (serial is None or _serial(e) == serial) and (since is None or e["utc"] >= since)]
+    after = None if since is None else datetime.fromisoformat(since)
+    chosen = [e for e in entries if (serial is None or _serial(e) == serial) and (after is None or _taken_since(e, after))]
     chosen.sort(key=lambda e: (e["bench"], e["campaign"], e["index"]))
     by_store: dict[tuple[str, str], list[dict[str, Any]]] = defaultdict(list)
     by_serial: dict[str, list[dict[str, Any]]] = defaultdict(list)
@@ -231,6 +233,15 @@ def fleet_drift(entries: list[dict[str, Any]], serial: str | None = None, since:
     serials = [summarise(f"serial {name}", [_entry(e) for e in sorted(group, key=lambda e: e["utc"])], [])
                for name, group in sorted(by_serial.items())]
     return FleetDrift(benches, serials, distributions(chosen))
+
+
+def _taken_since(entry: dict[str, Any], moment: datetime) -> bool:
+    """Whether the record was taken at or after ``moment`` (a record without a readable UTC time is not)."""
+    try:
+        taken = datetime.fromisoformat(entry["utc"])
+    except (TypeError, ValueError):
+        return False
+    return taken.tzinfo is not None and taken >= moment
 
 
 def _serial(entry: dict[str, Any]) -> str:

@@ -124,10 +124,19 @@ def scheduler(local_cluster: Any) -> str:
 
 @pytest.fixture(scope="module")
 def fleet(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
-    """Three benches' daemons, each syncing to the file:// archive from its background thread as it goes."""
+    """Three benches' daemons, each syncing to the file:// archive from its background thread as it goes,
+    and beside them a fourth whose archive is down (an S3 endpoint where nothing listens)."""
     root = tmp_path_factory.mktemp("fleet")
     archive = root / "share"
     data, running = {}, []
+    down = root / "down"
+    down.mkdir()
+    dead = f"http://127.0.0.1:{free_port()}"
+    env = {**os.environ, "AWS_ACCESS_KEY_ID": "x", "AWS_SECRET_ACCESS_KEY": "y", "AWS_MAX_ATTEMPTS": "1"}
+    running.append(subprocess.Popen([sys.executable, "-m", "acqd", "daemon", "--plain",
+                                     str(write_profile(down / "bench.toml", "b9", slots=2)), "-d", str(down / "data"),
+                                     "--sync", f"s3://{BUCKET}/lab", "--endpoint-url", dead], env=env,
+                                    stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True))
     for bench in BENCHES:  # the three daemons run side by side, as on a line of benches
         folder = root / bench
         folder.mkdir()
@@ -140,7 +149,7 @@ def fleet(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
     for proc in running:
         _, err = proc.communicate(timeout=120)
         assert proc.returncode == 0, err
-    return {"root": root, "data": data, "file_url": archive.as_uri()}
+    return {"root": root, "data": data, "file_url": archive.as_uri(), "down": down / "data"}
 
 
 def archive_url(kind: str, fleet: dict[str, Any], request: pytest.FixtureRequest) -> str:
@@ -294,17 +303,11 @@ def test_bad_archive_input_is_one_line_and_touches_nothing(fleet: dict[str, Any]
     assert sorted(p.name for p in data.iterdir()) == before and not (tmp_path / "t.parquet").exists()
 
 
-def test_a_daemon_whose_archive_is_down_acquires_as_usual(tmp_path: Path) -> None:
-    profile = write_profile(tmp_path / "bench.toml", "b9", slots=2)
-    dead = f"http://127.0.0.1:{free_port()}"
-    env = {**os.environ, "AWS_ACCESS_KEY_ID": "x", "AWS_SECRET_ACCESS_KEY": "y", "AWS_MAX_ATTEMPTS": "1"}
-    proc = subprocess.run([sys.executable, "-m", "acqd", "daemon", "--plain", str(profile), "-d", str(tmp_path / "d"),
-                           "--sync", f"s3://{BUCKET}/lab", "--endpoint-url", dead], env=env, capture_output=True,
-                          text=True, timeout=120)
-    assert proc.returncode == 0, proc.stderr
-    with open_records(tmp_path / "d" / "night.h5") as reader:
+def test_a_daemon_whose_archive_is_down_acquires_as_usual(fleet: dict[str, Any]) -> None:
+    data = fleet["down"]  # its daemon exited 0 (the fixture checks)
+    with open_records(data / "night.h5") as reader:
         assert len(reader) == 2
-    events = [e["event"] for e in read_runlog(tmp_path / "d" / "runlog.jsonl")]
+    events = [e["event"] for e in read_runlog(data / "runlog.jsonl")]
     assert "sync_failed" in events and "sync_upload" not in events
     assert events.count("slot_done") == 2 and "campaign_finished" in events  # the campaign ran regardless
 

@@ -5,8 +5,8 @@ The thread shares nothing with the campaigns but the directory listing (finished
 and the store's writer renames a segment into its finished name only when it is complete), so an archive
 that is down, slow or refusing costs the campaigns nothing. It looks every ``POLL_S`` for finished
 segments it has not synced yet and talks to the archive only when there are some. A failed pass is retried
-``RETRIES`` times with a doubling back-off (``BACKOFF_S`` up to ``MAX_BACKOFF_S``), then waits for the next
-poll; every upload and every failure is a run-log event (``sync_upload``, ``sync_failed``). On stop the
+``RETRIES`` times with a doubling back-off (``BACKOFF_S``, 2·``BACKOFF_S``, …, at most ``MAX_BACKOFF_S``),
+then waits for the next poll; every upload and every failure is a run-log event (``sync_upload``, ``sync_failed``). On stop the
 thread is given ``STOP_WAIT_S`` to finish an upload in progress; an upload cut short leaves only a
 temporary object, which the next sync removes (see ``sync``).
 """

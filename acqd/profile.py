@@ -17,7 +17,7 @@ import numpy as np
 
 from . import scpi
 from .config import Table, load_toml
-from .record import EDGES, LOADS, Stimulus
+from .record import EDGES, LOADS, Stimulus, bench_id_problem
 from .visa import DEFAULT_BACKEND, NAMED_BACKENDS
 
 SHAPES = ("square", "pulse")
@@ -45,6 +45,7 @@ class BenchPlan:
     scope: InstrumentPlan
     simulated: dict[str, Any] | None  # the [bench.simulated] table, validated by the simulated bench
     switch: InstrumentPlan | None = None  # optional: a bench without a switch tests one unit at a time
+    bench_id: str = ""  # the bench's name, carried by every record it takes; "" when the profile gives none
 
 
 @dataclass(frozen=True)
@@ -213,6 +214,9 @@ def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
 
 def _bench(t: Table, profile_dir: Path) -> BenchPlan:
     kind = t.string("kind", choices=BENCH_KINDS)
+    bench_id = t.string("bench_id", None) or ""
+    if t.has("bench_id") and bench_id_problem(bench_id):
+        raise t.error("bench_id", bench_id_problem(bench_id))
     generator = _instrument(t.table("generator"), "generator", kind)
     scope = _instrument(t.table("scope"), "scope", kind)
     switch = _instrument(t.table("switch"), "switch", kind) if t.has("switch") else None
@@ -226,7 +230,7 @@ def _bench(t: Table, profile_dir: Path) -> BenchPlan:
         if isinstance(simulated.get("dut"), dict):
             simulated = {**simulated, "dut": _inline_netlist_file(table.table("dut"), profile_dir)}
     t.done()
-    return BenchPlan(kind, generator, scope, simulated, switch)
+    return BenchPlan(kind, generator, scope, simulated, switch, bench_id)
 
 
 def _batch(t: Table, profile_name: str) -> Batch:

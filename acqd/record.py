@@ -37,6 +37,18 @@ def unit_serial_of(settings: Mapping[str, Any] | None, dut: Mapping[str, Any] | 
     batch = (settings or {}).get(BATCH_SETTING) or {}
     return batch.get("serial") or (dut or {}).get("serial")
 
+# A bench's name (``[bench] bench_id``, ``acqd daemon --bench-id``): safe as a file name and an object key.
+BENCH_ID = re.compile(r"^[A-Za-z0-9._-]{1,64}$")
+BENCH_ID_RULE = "1 to 64 letters, digits, '.', '_' or '-'"
+
+
+def bench_id_problem(text: str) -> str:
+    """Why ``text`` is not a bench id ("" when it is one); the callers raise their own ConfigError with it.
+    ``.`` and ``..`` alone are refused: as a path component they would not name a folder of their own."""
+    if not isinstance(text, str) or not BENCH_ID.match(text) or text in (".", ".."):
+        return f"{text!r} is not a bench id; allowed: {BENCH_ID_RULE} (not '.' or '..')"
+    return ""
+
 
 @dataclass(frozen=True)
 class Channel:
@@ -112,6 +124,7 @@ class Record:
     averages: int = 1
     analysis: dict[str, Any] | None = None
     index: int | None = None
+    bench_id: str = ""  # which bench took it (the profile's [bench] bench_id); "" in stores made before it
 
     @property
     def unit_serial(self) -> str | None:

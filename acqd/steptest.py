@@ -174,7 +174,7 @@ def _one_edge(profile: Profile, plan: StimulusPlan, edge: str, generator: Genera
         settings={"generator": copy.deepcopy(applied.generator_settings),
                   "scope": copy.deepcopy(applied.scope_settings), "trigger_level_v": trigger_level(profile)},
         dut=profile.dut, utc=utc, monotonic_s=started, profile_text=profile.text,
-        profile_sha256=profile.sha256, averages=profile.acquisition.averages)
+        profile_sha256=profile.sha256, averages=profile.acquisition.averages, bench_id=profile.bench.bench_id)
 
 
 @dataclass

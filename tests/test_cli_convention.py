@@ -25,7 +25,10 @@ CONVENTION = {"-r": ("--record", "N"), "-o": ("--out", "FILE"), "-p": ("--profil
 EXPECTED = {"run": {"-o", "-n"}, "ls": {"--json"}, "show": {"-r", "--json"}, "export": {"-r", "-o"},
             "compare": {"-r", "-p", "--figures", "--json"}, "report": {"-o", "-p", "--last"},
             "daemon": {"-d"}, "status": {"-d", "--json"}, "drift": {"--figures", "--last", "--json"},
-            "sim": {"--json"}, "replay": {"--json"}, "drivers": set(), "identify": set(), "plan": {"--json"}}
+            "sim": {"--json"}, "replay": {"--json"}, "drivers": set(), "identify": set(), "plan": {"--json"},
+            "sync": {"-d", "--json"}, "fleet": set()}
+# acqd fleet's own sub-commands, checked the same way.
+FLEET_EXPECTED = {"ls": {"--json"}, "drift": {"--figures", "--json"}, "compare": {"-p", "-o", "--json"}}
 STORE_COMMANDS = {"ls", "show", "export", "compare", "report", "drift", "replay"}
 
 
@@ -73,6 +76,28 @@ def test_each_option_means_the_same_in_every_sub_command(name):
             assert action.metavar == metavar
     positional = [a.metavar for a in sub_commands()[name]._actions if not a.option_strings and a.dest != "help"]
     assert ("STORE" in positional) == (name in STORE_COMMANDS)
+
+
+def fleet_commands() -> dict[str, argparse.ArgumentParser]:
+    fleet = sub_commands()["fleet"]
+    action = next(a for a in fleet._actions if isinstance(a, argparse._SubParsersAction))
+    return dict(action.choices)
+
+
+@pytest.mark.parametrize("name", sorted(FLEET_EXPECTED))
+def test_fleet_sub_commands_follow_the_convention(capsys, name):
+    parser = fleet_commands()[name]
+    given = options(parser)
+    assert set(fleet_commands()) == set(FLEET_EXPECTED)
+    assert {o for o in CONVENTION if o in given} == FLEET_EXPECTED[name]
+    for short, (long, metavar) in CONVENTION.items():
+        if short in given or long in given:
+            action = given.get(short) or given[long]
+            assert action.metavar == metavar
+    assert parser.description and "URL" in [a.metavar for a in parser._actions if not a.option_strings]
+    with pytest.raises(SystemExit) as exit_:
+        main(["fleet", name, "--help"])
+    assert exit_.value.code == 0 and capsys.readouterr().out.startswith(f"usage: acqd fleet {name}")
 
 
 def test_options_shared_by_several_sub_commands_agree():

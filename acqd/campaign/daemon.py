@@ -18,6 +18,7 @@ import signal
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import ExitStack, contextmanager
+from dataclasses import replace
 from pathlib import Path
 from types import FrameType
 from typing import Any
@@ -43,7 +44,7 @@ REFRESH_S = 0.25
 WATCHDOG_GRACE_S = 2.0
 # Events worth a line on the console (the run log has them all).
 SHOWN_EVENTS = ("campaign_start", "campaign_resume", "campaign_finished", "slot_done", "slot_failed",
-                "slot_missed", "slot_interrupted", "slot_resume", "fault", "retry", "daemon_stop")
+                "slot_missed", "slot_interrupted", "slot_resume", "fault", "retry", "daemon_stop", "sync_failed")
 LIVE_HIDDEN = ("slot_done",)  # the live table shows progress; only what needs a look scrolls above it
 
 
@@ -58,6 +59,16 @@ def load_specs(profiles: Sequence[Path]) -> list[CampaignSpec]:
         names[spec.name] = spec
     bench_claims(specs)
     return specs
+
+
+def with_bench_id(spec: CampaignSpec, bench_id: str) -> CampaignSpec:
+    """The campaign with ``bench_id`` in place of its profile's (``acqd daemon --bench-id``): one profile
+    can then serve every bench of a line, each daemon naming its own."""
+    def named(profile: Profile) -> Profile:
+        return replace(profile, bench=replace(profile.bench, bench_id=bench_id))
+
+    return replace(spec, profile=named(spec.profile),
+                   steps=tuple(replace(step, profile=named(step.profile)) for step in spec.steps))
 
 
 def bench_claims(specs: Sequence[CampaignSpec]) -> None:
@@ -113,13 +124,21 @@ def stop_on_signals(stop: StopFlag) -> Iterator[None]:
 
 
 class Daemon:
-    def __init__(self, profiles: Sequence[Path], data_dir: Path, console: Console, *, live: bool) -> None:
+    def __init__(self, profiles: Sequence[Path], data_dir: Path, console: Console, *, live: bool,
+                 bench_id: str = "", sync_url: str | None = None, endpoint_url: str | None = None) -> None:
         self.profiles, self.data_dir, self.console, self.live = list(profiles), Path(data_dir), console, live
+        self.bench_id, self.sync_url, self.endpoint_url = bench_id, sync_url, endpoint_url
         self.stop = StopFlag()
         self._removed: set[str] = set()  # campaigns whose jobs were removed once finished
 
     def run(self) -> int:
         specs = load_specs(self.profiles)
+        if self.bench_id:
+            specs = [with_bench_id(spec, self.bench_id) for spec in specs]
+        unnamed = [spec for spec in specs if not spec.profile.bench.bench_id]
+        if self.sync_url and unnamed:
+            raise ConfigError(unnamed[0].source, "bench.bench_id", "missing: --sync files records under the "
+                              "bench's id; give [bench] bench_id or --bench-id ID")
         try:
             self.data_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
@@ -132,6 +151,8 @@ class Daemon:
             runlog = RunLog(self.data_dir / RUNLOG)
             stack.callback(runlog.close)
             runlog.listeners.append(self._echo)
+            if self.sync_url:  # stopped after the stores close (callbacks run last-in first-out)
+                stack.callback(self._start_sync(runlog).stop)
             runners = [CampaignRunner(spec, self.data_dir, ledger, runlog, self.stop) for spec in specs]
             for runner in runners:
                 runner.previous()
@@ -153,6 +174,13 @@ class Daemon:
             runlog.write("daemon_stop", reason="signal" if self.stop.signal else "every campaign finished",
                          signal=signal.Signals(self.stop.signal).name if self.stop.signal else None)
         return 0
+
+    def _start_sync(self, runlog: RunLog) -> Any:
+        """The archive sync in its own thread (acqd.fleet, imported only when asked for)."""
+        from ..fleet import start_background_sync
+
+        return start_background_sync(self.data_dir, self.sync_url, lambda event, **fields: runlog.write(event, **fields),
+                                     bench_id=self.bench_id, endpoint_url=self.endpoint_url)
 
     def _schedule_and_wait(self, runners: list[CampaignRunner]) -> None:
         scheduler = build_scheduler(self.data_dir / FILENAME, len(runners))

@@ -16,7 +16,7 @@ from __future__ import annotations
 import json
 import math
 import re
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -141,22 +141,61 @@ def _hours_to_limit(series: Series) -> float | None:
     return max(0.0, t_cross - series.hours[-1])
 
 
-def analyse_store(path: str | Path, last: int | None = None, by_unit: bool = False) -> DriftSummary:
-    """Read every record's stored analysis (no samples), or the ``last`` records', and build the series
-    and trends; ``by_unit`` keeps each unit's series apart (a batch: one trend per unit serial, since a
-    slope pooled over units would be the spread between them, not a drift)."""
+@dataclass(frozen=True)
+class DriftEntry:
+    """One record as the drift reads it (no samples): its stored analysis, when it was taken, its
+    stimulus setting as an edge label, and its [dut] table where the tolerances are taken from it."""
+
+    index: int
+    utc: str
+    analysis: dict[str, Any] | None
+    setting: str
+    dut: dict[str, Any] | None = None
+    serial: str = ""  # the unit's serial when the series are kept apart per unit (a batch), else ""
+
+
+def store_entries(path: str | Path, last: int | None = None,
+                  by_unit: bool = False) -> tuple[list[DriftEntry], list[str], bool]:
+    """(entries, the reader's notes, whether the store mixes stimulus settings) of a store's records, or of
+    its ``last`` ones; only the last compared record's [dut] is read (it gives the tolerances), and with
+    ``by_unit`` each record's unit serial (a batch: one trend per unit, since a slope pooled over units
+    would be the spread between them, not a drift)."""
     with open_records(path) as reader:
         analyses = reader.analyses()
         analyses = analyses[-last:] if last else analyses
-        tolerances = _tolerances(reader, analyses)
-        labels = _setting_labels(reader)
-        serials = _serials(reader, analyses) if by_unit else {}
-        notes = list(reader.notes)
-    times = [_parse_utc(a.utc) for a in analyses]
+        settings = {s.index: edge_label(s.edge, s.low_v, s.high_v) for s in reader.index()}
+        entries = [DriftEntry(a.index, a.utc, a.analysis, settings.get(a.index, ""),
+                              serial=_serial(reader, a.index) if by_unit else "") for a in analyses]
+        for k in range(len(entries) - 1, -1, -1):
+            if entries[k].analysis:
+                entries[k] = replace(entries[k], dut=reader.metadata(entries[k].index).get("dut") or {})
+                break
+        return entries, list(reader.notes), len(set(settings.values())) > 1
+
+
+def analyse_store(path: str | Path, last: int | None = None, by_unit: bool = False) -> DriftSummary:
+    """Read every record's stored analysis (no samples), or the ``last`` records', and build the series
+    and trends (per unit serial with ``by_unit``)."""
+    entries, notes, mixed = store_entries(path, last, by_unit)
+    return summarise(str(path), entries, notes, mixed_settings=mixed)
+
+
+def summarise(name: str, entries: list[DriftEntry], notes: list[str], *, mixed_settings: bool | None = None
+              ) -> DriftSummary:
+    """The series and trends of ``entries`` (one store's, or any group of records: ``acqd fleet drift``).
+    ``mixed_settings``: label metrics by their stimulus setting (default: when the entries mix settings).
+    A campaign's sweep mixes settings, and a metric such as a step's amplitude belongs to its setting
+    (pooled over both edges it would jump between +1 and -1 V); fitted parameters describe the DUT
+    whatever the stimulus and stay pooled."""
+    notes = list(notes)
+    if mixed_settings is None:
+        mixed_settings = len({e.setting for e in entries}) > 1
+    tolerances = _tolerances(entries)
+    times = [_parse_utc(e.utc) for e in entries]
     t0 = min((t for t in times if t is not None), default=None)
     groups: dict[str, dict[str, Series]] = {}
     failed, compared, undated = [], 0, 0
-    for entry, when in zip(analyses, times):
+    for entry, when in zip(entries, times):
         analysis = entry.analysis
         if not analysis or ("error" in analysis and "verdict" not in analysis):
             continue
@@ -165,9 +204,9 @@ def analyse_store(path: str | Path, last: int | None = None, by_unit: bool = Fal
             continue
         compared += 1
         hours = (when - t0).total_seconds() / 3600.0
-        series = groups.setdefault(serials.get(entry.index, ""), {})
+        series = groups.setdefault(entry.serial, {})
         _add_parameters(series, analysis, entry.index, entry.utc, hours)
-        label = labels.get(entry.index, "")
+        label = f" @ {entry.setting}" if mixed_settings else ""
         _add_metrics(series, analysis, entry.index, entry.utc, hours, label)
         _mark_outside(series, analysis, entry.index, label)
         if verdict_text(analysis) == "fail":
@@ -183,22 +222,19 @@ def analyse_store(path: str | Path, last: int | None = None, by_unit: bool = Fal
             s.trend.hours_to_limit = _hours_to_limit(s)
     if undated:
         notes.append(f"{undated} record(s) have no readable UTC time and were left out")
-    if compared < len(analyses):
-        notes.append(f"{len(analyses) - compared} of {len(analyses)} record(s) carry no comparator result")
+    if compared < len(entries):
+        notes.append(f"{len(entries) - compared} of {len(entries)} record(s) carry no comparator result")
     dated = [t for t in times if t is not None]
     span = (max(dated) - t0).total_seconds() / 3600.0 if dated else 0.0
     ordered = sorted(series.values(), key=lambda s: (s.serial, s.kind != "parameter", s.name))
-    return DriftSummary(str(path), len(analyses), compared, _iso(t0), _iso(max(dated) if dated else None), span,
+    return DriftSummary(name, len(entries), compared, _iso(t0), _iso(max(dated) if dated else None), span,
                         METHOD, ordered, failed, notes)
 
 
-def _serials(reader: Any, analyses: list[Any]) -> dict[int, str]:
-    """Record index → its unit's serial (``(no serial)`` for a record that names none)."""
-    serials = {}
-    for entry in analyses:
-        meta = reader.metadata(entry.index)
-        serials[entry.index] = unit_serial_of(meta.get("settings"), meta.get("dut")) or "(no serial)"
-    return serials
+def _serial(reader: Any, index: int) -> str:
+    """A record's unit serial (``(no serial)`` for a record that names none)."""
+    meta = reader.metadata(index)
+    return unit_serial_of(meta.get("settings"), meta.get("dut")) or "(no serial)"
 
 
 def _parse_utc(text: str) -> datetime | None:
@@ -225,15 +261,6 @@ def _add_parameters(series: dict[str, Series], analysis: dict[str, Any], index: 
         s = series.setdefault(name, Series(name, "parameter", str(units.get(name, ""))))
         s.nominal = (fit.get("nominal") or {}).get(name, s.nominal)
         s.add(index, utc, hours, float(value), (fit.get("ci95") or {}).get(name))
-
-
-def _setting_labels(reader: Any) -> dict[int, str]:
-    """Record index → `` @ rising 0 V → 1 V`` when the store mixes stimulus settings (a campaign's sweep),
-    else nothing. A metric such as a step's amplitude belongs to its setting: pooled over both edges it
-    would jump between +1 and −1 V. Fitted parameters describe the DUT whatever the stimulus and stay
-    pooled."""
-    settings = {s.index: f" @ {edge_label(s.edge, s.low_v, s.high_v)}" for s in reader.index()}
-    return settings if len(set(settings.values())) > 1 else {}
 
 
 def _metric_name(channel: str, metric: str, label: str) -> str:
@@ -263,11 +290,11 @@ def _mark_outside(series: dict[str, Series], analysis: dict[str, Any], index: in
             series[name].outside.append(index)
 
 
-def _tolerances(reader: Any, analyses: list[Any]) -> Any:
+def _tolerances(entries: list[DriftEntry]) -> Any:
     """The comparator's tolerances from the last compared record's [dut] table, or None."""
-    for entry in reversed(analyses):
+    for entry in reversed(entries):
         if entry.analysis:
-            dut = reader.metadata(entry.index).get("dut") or {}
+            dut = entry.dut or {}
             if "model" not in dut:
                 return None
             try:

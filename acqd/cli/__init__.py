@@ -17,7 +17,7 @@ from ..errors import AcqdError
 from .common import Parser
 
 # Sub-command modules, in the order of the data path; each owns its own flags.
-COMMAND_MODULES = ("sim", "instruments", "plan", "run", "store", "compare", "report", "campaign")
+COMMAND_MODULES = ("sim", "instruments", "plan", "run", "store", "compare", "report", "campaign", "fleet")
 
 # rich's Console.on_broken_pipe exits with 1 after pointing stdout at /dev/null; plain prints do the same here.
 BROKEN_PIPE_STATUS = 1

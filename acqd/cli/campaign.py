@@ -13,7 +13,8 @@ from rich.table import Table
 from rich.text import Text
 
 from ..errors import ConfigError
-from .common import SAFETY_NOTE, add_command, add_data_dir, add_figures, add_json, add_last, add_store, console
+from .common import (SAFETY_NOTE, add_bench_id, add_command, add_data_dir, add_figures, add_json, add_last, add_store,
+                     console)
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -25,6 +26,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("profiles", type=Path, nargs="+", metavar="PROFILE", help="bench profile with a [campaign] table")
     add_data_dir(p)
     p.add_argument("--plain", action="store_true", help="one line per event even in a terminal (no live view)")
+    add_bench_id(p, "this bench's name in every record, in place of the profiles' [bench] bench_id")
+    p.add_argument("--sync", metavar="URL", help="send each finished segment to this archive from a background "
+                                                 "thread (see acqd sync); acquisition never waits for it")
+    p.add_argument("--endpoint-url", metavar="URL", help="with --sync: an S3-compatible store's endpoint, in "
+                                                         "place of AWS_ENDPOINT_URL or the client's configuration")
     p.set_defaults(func=daemon_command)
 
     p = add_command(sub, "status", help="every campaign of a data directory: next slot, counts, last verdicts",
@@ -56,7 +62,8 @@ def daemon_command(args: argparse.Namespace) -> int:
 
     screen = console()
     return Daemon(args.profiles, args.data_dir, screen,
-                  live=screen.is_terminal and not args.plain).run()
+                  live=screen.is_terminal and not args.plain, bench_id=args.bench_id or "",
+                  sync_url=args.sync, endpoint_url=args.endpoint_url).run()
 
 
 def status_command(args: argparse.Namespace) -> int:

@@ -25,7 +25,7 @@ from rich.theme import Theme
 
 from ..display import edge_label, si_alike
 from ..errors import ConfigError
-from ..record import Record
+from ..record import Record, bench_id_problem
 
 SAFETY_NOTE = (
     "Caution: bench instruments are mains powered and a scope's probe ground is tied to protective earth; "
@@ -151,6 +151,15 @@ def add_json(parser: argparse.ArgumentParser, help: str = "print JSON instead of
 def add_data_dir(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("-d", "--data-dir", metavar="DIR", type=Path, default=DEFAULT_DATA_DIR,
                         help="the daemon's data directory: records, run log, job store (default: ./data)")
+
+
+def add_bench_id(parser: argparse.ArgumentParser, help: str) -> None:
+    """``--bench-id ID``: a bench's name, checked as the profile's ``[bench] bench_id`` is."""
+    def parse(text: str) -> str:
+        if bench_id_problem(text):
+            raise ConfigError(parser.prog, "--bench-id", bench_id_problem(text))
+        return text
+    parser.add_argument("--bench-id", metavar="ID", type=parse, help=help)
 
 
 def chosen_record(reader: Any, store: str, number: int | None) -> int:

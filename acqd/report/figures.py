@@ -198,3 +198,29 @@ def save_figures(result: CompareResult, directory: str | Path, stem: str = "") -
             path.write_bytes(png_bytes(fig))
             written.append(path)
     return written
+
+
+def distribution_figure(per_bench: Mapping[str, Sequence[float]], name: str, unit: str = "",
+                        nominal: float | None = None) -> Figure:
+    """One fitted parameter across a fleet: a box (quartiles, whiskers to 1.5 × the inter-quartile range)
+    and every record's value as a point, per bench, so a bench that reads apart shows at a glance."""
+    fig = Figure(figsize=(8, 3.5), layout="constrained")
+    ax = fig.subplots()
+    benches = list(per_bench)
+    everything = np.concatenate([np.asarray(v, float) for v in per_bench.values()]) if benches else np.zeros(0)
+    typical = nominal if nominal else (float(np.nanmax(np.abs(everything))) if everything.size else 0.0)
+    factor, shown = axis_scale(typical, unit)
+    ax.boxplot([np.asarray(per_bench[b], float) * factor for b in benches], showfliers=False)
+    ax.set_xticks(range(1, len(benches) + 1), labels=benches)
+    for k, bench in enumerate(benches, start=1):
+        values = np.asarray(per_bench[bench], float) * factor
+        ax.plot(np.full(values.size, k) + np.linspace(-0.12, 0.12, values.size), values, "o", ms=3,
+                color="tab:blue", alpha=0.6)
+    person = label(name)
+    if nominal is not None:
+        ax.axhline(nominal * factor, color="0.3", lw=1.0, ls="--", label=f"nominal {si(nominal, unit, trim=True)}")
+        ax.legend(fontsize=8)
+    ax.set_ylabel(f"{person} ({shown})" if shown else person)
+    ax.set_xlabel("bench")
+    ax.ticklabel_format(axis="y", useOffset=False)
+    return fig

@@ -71,6 +71,22 @@ class StorePaths:
         return sorted(found, key=lambda s: (s.number, s.state))
 
 
+_FINISHED = re.compile(r"^(.+)\.(\d{6,})\.h5$")
+
+
+def finished_segments(directory: Path) -> list[tuple[str, Segment]]:
+    """Every finished segment of every store in ``directory``, as (store stem, segment), by stem then
+    number: the immutable files that may be copied elsewhere (never a live ``.part`` or any other state)."""
+    if not directory.is_dir():
+        return []
+    found = []
+    for entry in directory.iterdir():
+        match = _FINISHED.match(entry.name)
+        if match and entry.is_file():
+            found.append((match.group(1), Segment(int(match.group(2)), entry, "")))
+    return sorted(found, key=lambda item: (item[0], item[1].number))
+
+
 def replace_durably(src: Path, dst: Path, *, fsync: bool = True) -> None:
     """Atomically rename ``src`` to ``dst``; with ``fsync``, also make the new name survive a power cut."""
     os.replace(src, dst)

@@ -10,7 +10,8 @@ reader rows whose data has not been flushed); ``acqd ls`` and the Python reader 
 
 Layout (the segments' own dataset names, so what one knows of a segment applies here)::
 
-    /index               every finished segment's index rows, in record order (VDS)
+    /index               every finished segment's index rows, in record order (VDS); absent, with the
+                         attribute ``index_note``, when segments of two format versions are mixed
     /segment, /row       for each row: which segment file holds it, and its row there (plain datasets)
     /samples             (records, channels, samples), when every segment has the same shape (VDS)
     /segments/NNNNNN/    samples, index, blobs of segment NNNNNN (VDS); attribute ``file``
@@ -75,8 +76,13 @@ def _fill(out: h5py.File, paths: StorePaths, files: list[Path], numbers: list[in
     rows = [shape[0][0] for shape in shapes]
     out["segment"] = np.repeat(np.asarray(numbers, dtype=np.int64), rows)
     out["row"] = np.concatenate([np.arange(n, dtype=np.int64) for n in rows])
-    out.create_virtual_dataset("index", _stacked([(f.name, "index", (n,)) for f, n in zip(files, rows)],
-                                                 shapes[0][2]))
+    index_layouts = {shape[2] for shape in shapes}
+    if len(index_layouts) == 1:
+        out.create_virtual_dataset("index", _stacked([(f.name, "index", (n,)) for f, n in zip(files, rows)],
+                                                     shapes[0][2]))
+    else:  # a store begun before format version 2 (no bench_id column) and continued after it
+        out.attrs["index_note"] = ("no /index: the segments' index rows have more than one layout (format "
+                                   "versions); read /segments/NNNNNN/index")
     record_shapes = {(shape[1:], dtype) for (shape, dtype, _) in shapes}
     if len(record_shapes) == 1:
         (shape, dtype), = record_shapes

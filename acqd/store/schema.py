@@ -23,10 +23,11 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConfigError
-from ..record import Channel, Record, Stimulus, TimeBase
+from ..record import Channel, Record, Stimulus, TimeBase, bench_id_problem
 
 FORMAT_NAME = "acqd-records"
-FORMAT_VERSION = 1
+# Version 2 added the index column ``bench_id``; version 1 files (without it) are still read, as bench "".
+FORMAT_VERSION = 2
 # Oldest library version whose readers must open every file: Debian's h5dump is HDF5 1.10, and 1.10 is
 # also the first version with SWMR; the upper bound stops a newer h5py from writing newer structures.
 LIBVER = ("v110", "v110")
@@ -43,9 +44,10 @@ TEXT_SIZES = {
     "acqd_version": 32,
     "profile_sha256": 64,
     "verdict": 32,
+    "bench_id": 64,
 }
 
-INDEX_DTYPE = np.dtype(
+_INDEX_FIELDS_V1 = (
     [
         ("index", "<i8"),
         ("utc", f"S{TEXT_SIZES['utc']}"),
@@ -68,9 +70,16 @@ INDEX_DTYPE = np.dtype(
         ("verdict", f"S{TEXT_SIZES['verdict']}"),
         ("samples_crc", "<u4"),
         *[(f"{part}_{key}", dtype) for part in BLOB_PARTS for key, dtype in _BLOB_REF],
-        ("row_crc", "<u4"),  # last field: CRC-32 of every byte before it
     ]
 )
+_ROW_CRC = [("row_crc", "<u4")]  # last field: CRC-32 of every byte before it
+# The row layout of each format version. A new column goes before row_crc, so that a reader (or h5dump)
+# that names the fields it wants reads either version alike.
+INDEX_DTYPES = {
+    1: np.dtype(_INDEX_FIELDS_V1 + _ROW_CRC),
+    2: np.dtype(_INDEX_FIELDS_V1 + [("bench_id", f"S{TEXT_SIZES['bench_id']}")] + _ROW_CRC),
+}
+INDEX_DTYPE = INDEX_DTYPES[FORMAT_VERSION]
 
 # Rows per index chunk and bytes per blob chunk: small, because each flush rewrites the current chunk.
 INDEX_CHUNK_ROWS = 16
@@ -108,9 +117,21 @@ def seal(row: np.ndarray) -> None:
 
 
 def sealed(rows: np.ndarray) -> np.ndarray:
-    """A boolean per row: True where ``row_crc`` matches (a torn or never-written row gives False)."""
-    raw = rows.view(np.uint8).reshape(len(rows), INDEX_DTYPE.itemsize)
+    """A boolean per row: True where ``row_crc`` matches (a torn or never-written row gives False); rows
+    of any format version, checked in the layout they were written in."""
+    raw = np.ascontiguousarray(rows).view(np.uint8).reshape(len(rows), rows.dtype.itemsize)
     return np.array([crc32(r[:-4]) == int(c) for r, c in zip(raw, rows["row_crc"], strict=True)], dtype=bool)
+
+
+def upgraded(rows: np.ndarray) -> np.ndarray:
+    """Verified rows of an older format version in the current layout (new columns empty; row_crc kept
+    as read, so it is only meaningful in the old layout: check with ``sealed`` before upgrading)."""
+    if rows.dtype == INDEX_DTYPE:
+        return rows
+    out = np.zeros(len(rows), dtype=INDEX_DTYPE)
+    for name in rows.dtype.names:
+        out[name] = rows[name]
+    return out
 
 
 def _json_default(value: Any) -> Any:
@@ -169,6 +190,8 @@ def samples_crc(channels: list[np.ndarray]) -> int:
 def encode(record: Record, index: int, source: str) -> Encoded:
     """Validate ``record`` and turn it into a row, blobs and a sample block; errors name ``source``."""
     channels = _channel_arrays(source, record)
+    if record.bench_id and bench_id_problem(record.bench_id):
+        raise ConfigError(source, "record.bench_id", bench_id_problem(record.bench_id))
     stim, tb = record.stimulus, record.timebase
     texts = {
         "utc": record.utc,
@@ -178,6 +201,7 @@ def encode(record: Record, index: int, source: str) -> Encoded:
         "acqd_version": record.acqd_version,
         "profile_sha256": record.profile_sha256,
         "verdict": verdict_of(record.analysis),
+        "bench_id": record.bench_id,
     }
     fields = {
         "index": index,
@@ -225,6 +249,7 @@ def row_summary(row: np.void) -> dict[str, Any]:
         "checksum": int(row["samples_crc"]),
         "verdict": _decode_text(row, "verdict"),
         "profile_sha256": _decode_text(row, "profile_sha256"),
+        "bench_id": _decode_text(row, "bench_id"),
         "timebase": {
             "sample_interval_s": float(row["sample_interval_s"]),
             "pretrigger_samples": int(row["pretrigger_samples"]),
@@ -267,4 +292,5 @@ def build_record(meta: dict[str, Any], samples: np.ndarray) -> Record:
         averages=meta["averages"],
         analysis=meta["analysis"],
         index=meta["index"],
+        bench_id=meta.get("bench_id", ""),
     )

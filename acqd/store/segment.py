@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import h5py
 import numpy as np
@@ -29,6 +29,7 @@ from .schema import (
     FORMAT_VERSION,
     INDEX_CHUNK_ROWS,
     INDEX_DTYPE,
+    INDEX_DTYPES,
     LIBVER,
     Encoded,
     Layout,
@@ -39,6 +40,7 @@ from .schema import (
     samples_crc,
     seal,
     sealed,
+    upgraded,
 )
 
 
@@ -143,9 +145,9 @@ class SegmentWriter:
         self._h5.close()
 
 
-def _open_h5(path: Path, *, swmr: bool) -> h5py.File:
+def _open_h5(path: Path, *, swmr: bool, source: BinaryIO | None = None) -> h5py.File:
     try:
-        return h5py.File(path, "r", swmr=swmr)
+        return h5py.File(path if source is None else source, "r", swmr=swmr)
     except FileNotFoundError:
         raise
     except OSError as exc:
@@ -167,8 +169,9 @@ def _check_format(path: Path, h5: h5py.File) -> None:
     for name in ("samples", "index", "blobs"):
         if not isinstance(h5.get(name), h5py.Dataset):
             raise ConfigError(str(path), name, "dataset missing: not an acqd record file")
-    if h5["index"].dtype != INDEX_DTYPE:
-        raise ConfigError(str(path), "index", "unexpected row layout: not an acqd record file of this version")
+    if h5["index"].dtype != INDEX_DTYPES[version]:
+        raise ConfigError(str(path), "index", f"unexpected row layout for format_version {version}: "
+                                              "not an acqd record file")
 
 
 class SegmentView:
@@ -176,12 +179,16 @@ class SegmentView:
 
     Only a *verified prefix* of rows is visible: rows whose CRC matches, whose blobs and sample chunk lie
     inside the file, and whose record indices run on without a gap. A live segment's incomplete last row is
-    simply not visible yet; in a finished segment a bad row is damage and ``damage`` says so.
+    simply not visible yet; in a finished segment a bad row is damage and ``damage`` says so. ``rows`` are
+    in the current layout whatever the file's format version (a version 1 file's ``bench_id`` is "").
+
+    ``source``: an open binary file object to read instead of ``path`` (an object in an archive, through
+    fsspec); ``path`` then only names it in messages.
     """
 
-    def __init__(self, path: Path, *, live: bool) -> None:
+    def __init__(self, path: Path, *, live: bool, source: BinaryIO | None = None) -> None:
         self.path, self.live = path, live
-        self._h5 = _open_h5(path, swmr=live)
+        self._h5 = _open_h5(path, swmr=live, source=source)
         try:
             _check_format(path, self._h5)
         except ConfigError:
@@ -203,7 +210,7 @@ class SegmentView:
         good = self.row_ok(new, seen)
         bad = np.flatnonzero(~good)
         keep = new if bad.size == 0 else new[: bad[0]]
-        self.rows = np.concatenate([self.rows, keep])
+        self.rows = np.concatenate([self.rows, upgraded(keep)])
         if bad.size and not self.live:
             self.damage = (
                 f"{self.path}: row {seen + bad[0]} fails its check; {len(new) - bad[0]} row(s) from there are not read"
@@ -220,7 +227,7 @@ class SegmentView:
     def raw_rows(self, start: int = 0) -> np.ndarray:
         """Rows from ``start`` up to the shorter of index and samples, unchecked."""
         stop = min(self.index_rows, self.sample_chunks)
-        return self._index[start:stop] if stop > start else np.zeros(0, dtype=INDEX_DTYPE)
+        return self._index[start:stop] if stop > start else np.zeros(0, dtype=self._index.dtype)
 
     def row_ok(self, rows: np.ndarray, first_position: int) -> np.ndarray:
         """Per row: CRC matches, blobs inside the blob dataset, index continues the previous row's."""

@@ -1,0 +1,198 @@
+"""Fleet benchmark: ``acqd sync`` against a plain upload, and ``acqd fleet compare`` on 1 and 2 workers.
+
+    python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--rounds 3]
+
+1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records) is
+   sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder, by ``acqd sync``
+   (chunked upload to a temporary key, read back and hashed, moved, catalog rewritten) and by a plain
+   ``put_file`` of the same files through the same fsspec client, rounds alternating, each to a fresh
+   prefix. Printed: MB/s of each and sync ÷ plain (the median over the rounds).
+2. Fleet compare. ``--records`` records of the closed-form series-RLC step response with noise (1500
+   samples, two channels, R fitted) are stored in segments of ``--segment-records`` and synced to a
+   ``file://`` archive. ``fleet compare``'s work (every task, every row) is timed on a LocalCluster of 1
+   and of 2 worker processes (cluster start-up excluded and printed apart). Then, segment by segment for
+   ``--rounds`` segments, the same comparisons in this process (records already read from the local
+   store) and as one task on the 1-worker cluster (reading the archive), interleaved because this
+   machine's speed drifts. Printed: records/s on 1 and 2 workers and their ratio, and the median per-record
+   cost of the task ÷ in-process.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import socket
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from acqd.compare import compare_spec, parse_dut_table  # noqa: E402
+from acqd.fleet.analysis import archived_segments, cluster, compare_task, run_per_segment  # noqa: E402
+from acqd.fleet.archive import open_archive  # noqa: E402
+from acqd.fleet.sync import sync  # noqa: E402
+from acqd.record import Channel, Record, Stimulus, TimeBase  # noqa: E402
+from acqd.store import RecordStore, open_records  # noqa: E402
+
+L_H, C_F, RS_OHM = 3.3e-3, 100e-9, 50.0
+DUT = {"model": "series_rlc", "serial": "BENCH-0001", "r_ohm": 22.0, "l_h": L_H, "c_f": C_F,
+       "fit": {"free": ["r_ohm"]}, "channels": {"v_c": "v_c"},
+       "tolerances": {"nrmse_max": 0.05, "parameter_pct": {"r_ohm": 10.0}}}
+
+
+def v_c_step(t: np.ndarray, r_total: float) -> np.ndarray:
+    """The series RLC's capacitor voltage after a 1 V step from rest (0 < ζ < 1), zero before t = 0."""
+    sigma = r_total / (2 * L_H)
+    wd = math.sqrt(1 / (L_H * C_F) - sigma**2)
+    tp = np.clip(t, 0, None)
+    return np.where(t >= 0, 1 - np.exp(-sigma * tp) * (np.cos(wd * tp) + sigma / wd * np.sin(wd * tp)), 0.0)
+
+
+def make_records_store(data: Path, records: int, per_segment: int, rng: np.random.Generator) -> None:
+    timebase = TimeBase(1e-6, 300, 1500)
+    src = np.where(timebase.times() >= 0, 1.0, 0.0)
+    with RecordStore(data / "night.h5", fsync=False, rotate_records=per_segment) as store:
+        for k in range(records):
+            r = 22.0 + rng.normal(0, 0.2)
+            channels = [Channel("v_src", "V", src + rng.normal(0, 2e-3, 1500), "CH1"),
+                        Channel("v_c", "V", v_c_step(timebase.times(), r + RS_OHM) + rng.normal(0, 2e-3, 1500), "CH3")]
+            store.append(Record(channels, timebase, Stimulus("square", 0.0, 1.0, 200.0, "rising", "high_z", RS_OHM),
+                                dut=DUT, utc=f"2026-12-04T{k // 3600 % 24:02d}:{k // 60 % 60:02d}:{k % 60:02d}+00:00",
+                                bench_id="bench-a"))
+
+
+def make_sync_dir(data: Path, megabytes: float, rng: np.random.Generator) -> int:
+    """Finished segments of 3 records of 3.2 MB each, ``megabytes`` in all; returns the bytes."""
+    timebase = TimeBase(1e-6, 1000, 200_000)
+    n = max(3, round(megabytes / 3.2))
+    with RecordStore(data / "soak.h5", fsync=False, rotate_records=3) as store:
+        for k in range(n):
+            channels = [Channel(name, "V", rng.standard_normal(200_000), f"CH{i + 1}") for i, name in enumerate("ab")]
+            store.append(Record(channels, timebase, Stimulus("square", 0.0, 1.0, 200.0, "rising"),
+                                utc="2026-12-04T00:00:00+00:00", bench_id="bench-s"))
+    return sum(p.stat().st_size for p in data.glob("soak.0*.h5"))
+
+
+def moto_server() -> tuple[subprocess.Popen, str]:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(port)],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    os.environ.update(AWS_ACCESS_KEY_ID="bench", AWS_SECRET_ACCESS_KEY="bench-secret",
+                      AWS_ENDPOINT_URL=f"http://127.0.0.1:{port}", AWS_DEFAULT_REGION="us-east-1")
+    for _ in range(300):
+        try:
+            socket.create_connection(("127.0.0.1", port), timeout=0.5).close()
+            break
+        except OSError:
+            time.sleep(0.1)
+    import boto3
+
+    boto3.client("s3").create_bucket(Bucket="bench")
+    return proc, f"s3://bench"
+
+
+def sync_round(data: Path, base: str, round_no: int) -> tuple[float, float]:
+    """(seconds of acqd sync, seconds of a plain put_file of the same segments), each to a fresh prefix."""
+    archive = open_archive(f"{base}/sync-{round_no}")
+    start = time.perf_counter()
+    report = sync(data, archive)
+    synced = time.perf_counter() - start
+    assert len(report.uploaded) == len(list(data.glob("soak.0*.h5")))
+    plain = open_archive(f"{base}/plain-{round_no}")
+    start = time.perf_counter()
+    for path in sorted(data.glob("soak.0*.h5")):
+        key = plain.key("bench-s", "soak", path.name)
+        plain.parent_ready(key)
+        plain.fs.put_file(str(path), key)
+    return synced, time.perf_counter() - start
+
+
+def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Generator) -> None:
+    data = folder / "sync-data"
+    data.mkdir()
+    total = make_sync_dir(data, megabytes, rng)
+    proc, s3 = moto_server()
+    try:
+        share = (folder / "share").as_uri()
+        for name, base in (("file://", share), ("S3 (moto, 127.0.0.1)", s3)):
+            pairs = [sync_round(data, base, k) for k in range(rounds)]
+            ratio = statistics.median(p / s for s, p in pairs)
+            mb = total / 1e6
+            print(f"sync to {name}: {mb:.0f} MB, acqd sync {mb / statistics.median(s for s, _ in pairs):.0f} MB/s, "
+                  f"plain put_file {mb / statistics.median(p for _, p in pairs):.0f} MB/s; "
+                  f"sync ÷ plain {ratio:.2f} (median of {rounds} rounds)")
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+
+
+def in_process(data: Path, first: int, last: int, spec) -> float:
+    """Seconds to compare records ``first..last`` of the local store in this process."""
+    with open_records(data / "night.h5") as reader:
+        records = [reader.read(i) for i in range(first, last + 1)]
+    start = time.perf_counter()
+    for record in records:
+        compare_spec(record, spec).to_dict()
+    return time.perf_counter() - start
+
+
+def bench_compare(folder: Path, records: int, per_segment: int, rounds: int, rng: np.random.Generator) -> None:
+    data = folder / "compare-data"
+    data.mkdir()
+    make_records_store(data, records, per_segment, rng)
+    url = (folder / "compare-share").as_uri()
+    sync(data, open_archive(url))
+    refs = archived_segments(open_archive(url))
+    options = {"url": url, "endpoint_url": None, "dut_json": json.dumps(DUT), "source": "bench [dut]"}
+    spec = parse_dut_table(DUT, "bench [dut]")
+    rates = {}
+    for workers in (1, 2):
+        start = time.perf_counter()
+        with cluster(None, workers) as client:
+            up = time.perf_counter() - start
+            start = time.perf_counter()
+            parts = run_per_segment(client, compare_task, refs, **options)
+            seconds = time.perf_counter() - start
+            rows = sum(len(p) for p in parts)
+            assert rows == records
+            rates[workers] = rows / seconds
+            print(f"fleet compare, {workers} worker(s): {rows} records in {seconds:.1f} s, {rates[workers]:.1f} "
+                  f"records/s (cluster start-up {up:.1f} s apart)")
+            if workers == 1:  # per-record cost, interleaved with the in-process comparator segment by segment
+                ratios = []
+                for ref in refs[:rounds]:
+                    here = in_process(data, ref.first_index, ref.first_index + ref.records - 1, spec)
+                    start = time.perf_counter()
+                    run_per_segment(client, compare_task, [ref], **options)
+                    ratios.append((time.perf_counter() - start) / here)
+                print(f"per-record cost, 1 worker ÷ in-process (the same segment, {len(ratios)} interleaved rounds): "
+                      f"median {statistics.median(ratios):.2f}, rounds {min(ratios):.2f}–{max(ratios):.2f}")
+    print(f"2 workers ÷ 1: {rates[2] / rates[1]:.2f}×")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--records", type=int, default=2000)
+    parser.add_argument("--segment-records", type=int, default=200)
+    parser.add_argument("--sync-mb", type=float, default=64.0)
+    parser.add_argument("--rounds", type=int, default=3)
+    args = parser.parse_args()
+    rng = np.random.default_rng(14)
+    with tempfile.TemporaryDirectory(prefix="acqd-bench-fleet-") as tmp:
+        bench_sync(Path(tmp), args.sync_mb, args.rounds, rng)
+        bench_compare(Path(tmp), args.records, args.segment_records, args.rounds, rng)
+
+
+if __name__ == "__main__":
+    main()

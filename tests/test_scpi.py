@@ -393,3 +393,18 @@ def test_decoded_samples_are_native_dtype():
     assert codes.dtype == np.dtype("=i2") and codes.tolist() == [-3, 300]
     empty = scpi.decode_samples(b"", "ASC")
     assert empty.shape == (0,) and empty.dtype == np.float64
+
+
+@pytest.mark.parametrize("text, problem", [
+    ('DISP:TEXT "ready; armed"', None), ("DISP:TEXT 'a;b'", None), ('DISP:TEXT "say ""x;y"""', None),
+    ("DISP:TEXT 'it''s'", None), ('DISP:TEXT "a\'b"', None), ("*RST", None),
+    ('DISP:TEXT "ready"; *RST', "holds ';'"), ("FREQ 1;VOLT 2", "holds ';'"), ("FREQ 1\nOUTP ON", "one line"),
+    ("FREQ 1\r", "one line"), ('DISP:TEXT "open', "unclosed"), ("DISP:TEXT 'open", "unclosed"),
+    ("DISP:TEXT 'a\"", "unclosed"),
+])
+def test_single_message_problem(text, problem):
+    # IEEE 488.2 §7.4.1: ';' separates program message units and NL ends the message, except inside string
+    # program data (§7.7.5), which is quoted with " or ' and doubles its own quote; the other quote character
+    # is plain text inside it.
+    found = scpi.single_message_problem(text)
+    assert (found is None) if problem is None else (problem in found)

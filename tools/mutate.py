@@ -46,8 +46,7 @@ COPIED = ("acqd", "tests", "drivers", "profiles", "pyproject.toml")
 # module's behaviour; the slow end-to-end files (the daemon, the README, the CLI) are left out so that a
 # module takes minutes, not hours.
 MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
-    "scpi": (("acqd/scpi.py",), ("tests/test_scpi.py", "tests/test_sim_parser.py", "tests/test_fuzz.py",
-                                "tests/test_drivers.py")),
+    "scpi": (("acqd/scpi.py",), ("tests/test_scpi.py", "tests/test_sim_parser.py", "tests/test_fuzz.py")),
     "blocks": (("acqd/visa/blocks.py",), ("tests/test_blocks.py", "tests/test_transport.py")),
     "store": (
         ("acqd/store/segment.py", "acqd/store/writer.py", "acqd/store/reader.py", "acqd/store/recovery.py"),

@@ -278,7 +278,7 @@ def _decay_fit(seed: int, t: np.ndarray):
     rng = np.random.default_rng(seed)
     y = DECAY_A * np.exp(-t / DECAY_TAU_S) + rng.normal(0.0, DECAY_SIGMA, t.size)
     return fit_parameters(lambda v: (y - v["a"] * np.exp(-t / v["tau_s"])) / DECAY_SIGMA,
-                          {"a": Free(1.5, log=False), "tau_s": Free(1.0, log=True, unit="s")}, (), "noise")
+                          {"a": Free(1.9, log=False), "tau_s": Free(0.85, log=True, unit="s")}, (), "noise")
 
 
 DECAY_A, DECAY_TAU_S, DECAY_SIGMA = 2.0, 0.8, 0.05

@@ -278,10 +278,59 @@ def _decay_fit(seed: int, t: np.ndarray):
     rng = np.random.default_rng(seed)
     y = DECAY_A * np.exp(-t / DECAY_TAU_S) + rng.normal(0.0, DECAY_SIGMA, t.size)
     return fit_parameters(lambda v: (y - v["a"] * np.exp(-t / v["tau_s"])) / DECAY_SIGMA,
-                          {"a": Free(1.9, log=False), "tau_s": Free(0.85, log=True, unit="s")}, (), "noise")
+                          {"a": Free(1.9, log=False, scale=DECAY_A_SCALE), "tau_s": Free(0.85, log=True, unit="s")},
+                          (), "noise")
 
 
 DECAY_A, DECAY_TAU_S, DECAY_SIGMA = 2.0, 0.8, 0.05
+DECAY_A_SCALE = 4.0  # a linear coordinate fitted as a / 4: the result must not depend on the scale
+
+
+def test_standard_errors_are_the_textbook_least_squares_ones_at_lag_zero(monkeypatch):
+    # Regression textbook (Seber & Wild 1989, Nonlinear Regression, §2.1, from memory): for white noise
+    # cov(θ̂) = s²·(JᵀJ)⁻¹, s² = SSR/(m − p), with J written out by hand here: r = (y − a·e^(−t/τ))/σ,
+    # ∂r/∂a = −e^(−t/τ)/σ, ∂r/∂ln τ = −a·e^(−t/τ)·(t/τ)/σ; se(τ) = τ·se(ln τ) (delta method). With the
+    # Bartlett lag held at 0 the fit must report exactly these (to the solver's finite-difference Jacobian).
+    monkeypatch.setattr(fit_module, "bartlett_lag", lambda gamma: 0)
+    t = np.linspace(0.0, 4.0, 400)
+    fit = _decay_fit(3, t)
+    a, tau = fit.values["a"], fit.values["tau_s"]
+    assert a == pytest.approx(DECAY_A, rel=0.02) and tau == pytest.approx(DECAY_TAU_S, rel=0.02)
+    decay = np.exp(-t / tau)
+    jac = np.column_stack([-decay / DECAY_SIGMA, -a * decay * (t / tau) / DECAY_SIGMA])
+    y = DECAY_A * np.exp(-t / DECAY_TAU_S) + np.random.default_rng(3).normal(0.0, DECAY_SIGMA, t.size)
+    r = (y - a * decay) / DECAY_SIGMA
+    cov = r @ r / (t.size - 2) * np.linalg.inv(jac.T @ jac)
+    se_a, se_ln_tau = np.sqrt(np.diag(cov))
+    assert fit.standard_errors["a"] == pytest.approx(se_a, rel=1e-3)
+    assert fit.standard_errors["tau_s"] == pytest.approx(tau * se_ln_tau, rel=1e-3)
+    assert fit.residual_scale == pytest.approx(np.sqrt(r @ r / (t.size - 2)), rel=1e-6)
+    rho = cov[0, 1] / (se_a * se_ln_tau)
+    assert fit.correlations["a"]["tau_s"] == pytest.approx(rho, abs=1e-3) == fit.correlations["tau_s"]["a"]
+    assert fit.correlations["a"]["a"] == pytest.approx(1.0) and fit.noise_lags == (0,)
+
+
+def test_fit_result_reports_what_it_was_given_and_the_rank_it_found():
+    # numpy's SVD of the hand-written Jacobian at the start (as above) is the reference for the relative
+    # singular values and the condition number (largest / smallest singular value; any linear algebra text).
+    t = np.linspace(0.0, 4.0, 400)
+    fit = _decay_fit(4, t)
+    assert fit.nominal == {"a": 1.9, "tau_s": 0.85} and fit.units == {"a": "", "tau_s": "s"}
+    assert fit.fitted == ("a", "tau_s") and fit.held_fixed == {} and fit.nuisance == ()
+    assert fit.weighting == "noise" and fit.success and fit.message and fit.evaluations >= 2
+    decay = np.exp(-t / 0.85)
+    jac = np.column_stack([-decay * DECAY_A_SCALE, -1.9 * decay * (t / 0.85)]) / DECAY_SIGMA  # coordinates a/4, ln τ
+    sv = np.linalg.svd(jac, compute_uv=False)
+    assert fit.relative_singular_values == pytest.approx((sv / sv[0]).tolist(), rel=1e-6)
+    assert fit.condition_number == pytest.approx(sv[0] / sv[-1], rel=1e-6) and fit.rank == 2
+
+
+def test_the_lag_never_exceeds_the_sample():
+    # Newey & West (1994): the lag is a count of autocovariances, at most T − 1 of them exist. An
+    # autocovariance sequence whose ŝ⁰ almost cancels drives the plug-in value far past that.
+    gamma = np.zeros(10)
+    gamma[:3] = 1.0, -0.25, -0.2499
+    assert bartlett_lag(gamma) == 9
 
 
 def test_intervals_are_students_t_at_97_5_percent():

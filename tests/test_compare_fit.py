@@ -333,12 +333,14 @@ def test_the_lag_never_exceeds_the_sample():
     assert bartlett_lag(gamma) == 9
 
 
-def test_intervals_are_students_t_at_97_5_percent():
+@pytest.mark.parametrize("samples", [40, 3])
+def test_intervals_are_students_t_at_97_5_percent(samples):
     # The stated construction: value ± t_(0.975, m−p)·se on a linear coordinate, exp(ln p ± t·se/p) on a
-    # log one (Student's t from scipy as the reference quantile).
-    t = np.linspace(0.0, 4.0, 40)
+    # log one (Student's t from scipy as the reference quantile); with 3 samples and 2 parameters, one
+    # degree of freedom (t = 12.7).
+    t = np.linspace(0.0, 4.0, samples)
     fit = _decay_fit(0, t)
-    tq = student_t.ppf(0.975, 40 - 2)
+    tq = student_t.ppf(0.975, samples - 2)
     assert fit.ci95["a"] == pytest.approx((fit.values["a"] - tq * fit.standard_errors["a"],
                                            fit.values["a"] + tq * fit.standard_errors["a"]), rel=1e-12)
     rel = fit.standard_errors["tau_s"] / fit.values["tau_s"]
@@ -362,3 +364,13 @@ def test_95_percent_intervals_pass_a_binomial_test_that_90_percent_ones_fail():
             lo, hi = fit.ci95[name]
             hits[name] += lo <= true <= hi
     assert all(count >= k for count in hits.values()), (hits, k)
+
+
+@pytest.mark.parametrize("n", [38, 300, 513])
+def test_autocovariance_is_numpys_linear_correlation_at_every_lag(n):
+    # γ̂(l) = (1/n)·Σ r_i·r_(i+l): numpy.correlate (direct sums, an independent implementation) is the
+    # reference at every lag up to n − 1. n = 513 makes 2n − 2 = 1024 a fast FFT length, where a transform
+    # one sample too short would wrap the last lag onto itself.
+    r = np.random.default_rng(n).normal(size=n)
+    expected = np.correlate(r, r, mode="full")[n - 1:] / n
+    assert autocovariance(r) == pytest.approx(expected, abs=1e-12)

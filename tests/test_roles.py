@@ -1,7 +1,7 @@
 """Generator and Scope roles on the simulated bench, over real TCP through pyvisa-py.
 
 The same acquisition code runs against both scope dialects with only the driver file changed; the volts are
-checked against the series-RLC step response (Nilsson & Riedel, Electric Circuits, ch. 8, from memory) and against each
+checked against the series-RLC step response (Nilsson & Riedel, Electric Circuits ch. 8) and against each
 other, within the 8-bit ADC's quantisation step (common practice for bench scopes).
 """
 

@@ -2,7 +2,7 @@
 
 With noise, jitter, bandwidth, edge time, clipping and quantisation off, the scope shows the plant's exact
 capacitor voltage, so the capacitance the plant had at each capture can be read back by fitting the
-series-RLC step response (Nilsson & Riedel, Electric Circuits, ch. 8, from memory) with C free. It must follow the
+series-RLC step response (Nilsson & Riedel, Electric Circuits ch. 8) with C free. It must follow the
 stated linear drift at the times the captures were taken.
 """
 
@@ -33,7 +33,7 @@ EXACT = {"noise_v_rms": 0.0, "jitter_s": 0.0, "bandwidth_hz": 0.0, "edge_time_s"
 
 
 def v_c_step(t: np.ndarray, c_f: float, volts: float = 1.0) -> np.ndarray:
-    """Underdamped series RLC from rest, step of ``volts`` at t = 0 (Nilsson & Riedel, Electric Circuits, ch. 8, from memory):
+    """Underdamped series RLC from rest, step of ``volts`` at t = 0 (Nilsson & Riedel, Electric Circuits ch. 8):
     v_C = V[1 − e^{−σt}(cos ω_d t + σ/ω_d sin ω_d t)], σ = R/2L, ω_d = √(1/LC − σ²)."""
     sigma = R_OHM / (2 * L_H)
     omega_d = math.sqrt(1 / (L_H * c_f) - sigma ** 2)

@@ -42,7 +42,8 @@ ROOT = Path(__file__).resolve().parent.parent
 EQUIVALENTS = ROOT / "tools" / "mutation-equivalents.toml"
 COPIED = ("acqd", "tests", "drivers", "profiles", "pyproject.toml")
 
-# module key → (files to mutate, tests that exercise them, pytest options allowed). The tests are the ones written against the
+# module key → (files to mutate, tests that exercise them, pytest options allowed). The tests are the ones written
+# against the
 # module's behaviour; the slow end-to-end files (the daemon, the README, the CLI) are left out so that a
 # module takes minutes, not hours.
 MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {

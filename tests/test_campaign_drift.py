@@ -1,7 +1,7 @@
 """``acqd drift`` on a store whose DUT drifts by a known amount per hour.
 
-The records are built from the textbook series-RLC step response (closed form, DESIGN.md §4) with the
-resistor rising linearly in time, plus seeded gaussian noise; the real comparator fits R on each and its
+The records are built from the series-RLC step response (closed form, Nilsson & Riedel, Electric Circuits
+ch. 8) with the resistor rising linearly in time, plus seeded gaussian noise; the real comparator fits R on each and its
 result is stored with the record in a real HDF5 store, as the daemon does. ``acqd drift`` must recover the
 injected slope inside its own 95 % interval, agree with the textbook regression formulas, and flag
 exactly the records whose fitted R left the tolerance band.

@@ -58,8 +58,9 @@ def test_csv_fit_prints_json_and_exits_0(capsys, csv_file, tmp_path):
 
 
 def test_failed_verdict_exits_1_and_lists_the_reasons(capsys, csv_file):
-    # Textbook (DESIGN.md §4): the 27 Ω unit (R_total 77 Ω, ζ ≈ 0.21) overshoots by about 50 % and settles in
-    # about 8L/R ≈ 0.34 ms, so a 10–20 % band and a 10 µs ceiling fail; the exit status says so (1).
+    # Nise, Control Systems Engineering §4.6: the 27 Ω unit (R_total 77 Ω, ζ ≈ 0.21) overshoots by about 50 %
+    # and settles in about 8L/R ≈ 0.34 ms, so a 10–20 % band and a 10 µs ceiling fail; the exit status says so
+    # (1).
     code, out, err = run(capsys, str(csv_file), "--high", "1", *MODEL, "--map", "v_c=v_c",
                          "--overshoot", "v_c=10:20", "--settling-max", "v_c=1e-5")
     assert code == 1 and err == ""

@@ -6,11 +6,12 @@ import numpy as np
 import pytest
 from scipy.linalg import toeplitz
 from scipy.signal import lfilter
+from scipy.stats import binom
 from scipy.stats import t as student_t
 
 import acqd.compare.fit as fit_module
 from acqd.compare import compare, compare_spec, spec_from_parts
-from acqd.compare.fit import autocovariance, bartlett_lag, bartlett_noise_term, noise_covariance
+from acqd.compare.fit import Free, autocovariance, bartlett_lag, bartlett_noise_term, fit_parameters, noise_covariance
 from acqd.compare.metrics import quantisation_rms
 from acqd.record import Stimulus, TimeBase
 from test_compare_synthetic import difference_channel, make_record, series_rlc_nodes
@@ -183,7 +184,8 @@ def test_a_warm_start_that_cannot_start_a_fit_is_ignored():
 
 
 def test_only_vc_leaves_l_c_and_r_c_identifiable_and_l_is_held():
-    # DESIGN.md §4: with only v_C measured (and the source known), only LC and RC are identifiable; the fit
+    # Our own derivation: v_C/u = 1/(LC·s² + (Rs+R)C·s + 1) from KVL, so v_C alone fixes only the
+    # coefficients LC and (Rs+R)C; the fit
     # must hold one of R, L, C and say so. The default holds L; R and C then come out right.
     start = {"r_ohm": 30.0, "l_h": 3.3e-3, "c_f": 80e-9}
     result = compare(kt9_record(seed=3), {"model": "series_rlc", **start}, {"v_c": "v_c"},
@@ -205,17 +207,17 @@ def test_the_user_chooses_which_parameter_to_hold():
 
 
 def test_fitting_a_parameter_with_no_effect_is_refused_with_a_reason():
-    # The source resistance and R appear only as their sum in v_C (KVL, DESIGN.md §4): fitting both from
-    # v_C alone holds one of them rather than splitting the sum arbitrarily.
+    # The source resistance and R appear only as their sum in v_C (KVL: v_C/u = 1/(LC·s² + (Rs+R)C·s + 1)):
+    # fitting both from v_C alone holds one of them rather than splitting the sum arbitrarily.
     result = compare(kt9_record(seed=5), {"model": "series_rlc", **TRUE}, {"v_c": "v_c"},
                      fit={"free": ["r_ohm", "source_resistance_ohm"]})
     assert len(result.fit.held_fixed) == 1 and len(result.fit.fitted) == 1
 
 
 def test_first_and_second_order_sections_fit_from_fifty_percent_off():
-    # RC low-pass from its closed form v_C = V(1 − e^{−t/((Rs+R)C)}) (textbook): only (Rs+R)·C shows, so R
-    # is held (as asked) and C fitted from half its value. A second-order section from the normalised
-    # textbook step (DESIGN.md §4): ω_n, ζ and gain within 4 standard errors of the truth, and the same
+    # RC low-pass from its closed form v_C = V(1 − e^{−t/((Rs+R)C)}) (textbook): only (Rs+R)·C shows, so R is
+    # held (as asked) and C fitted from half its value. A second-order section from the normalised step (Nise,
+    # Control Systems Engineering §4.6): ω_n, ζ and gain within 4 standard errors of the truth, and the same
     # optimum reached from ±50 % off.
     tb = TimeBase(2e-6, 200, 2000)
     t = tb.times()
@@ -256,10 +258,10 @@ def test_quantisation_rms_is_the_code_step_over_root_12():
 
 
 def test_a_quiet_8_bit_channel_is_weighted_by_its_quantisation_noise():
-    # With no noise an 8-bit baseline sits on one code and its standard deviation is 0; weighted by that
-    # (or a tiny floor) one channel would swamp the fit. Weighted by Δ/√12, the residual scale of a correct
-    # model is about 1 (the quantisation error is all that is left; common practice), and the fit lands on
-    # the truth. The textbook closed form (DESIGN.md §4) generated the record; v_src = E − 50 Ω·i_L gives
+    # With no noise an 8-bit baseline sits on one code and its standard deviation is 0; weighted by that (or a
+    # tiny floor) one channel would swamp the fit. Weighted by Δ/√12, the residual scale of a correct model is
+    # about 1 (the quantisation error is all that is left; common practice), and the fit lands on the truth. The
+    # closed form (Nilsson & Riedel, Electric Circuits ch. 8) generated the record; v_src = E − 50 Ω·i_L gives
     # the current, so R, L and C are all determined.
     tb = TimeBase(1.2e-3 / 2000, 400, 2000)
     record = make_record(series_rlc_nodes(tb.times(), **TRUE), tb, STIMULUS, {"v_c": "v_c", "v_src": "v_src"},
@@ -269,3 +271,134 @@ def test_a_quiet_8_bit_channel_is_weighted_by_its_quantisation_noise():
     assert 0.3 < result.fit.residual_scale < 3.0, result.fit.residual_scale
     for name, true in TRUE.items():
         assert result.fit.values[name] == pytest.approx(true, rel=0.01)
+
+
+# --- the lag rule and the interval level against their published definitions ----------------------------
+
+@pytest.mark.parametrize("samples, pre_lag", [(100, 4), (1000, 6), (10_000, 11), (100_000, 18)])
+def test_bartlett_pre_lag_is_newey_west_1994(samples, pre_lag):
+    # Newey & West (1994, Review of Economic Studies 61(4), §3, the automatic procedure for the Bartlett
+    # kernel; from memory): pre-lag n = ⌊4·(T/100)^(2/9)⌋, so n = 4, 6, 11, 18 for T = 10², 10³, 10⁴, 10⁵
+    # (4·10^(2/9) = 6.67, 4·100^(2/9) = 11.13, 4·1000^(2/9) = 18.57). An autocovariance that is zero except
+    # at one lag k enters ŝ¹ only when k ≤ n, so the lag rule gives L = 0 just past the pre-lag.
+    def lag_with_spike_at(k: int) -> int:
+        gamma = np.zeros(samples)
+        gamma[0], gamma[k] = 1.0, 0.1
+        return bartlett_lag(gamma)
+
+    assert lag_with_spike_at(pre_lag) > 0 and lag_with_spike_at(pre_lag + 1) == 0
+
+
+@pytest.mark.parametrize("samples, k", [(1000, 6), (100_000, 3)])
+def test_bartlett_lag_has_the_published_constant(samples, k):
+    # Newey & West (1994), Bartlett kernel: ŝ⁰ = γ₀ + 2Σ_{j≤n} γ_j, ŝ¹ = 2Σ_{j≤n} j·γ_j, and
+    # L = ⌊1.1447·((ŝ¹/ŝ⁰)²·T)^(1/3)⌋ (c_γ = 1.1447 for the Bartlett kernel; from memory). With γ₀ = 1 and
+    # γ_k = 0.1: ŝ⁰ = 1.2, ŝ¹ = 0.2k. Worked by hand: T = 1000, k = 6: ŝ¹/ŝ⁰ = 1, L = ⌊1.1447·10⌋ = 11;
+    # T = 10⁵, k = 3: ŝ¹/ŝ⁰ = 0.5, L = ⌊1.1447·(25 000)^(1/3)⌋ = ⌊1.1447·29.24⌋ = 33.
+    gamma = np.zeros(samples)
+    gamma[0], gamma[k] = 1.0, 0.1
+    assert bartlett_lag(gamma) == {1000: 11, 100_000: 33}[samples]
+    assert bartlett_lag(np.zeros(samples)) == 0  # no residual at all: nothing to correlate
+
+
+def _decay_fit(seed: int, t: np.ndarray):
+    """One least-squares fit of y = a·e^(−t/τ) to white Gaussian noise of known σ (a linear, τ on ln)."""
+    rng = np.random.default_rng(seed)
+    y = DECAY_A * np.exp(-t / DECAY_TAU_S) + rng.normal(0.0, DECAY_SIGMA, t.size)
+    return fit_parameters(lambda v: (y - v["a"] * np.exp(-t / v["tau_s"])) / DECAY_SIGMA,
+                          {"a": Free(1.9, log=False, scale=DECAY_A_SCALE), "tau_s": Free(0.85, log=True, unit="s")},
+                          (), "noise")
+
+
+DECAY_A, DECAY_TAU_S, DECAY_SIGMA = 2.0, 0.8, 0.05
+DECAY_A_SCALE = 4.0  # a linear coordinate fitted as a / 4: the result must not depend on the scale
+
+
+def test_standard_errors_are_the_textbook_least_squares_ones_at_lag_zero(monkeypatch):
+    # Regression textbook (Seber & Wild 1989, Nonlinear Regression, §2.1, from memory): for white noise
+    # cov(θ̂) = s²·(JᵀJ)⁻¹, s² = SSR/(m − p), with J written out by hand here: r = (y − a·e^(−t/τ))/σ,
+    # ∂r/∂a = −e^(−t/τ)/σ, ∂r/∂ln τ = −a·e^(−t/τ)·(t/τ)/σ; se(τ) = τ·se(ln τ) (delta method). With the
+    # Bartlett lag held at 0 the fit must report exactly these (to the solver's finite-difference Jacobian).
+    monkeypatch.setattr(fit_module, "bartlett_lag", lambda gamma: 0)
+    t = np.linspace(0.0, 4.0, 400)
+    fit = _decay_fit(3, t)
+    a, tau = fit.values["a"], fit.values["tau_s"]
+    assert a == pytest.approx(DECAY_A, rel=0.02) and tau == pytest.approx(DECAY_TAU_S, rel=0.02)
+    decay = np.exp(-t / tau)
+    jac = np.column_stack([-decay / DECAY_SIGMA, -a * decay * (t / tau) / DECAY_SIGMA])
+    y = DECAY_A * np.exp(-t / DECAY_TAU_S) + np.random.default_rng(3).normal(0.0, DECAY_SIGMA, t.size)
+    r = (y - a * decay) / DECAY_SIGMA
+    cov = r @ r / (t.size - 2) * np.linalg.inv(jac.T @ jac)
+    se_a, se_ln_tau = np.sqrt(np.diag(cov))
+    assert fit.standard_errors["a"] == pytest.approx(se_a, rel=1e-3)
+    assert fit.standard_errors["tau_s"] == pytest.approx(tau * se_ln_tau, rel=1e-3)
+    assert fit.residual_scale == pytest.approx(np.sqrt(r @ r / (t.size - 2)), rel=1e-6)
+    rho = cov[0, 1] / (se_a * se_ln_tau)
+    assert fit.correlations["a"]["tau_s"] == pytest.approx(rho, abs=1e-3) == fit.correlations["tau_s"]["a"]
+    assert fit.correlations["a"]["a"] == pytest.approx(1.0) and fit.noise_lags == (0,)
+
+
+def test_fit_result_reports_what_it_was_given_and_the_rank_it_found():
+    # numpy's SVD of the hand-written Jacobian at the start (as above) is the reference for the relative
+    # singular values and the condition number (largest / smallest singular value; any linear algebra text).
+    t = np.linspace(0.0, 4.0, 400)
+    fit = _decay_fit(4, t)
+    assert fit.nominal == {"a": 1.9, "tau_s": 0.85} and fit.units == {"a": "", "tau_s": "s"}
+    assert fit.fitted == ("a", "tau_s") and fit.held_fixed == {} and fit.nuisance == ()
+    assert fit.weighting == "noise" and fit.success and fit.message and fit.evaluations >= 2
+    decay = np.exp(-t / 0.85)
+    jac = np.column_stack([-decay * DECAY_A_SCALE, -1.9 * decay * (t / 0.85)]) / DECAY_SIGMA  # coordinates a/4, ln τ
+    sv = np.linalg.svd(jac, compute_uv=False)
+    assert fit.relative_singular_values == pytest.approx((sv / sv[0]).tolist(), rel=1e-6)
+    assert fit.condition_number == pytest.approx(sv[0] / sv[-1], rel=1e-6) and fit.rank == 2
+
+
+def test_the_lag_never_exceeds_the_sample():
+    # Newey & West (1994): the lag is a count of autocovariances, at most T − 1 of them exist. An
+    # autocovariance sequence whose ŝ⁰ almost cancels drives the plug-in value far past that.
+    gamma = np.zeros(10)
+    gamma[:3] = 1.0, -0.25, -0.2499
+    assert bartlett_lag(gamma) == 9
+
+
+@pytest.mark.parametrize("samples", [40, 3])
+def test_intervals_are_students_t_at_97_5_percent(samples):
+    # The stated construction: value ± t_(0.975, m−p)·se on a linear coordinate, exp(ln p ± t·se/p) on a
+    # log one (Student's t from scipy as the reference quantile); with 3 samples and 2 parameters, one
+    # degree of freedom (t = 12.7).
+    t = np.linspace(0.0, 4.0, samples)
+    fit = _decay_fit(0, t)
+    tq = student_t.ppf(0.975, samples - 2)
+    assert fit.ci95["a"] == pytest.approx((fit.values["a"] - tq * fit.standard_errors["a"],
+                                           fit.values["a"] + tq * fit.standard_errors["a"]), rel=1e-12)
+    rel = fit.standard_errors["tau_s"] / fit.values["tau_s"]
+    assert fit.ci95["tau_s"] == pytest.approx((fit.values["tau_s"] * np.exp(-tq * rel),
+                                               fit.values["tau_s"] * np.exp(tq * rel)), rel=1e-12)
+
+
+def test_95_percent_intervals_pass_a_binomial_test_that_90_percent_ones_fail():
+    # Binomial test (scipy.stats.binom): in N = 1000 independent trials a true 95 % interval misses the
+    # truth so rarely that fewer than k = binom.ppf(0.001, N, 0.95) hits happen with probability ≤ 0.1 %;
+    # a 90 % interval reaches k with probability < 0.5 %, so intervals built with the 0.95 quantile (90 %
+    # labelled 95 %) fail here, as do intervals without the t factor (68 %).
+    trials = 1000
+    k = binom.ppf(0.001, trials, 0.95)
+    assert binom.sf(k - 1, trials, 0.90) < 0.005
+    t = np.linspace(0.0, 4.0, 400)
+    hits = dict.fromkeys(("a", "tau_s"), 0)
+    for seed in range(trials):
+        fit = _decay_fit(seed, t)
+        for name, true in (("a", DECAY_A), ("tau_s", DECAY_TAU_S)):
+            lo, hi = fit.ci95[name]
+            hits[name] += lo <= true <= hi
+    assert all(count >= k for count in hits.values()), (hits, k)
+
+
+@pytest.mark.parametrize("n", [38, 300, 513])
+def test_autocovariance_is_numpys_linear_correlation_at_every_lag(n):
+    # γ̂(l) = (1/n)·Σ r_i·r_(i+l): numpy.correlate (direct sums, an independent implementation) is the
+    # reference at every lag up to n − 1. n = 513 makes 2n − 2 = 1024 a fast FFT length, where a transform
+    # one sample too short would wrap the last lag onto itself.
+    r = np.random.default_rng(n).normal(size=n)
+    expected = np.correlate(r, r, mode="full")[n - 1:] / n
+    assert autocovariance(r) == pytest.approx(expected, abs=1e-12)

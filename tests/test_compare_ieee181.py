@@ -15,7 +15,7 @@ def first_order(t, tau, lo=0.0, hi=1.0):
 
 
 def second_order_unit(t, zeta, wn):
-    """Textbook underdamped unit step response (DESIGN.md §4 normalised): 1 − e^{−ζω_n t}(cos ω_d t + ...)."""
+    """Underdamped unit step response (Nise, Control Systems Engineering §4.6): 1 − e^{−ζω_n t}(cos ω_d t + ...)."""
     wd, s = wn * np.sqrt(1 - zeta**2), zeta * wn
     tp = np.clip(t, 0, None)
     return 1 - np.exp(-s * tp) * (np.cos(wd * tp) + s / wd * np.sin(wd * tp))
@@ -40,8 +40,8 @@ def test_first_order_transition_duration_is_tau_ln9(polarity):
 
 @pytest.mark.parametrize("zeta", [0.1, 0.3, 0.5, 0.7])
 def test_second_order_overshoot_peak_time_damped_frequency(zeta):
-    # Textbook second-order formulas (DESIGN.md §4): PO = 100·e^{−ζπ/√(1−ζ²)}, t_p = π/ω_d,
-    # ω_d = ω_n√(1−ζ²); the first undershoot after the peak is the second extremum, 100·e^{−2ζπ/√(1−ζ²)}.
+    # Second-order formulas (Nise, Control Systems Engineering §4.6): PO = 100·e^{−ζπ/√(1−ζ²)}, t_p = π/ω_d, ω_d
+    # = ω_n√(1−ζ²); the first undershoot after the peak is the second extremum, 100·e^{−2ζπ/√(1−ζ²)}.
     wn = 2 * np.pi * 1e3
     wd = wn * np.sqrt(1 - zeta**2)
     t = np.arange(-4000, 60000) * 0.5e-6
@@ -56,9 +56,12 @@ def test_second_order_overshoot_peak_time_damped_frequency(zeta):
         assert p.damped_frequency_hz is None and "3 needed" in p.ringing_method
 
 
-def test_series_rlc_values_worked_in_the_standards_reference():
-    # STANDARDS.md §5 (computed there): 20 Ω, 1 mH, 1 µF, no source resistance: PO 35.09 %, t_p 104.7 µs,
-    # exact 2 % settling 354 µs from the stimulus edge (IEEE 181 counts from the 50 % instant: add t50).
+def test_series_rlc_values_computed_from_the_closed_forms():
+    # Our own derived values (not a published example), from the closed forms of Nise §4.6 (from memory):
+    # 20 Ω, 1 mH, 1 µF, no source resistance: ω_n = 1/√(LC) = 31 623 rad/s, ζ = (R/2)·√(C/L) = 0.3162,
+    # ω_d = ω_n·√(1−ζ²) = 30 000 rad/s, so PO = 100·e^{−πζ/√(1−ζ²)} = 35.09 % and t_p = π/ω_d = 104.7 µs;
+    # the exact 2 % settling, 354 µs from the stimulus edge, is the last root of |v_C − 1| = 0.02 found
+    # numerically (IEEE 181 counts from the 50 % instant: add t50).
     t = np.arange(-1000, 20000) * 0.1e-6
     v_c = series_rlc_nodes(t, 20.0, 1e-3, 1e-6, 0.0)["v_c"]
     p = step_parameters(t, v_c, "rising")
@@ -67,8 +70,9 @@ def test_series_rlc_values_worked_in_the_standards_reference():
     assert p.t50_s + p.settling_duration_s == pytest.approx(354e-6, abs=1e-6)
 
 
-def test_ten_ninety_rise_time_fit_from_the_standards_reference():
-    # STANDARDS.md §5: ω_n·t_r ≈ 1 + 1.039ζ − 0.417ζ² + 1.768ζ³ (a fit, within 0.3 % for ζ = 0.1–0.9).
+def test_ten_ninety_rise_time_against_the_published_fit():
+    # Nise §4.6, the curve fit of normalised 10–90 % rise time (from memory): ω_n·t_r ≈ 1 + 1.039ζ − 0.417ζ²
+    # + 1.768ζ³; within 0.3 % for ζ = 0.1–0.9 by our own comparison with the exact closed form.
     wn = 2 * np.pi * 1e3
     t = np.arange(-4000, 80000) * 0.25e-6
     for zeta in (0.2, 0.5, 0.8):
@@ -129,9 +133,9 @@ def test_channel_result_errors_and_nrmse_definition():
 
 
 def test_damped_frequency_of_a_noisy_quantised_record():
-    # A bench-like v_C: the textbook series RLC step (DESIGN.md §4, 22 + 50 Ω, 3.3 mH, 100 nF) with 2 mV of
-    # noise through an 8-bit converter spanning ±1 V around 0.75 V (7.8 mV steps, as the demo profile's
-    # channel). The ringing frequency must stay within 0.5 % of the textbook ω_d/2π, although the late
+    # A bench-like v_C: the series RLC step (Nilsson & Riedel, Electric Circuits ch. 8; 22 + 50 Ω, 3.3 mH, 100
+    # nF) with 2 mV of noise through an 8-bit converter spanning ±1 V around 0.75 V (7.8 mV steps, as the demo
+    # profile's channel). The ringing frequency must stay within 0.5 % of the textbook ω_d/2π, although the late
     # lobes are only a few quantisation steps tall.
     from test_compare_synthetic import quantise_8bit
 

@@ -4,7 +4,7 @@ Every record here is built from a textbook closed form (not from acqd's simulato
 Gaussian noise and an 8-bit converter spanning the trace plus 15 % on either side, as a bench scope set
 up with some headroom would show it (``test_compare_synthetic.quantise_8bit``). The reference values:
 
-- underdamped second-order unit step (STANDARDS.md §5; any control-systems text):
+- underdamped second-order unit step (Nise, Control Systems Engineering §4.6):
   y = 1 − e^(−ζω_n t)(cos ω_d t + ζω_n/ω_d sin ω_d t), ω_d = ω_n√(1 − ζ²); its k-th extremum after the
   edge is at t = kπ/ω_d, |y − 1| = e^(−kπζ/√(1 − ζ²)) there, so t_p = π/ω_d and PO = e^(−πζ/√(1 − ζ²));
 - first-order step 1 − e^(−t/RC) (any circuits text): no overshoot, 2 % settling at RC·ln 50.
@@ -120,7 +120,8 @@ def test_peak_time_of_an_8_bit_flat_top_is_its_middle_not_its_first_sample():
 def test_settling_within_one_sample_of_the_closed_form(zeta):
     # The closed form's own last exit from the ±2 % band (found with scipy's brentq on the textbook
     # formula), counted from its 50 % instant as IEEE 181-2011 counts settling. The envelope rule
-    # t_s ≈ 4/(ζω_n) is only within −16 %..+6 % of this (STANDARDS.md §5), so the formula itself is the
+    # t_s ≈ 4/(ζω_n) (Nise §4.6) is only within −16 %..+6 % of this (our own computation: this test's
+    # brentq root against 4/(ζω_n) for ζ = 0.1–0.9), so the formula itself is the
     # reference; unquantised and noise-free, where settling is a property of the waveform alone.
     t, y, _, _ = second_order_record(zeta, 0.0, False, 0)
     dt = t[1] - t[0]
@@ -198,13 +199,13 @@ def test_rc_record_compared_with_the_rc_model_shows_no_overshoot_on_either_trace
 
 
 def test_ringing_of_a_bench_like_series_rlc_on_a_coarse_8_bit_span():
-    # The demo's series RLC (22 + 50 Ω, 3.3 mH, 100 nF; textbook closed form, STANDARDS.md §5) at
-    # 10 MS/s, every node through an 8-bit converter over −0.7 .. 1.7 V (9.4 mV, about 1 % of the step)
-    # with 0.2–1 % of noise. Where ringing is reported, it is within 1 % of f_d = √(ω_n² − σ²)/2π.
-    # Crossings of the final level were up to 3.4 % high on these records. The R–L junction's peak is
-    # not at π/ω_d: v_rl = V − 72 Ω·i with i ∝ e^(−σt) sin ω_d t, whose first minimum is where
-    # tan ω_d t = ω_d/σ in the second half-period, t = (π + atan(ω_d/σ))/ω_d (differentiating the
-    # textbook current); its peak time must be within 1 % of that.
+    # The demo's series RLC (22 + 50 Ω, 3.3 mH, 100 nF; closed form, Nilsson & Riedel, Electric Circuits ch. 8)
+    # at 10 MS/s, every node through an 8-bit converter over −0.7 .. 1.7 V (9.4 mV, about 1 % of the step) with
+    # 0.2–1 % of noise. Where ringing is reported, it is within 1 % of f_d = √(ω_n² − σ²)/2π. Crossings of the
+    # final level were up to 3.4 % high on these records. The R–L junction's peak is not at π/ω_d: v_rl = V − 72
+    # Ω·i with i ∝ e^(−σt) sin ω_d t, whose first minimum is where tan ω_d t = ω_d/σ in the second half-period,
+    # t = (π + atan(ω_d/σ))/ω_d (differentiating the textbook current); its peak time must be within 1 % of
+    # that.
     t = np.arange(-3000, 12000) * 1e-7
     nodes = series_rlc_nodes(t, 22.0, 3.3e-3, 100e-9)
     sigma, wn = 72.0 / (2 * 3.3e-3), 1 / np.sqrt(3.3e-3 * 100e-9)

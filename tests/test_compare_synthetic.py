@@ -13,7 +13,7 @@ def series_rlc_nodes(t: np.ndarray, r_ohm: float, l_h: float, c_f: float, rs_ohm
                      before_v: float = 0.0, after_v: float = 1.0, delay_s: float = 0.0) -> dict[str, np.ndarray]:
     """Node voltages and loop current of a series RLC driven through Rs by an ideal EMF step at ``delay_s``.
 
-    Textbook (DESIGN.md §4, STANDARDS.md §5), underdamped, R_total = Rs + R:
+    Nilsson & Riedel, Electric Circuits ch. 8; underdamped, R_total = Rs + R:
     v_C = V[1 − e^{−σt}(cos ω_d t + (σ/ω_d) sin ω_d t)], i = V/(L ω_d) e^{−σt} sin ω_d t.
     """
     r_total = rs_ohm + r_ohm
@@ -58,7 +58,7 @@ def difference_channel(record: Record, a: str, b: str, name: str) -> Record:
 
 
 def test_closed_form_satisfies_kirchhoff():
-    # Textbook KVL round the loop: L di/dt = u − (Rs+R) i − v_C and C dv_C/dt = i (DESIGN.md §4);
+    # KVL round the loop (Kirchhoff's voltage law): L di/dt = u − (Rs+R) i − v_C and C dv_C/dt = i;
     # checked with numpy's gradient on a fine grid after the step.
     t = np.linspace(0, 2e-3, 200001)
     n = series_rlc_nodes(t, 22.0, 3.3e-3, 100e-9)

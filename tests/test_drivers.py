@@ -68,10 +68,14 @@ def test_commands_follow_the_per_division_and_share_conventions():
     # Reference: plain Python arithmetic of the DEVELOPERS.md tables: 10 horizontal divisions span the
     # window, 8 vertical divisions span offset ± range; the DIG's pre-trigger is a negative sample offset.
     sent = view.commands("timebase", window_s=window, n_samples=n, pretrigger_fraction=share)
-    assert scpi.parse_number(sent[0].split()[1]) == window / 10
-    assert sent[1:] == [f"SPAN:POINts {n}", f"SPAN:LEAD {scpi.format_number(share)}"]
+    assert len(sent) == 3 and float(sent[0].split()[1]) == window / 10
+    # The numbers are read back with Python's float() (an independent NR3 reader), not rebuilt with the
+    # formatter under test.
+    header, value = sent[2].split()
+    assert sent[1] == f"SPAN:POINts {n}" and header == "SPAN:LEAD" and float(value) == share
     sent = view.commands("channel", channel="CH3", range_v=range_v, offset_v=0.5, coupling="dc")
-    assert sent[0] == f"LANE3:PERDiv {scpi.format_number(2 * range_v / 8)}"
+    header, value = sent[0].split()
+    assert header == "LANE3:PERDiv" and float(value) == 2 * range_v / 8
     assert dig.commands("timebase", window_s=window, n_samples=n, pretrigger_fraction=share)[2] == \
         f"SWEep:OFFSet:POINts {-round(share * n)}"
     # SCPI-1999 Vol 1 §7.2: a numeric value is NR1/NR2/NR3 text, parsed back to the same double here.

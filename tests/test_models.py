@@ -82,7 +82,8 @@ def test_ramp_edge_between_levels_matches_scipy_lsim(name):
 
 
 def test_series_rlc_closed_form_vc_and_il():
-    # Textbook closed form (DESIGN.md §4): v_C and i_L of an underdamped series RLC from rest.
+    # Closed form (Nilsson & Riedel, Electric Circuits ch. 8): v_C and i_L of an underdamped series RLC from
+    # rest.
     model = build_model(MODEL_TABLES["series_rlc"], "test")  # Rs = 50 ohm inside
     t = _grid(20001, 1e-7, 2000)
     _, y, _ = edge_response(model, t, Edge(0.0, 1.0))
@@ -93,8 +94,9 @@ def test_series_rlc_closed_form_vc_and_il():
 
 
 def test_long_step_matches_the_closed_form():
-    # Textbook closed form (DESIGN.md §4), over 1,000,003 samples: the constant-run path builds the states
-    # from powers of Ad found by repeated squaring, and its blocks do not divide this length evenly.
+    # Closed form (Nilsson & Riedel, Electric Circuits ch. 8), over 1,000,003 samples: the constant-run path
+    # builds the states from powers of Ad found by repeated squaring, and its blocks do not divide this length
+    # evenly.
     from acqd.models import discretise, propagate
 
     model = build_model(MODEL_TABLES["series_rlc"], "test")

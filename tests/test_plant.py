@@ -12,7 +12,7 @@ R_OHM, L_H, C_F, RS_OHM = 12.0, 1.5e-3, 0.68e-6, 50.0
 
 
 def closed_form_step(t: np.ndarray, v: float, r_total: float) -> tuple[np.ndarray, np.ndarray]:
-    """Series RLC step from rest (textbook; ../shared/DESIGN.md §4, STANDARDS.md §5)."""
+    """Series RLC step from rest (Nilsson & Riedel, Electric Circuits ch. 8)."""
     wn = 1 / np.sqrt(L_H * C_F)
     zeta = r_total / 2 * np.sqrt(C_F / L_H)
     wd = wn * np.sqrt(1 - zeta**2)
@@ -32,7 +32,7 @@ def test_step_from_rest_matches_closed_form(first_offset_s: float) -> None:
                           n_samples=n, first_sample_s=first, edge_time_s=0.0,
                           signals=[Signal("v_c"), Signal("i_l")])
     t = first + np.arange(n) * dt
-    vc_ref, il_ref = closed_form_step(t, 2.0, R_OHM + RS_OHM)  # the 50 ohm source adds to R (STANDARDS.md §5)
+    vc_ref, il_ref = closed_form_step(t, 2.0, R_OHM + RS_OHM)  # the 50 ohm source is in series with R (KVL)
     assert np.max(np.abs(vc - vc_ref)) < 1e-9
     assert np.max(np.abs(il - il_ref)) < 1e-12
 

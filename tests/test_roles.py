@@ -1,7 +1,7 @@
 """Generator and Scope roles on the simulated bench, over real TCP through pyvisa-py.
 
 The same acquisition code runs against both scope dialects with only the driver file changed; the volts are
-checked against the textbook series-RLC step response (DESIGN.md §4 / STANDARDS.md §5) and against each
+checked against the series-RLC step response (Nilsson & Riedel, Electric Circuits ch. 8) and against each
 other, within the 8-bit ADC's quantisation step (common practice for bench scopes).
 """
 
@@ -102,7 +102,8 @@ def test_generator_applies_in_order_and_reads_back(bench, opened):
     before = len(log)
     gen.apply_stimulus(Stimulus("square", -0.5, 2.0, 250.0, "falling", load="matched"))
     sent = [entry.text for entry in log[before:]]
-    # Output off before anything that shapes it (DESIGN.md §6: keep outputs safe while configuring).
+    # Output off before anything that shapes it (the project's safety rule, DEVELOPERS.md "Contracts": the
+    # generator role turns the output off first).
     assert sent[0] == "OUTPut OFF"
     assert sent.index("FUNCtion SQUare") < sent.index("FREQuency 2.5E+02") < sent.index("OUTPut:LOADing MATChed")
     settings = gen.read_settings()

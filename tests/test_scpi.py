@@ -20,7 +20,9 @@ from acqd import scpi
 # --- numbers out -----------------------------------------------------------------------------------
 
 def test_format_number_is_nr3_shortest_round_trip():
-    # IEEE 488.2 §8.7.4 NR3: mantissa, 'E', signed exponent. 0.0015 written with the fewest digits.
+    # IEEE 488.2 §8.7.4 NR3: mantissa, 'E', signed exponent, 0.0015 written with the fewest mantissa digits.
+    # NR3 fixes no exponent width: the two-digit exponent ("E-03", not "E-3") is our convention (Python's
+    # "E" format), which every NR3 reader accepts; the check below pins that convention, not the standard.
     assert scpi.format_number(0.0015) == "1.5E-03"
     assert scpi.format_number(-2e6) == "-2E+06"
     rng = random.Random(7)
@@ -248,3 +250,161 @@ def test_error_entry_round_trip_with_quotes() -> None:
     entry = scpi.format_error_entry(-113, text)
     assert entry == '-113,"Undefined header;""FREQU"""'
     assert scpi.parse_error_entry(entry) == (-113, text)
+
+
+# --- gaps that mutation testing found (python tools/mutate.py scpi) -------------------------------------
+
+class Widget:
+    """A value of a type no SCPI data element has."""
+
+
+@pytest.mark.parametrize("call, bad", [
+    (scpi.mnemonic_forms, "FREQ-1"),
+    (scpi.mnemonic_forms, "FREquency2X"),
+    (scpi.format_number, "1.0"),
+    (scpi.format_number, math.inf),
+    (scpi.format_int, 2.5),
+    (scpi.format_bool, "yes"),
+    (scpi.format_value, "A B"),
+    (scpi.parse_nr1, "1.5"),
+    (scpi.parse_number, "1.0.0"),
+    (scpi.parse_bool, "maybe"),
+    (scpi.parse_string, '"a"b"'),
+    (scpi.parse_string, "'open"),
+    (scpi.split_reply, '1;"open'),
+    (scpi.parse_error_entry, "-113"),
+])
+def test_errors_name_the_refused_text(call, bad):
+    # The project's rule for bad input: one clear error that names what was refused. Every refusal of the
+    # SCPI layer quotes the offending text as Python's repr() writes it.
+    with pytest.raises(ValueError) as caught:
+        call(bad)
+    assert repr(bad) in str(caught.value)
+
+
+def test_errors_say_what_was_expected():
+    with pytest.raises(ValueError, match="numeric value"):
+        scpi.format_number("x")
+    with pytest.raises(ValueError, match="type Widget"):
+        scpi.format_value(Widget())
+    with pytest.raises(ValueError, match=r"'FREQ \{f\}', value f: .*nan"):
+        scpi.command("FREQ {f}", f=float("nan"))
+    with pytest.raises(ValueError, match="optional V suffix") as caught:
+        scpi.parse_value_with_unit("ten volts", "V")
+    assert "'ten volts'" in str(caught.value)
+    for suffix, unit in (("V", ""), ("HZ", "V"), ("QV", "V")):
+        with pytest.raises(scpi.SuffixError, match=repr(suffix)):
+            scpi.suffix_multiplier(suffix, unit)
+    # IEEE 488.2 §8.7.9: the header's digit says how many length digits follow; the message repeats it.
+    with pytest.raises(scpi.BlockError, match="must be 3 ASCII digits"):
+        scpi.parse_block_header(b"#3a1b")
+
+
+def test_enum_entries_outside_table_notation_match_whole_and_caselessly():
+    # IEEE 488.2 §7.7.1.2: character program data is case-insensitive; an entry such as REAL,32 is no
+    # mnemonic in table notation, so only its whole text matches.
+    assert scpi.format_enum("real,32", ["REAL,32", "INT,8"]) == "REAL,32"
+    assert scpi.format_enum("INT,8", ["REAL,32", "INT,8"]) == "INT,8"
+    with pytest.raises(ValueError):
+        scpi.format_enum("REAL", ["REAL,32", "INT,8"])
+
+
+def test_command_template_follows_python_format_string_rules():
+    # Python's format-string syntax (library reference, "Format String Syntax"): a doubled brace is a
+    # literal brace, and placeholders after it are still filled.
+    assert scpi.command("DISP:DATA {{0}} {v}", v=2) == "DISP:DATA {0} 2"
+
+
+@pytest.mark.parametrize("text, expected", [("INF", math.inf), ("inf", math.inf), ("NINF", -math.inf),
+                                            ("ninf", -math.inf), (" Inf ", math.inf)])
+def test_infinity_mnemonics(text, expected):
+    # SCPI-1999 Vol 1 §7.2.1.5: INFinity and NINFinity are accepted as numeric data, in any case (from memory).
+    assert scpi.parse_number(text) == expected
+
+
+def test_not_a_number_mnemonic():
+    assert math.isnan(scpi.parse_number("NAN")) and math.isnan(scpi.parse_number("nan"))
+
+
+@pytest.mark.parametrize("text, expected", [("1", True), ("ON", True), ("on", True), ("0", False),
+                                            ("OFF", False), ("off\n", False)])
+def test_parse_bool_every_form(text, expected):
+    # SCPI-1999 Vol 1 §7.3: booleans are 1/0 in replies, ON/OFF accepted in any case.
+    assert scpi.parse_bool(text) is expected
+
+
+def test_string_response_edge_cases():
+    # IEEE 488.2 §8.7.8: string response data may be empty (two quotes), in double or single quotes.
+    assert scpi.parse_string('""') == "" and scpi.parse_string("''") == ""
+    assert scpi.parse_string("'it''s'") == "it's"
+    # Bare text is returned stripped, whatever letters it starts and ends with.
+    for bare in ("XAX", "X", "CH1", "SQU"):
+        assert scpi.parse_string(f" {bare} ") == bare
+    with pytest.raises(ValueError, match="unterminated"):
+        scpi.parse_string("'open")
+
+
+def test_longest_definite_block_header():
+    # IEEE 488.2 §8.7.9: the length digit is 1-9, so a 9-digit length (up to 999,999,999 bytes) is legal.
+    payload = bytes(100_000_000)
+    assert scpi.encode_block(payload)[:11] == b"#9100000000"
+    with pytest.raises(scpi.BlockError, match="999999999"):
+        scpi.encode_block(_Huge())
+
+
+class _Huge(bytes):
+    """Reports a length of 10^9 bytes without holding them: the first size that needs ten digits."""
+
+    def __len__(self) -> int:
+        return 1_000_000_000
+
+
+@pytest.mark.parametrize("block, payload", [
+    (b"#15hello", b"hello"), (b"#15hello\n", b"hello"), (b"#15hello\r\n", b"hello"),
+    (b"#10", b""), (b"#0hello\n", b"hello"), (b"#0\n", b""),
+])
+def test_decode_block_boundaries(block, payload):
+    # IEEE 488.2 §8.7.9 definite length (#<n><length><bytes>) and §8.7.10 indefinite (#0<bytes>NL^END);
+    # the response message terminator (§8.5: NL, which a CR may precede on many transports — common
+    # practice) may follow a definite block.
+    assert scpi.decode_block(block) == payload
+
+
+@pytest.mark.parametrize("block", [b"#15hell", b"#15hel", b"#16hello", b"#15hello!", b"#15helloo\n",
+                                   b"#15hello\n\n", b"#0hello", b"#25hello"])
+def test_decode_block_refuses_short_and_long_blocks(block):
+    # §8.7.9: exactly <length> bytes follow the header; one byte short or long is a malformed block, never
+    # a payload of another length.
+    with pytest.raises(scpi.BlockError):
+        scpi.decode_block(block)
+
+
+def test_sample_format_names_allow_space_after_comma():
+    # IEEE 488.2 §7.4.2: white space may follow the comma that separates program data.
+    assert scpi.sample_format("INTeger, 16") == "INT,16"
+    assert scpi.sample_format("real , 32") == "REAL,32"
+
+
+def test_decoded_samples_are_native_dtype():
+    # The docstring's promise: REAL,32 → native float32, INT,16 → native int16; ASCii of nothing → empty.
+    real = scpi.decode_samples(struct.pack(">2f", 1.5, -2.0), "REAL,32")
+    assert real.dtype == np.dtype("=f4") and real.tolist() == [1.5, -2.0]
+    codes = scpi.decode_samples(struct.pack("<2h", -3, 300), "INT,16", "SWAP")
+    assert codes.dtype == np.dtype("=i2") and codes.tolist() == [-3, 300]
+    empty = scpi.decode_samples(b"", "ASC")
+    assert empty.shape == (0,) and empty.dtype == np.float64
+
+
+@pytest.mark.parametrize("text, problem", [
+    ('DISP:TEXT "ready; armed"', None), ("DISP:TEXT 'a;b'", None), ('DISP:TEXT "say ""x;y"""', None),
+    ("DISP:TEXT 'it''s'", None), ('DISP:TEXT "a\'b"', None), ("*RST", None),
+    ('DISP:TEXT "ready"; *RST', "holds ';'"), ("FREQ 1;VOLT 2", "holds ';'"), ("FREQ 1\nOUTP ON", "one line"),
+    ("FREQ 1\r", "one line"), ('DISP:TEXT "open', "unclosed"), ("DISP:TEXT 'open", "unclosed"),
+    ("DISP:TEXT 'a\"", "unclosed"),
+])
+def test_single_message_problem(text, problem):
+    # IEEE 488.2 §7.4.1: ';' separates program message units and NL ends the message, except inside string
+    # program data (§7.7.5), which is quoted with " or ' and doubles its own quote; the other quote character
+    # is plain text inside it.
+    found = scpi.single_message_problem(text)
+    assert (found is None) if problem is None else (problem in found)

@@ -1,8 +1,8 @@
 """The simulated generator, the SCPI-1999 digitiser and the second-dialect scope, over TCP through pyvisa-py.
 
-External references: the series RLC step response (STANDARDS.md §5, textbook), the generator's matched-load
-doubling (STANDARDS.md §5 bench cautions), scipy (first-order low-pass, frequency response), numpy's
-statistics, pyvisa's own block decoder, and IEEE 488.2 §8.7.9 for the block layout.
+External references: the series RLC step response (Nilsson & Riedel, Electric Circuits ch. 8), the
+generator's matched-load doubling (the divider of a 50 Ω source; common practice), scipy (first-order
+low-pass, frequency response), numpy's statistics, pyvisa's own block decoder, and IEEE 488.2 §8.7.9 for the block layout.
 """
 
 from __future__ import annotations
@@ -32,7 +32,8 @@ R_TOTAL, L_H, C_F = DEMO_DUT["r_ohm"] + 50.0, DEMO_DUT["l_h"], DEMO_DUT["c_f"]
 
 
 def rlc_step_v_c(t: np.ndarray, volts: float) -> np.ndarray:
-    """Series RLC capacitor voltage for a step of ``volts`` from rest at t = 0 (STANDARDS.md §5, textbook)."""
+    """Series RLC capacitor voltage for a step of ``volts`` from rest at t = 0 (Nilsson & Riedel, Electric Circuits
+    ch. 8)."""
     wn = 1 / np.sqrt(L_H * C_F)
     zeta = R_TOTAL / 2 * np.sqrt(C_F / L_H)
     sigma, wd = zeta * wn, wn * np.sqrt(1 - zeta**2)
@@ -127,8 +128,8 @@ def test_out_of_range_levels_are_refused_and_nothing_changes(quiet):
 
 @pytest.mark.parametrize("load, expected", [("HIGHZ", 1.0), ("MATC", 2.0)])
 def test_matched_load_setting_doubles_the_open_circuit_voltage(quiet, load, expected):
-    # STANDARDS.md §5 bench caution: set for a 50 ohm load, the capacitor settles at about twice the
-    # displayed level, because no DC current flows into a series RLC.
+    # Common practice (the divider of a 50 ohm source): set for a 50 ohm load, the capacitor settles at about
+    # twice the displayed level, because no DC current flows into a series RLC.
     _, gen, scope, _ = quiet
     square(gen, 0.0, 1.0, load=load)
     assert capture(scope, time_s=5e-3, range_v=1.5, offset_v=1.0) == "1"

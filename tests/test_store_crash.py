@@ -7,7 +7,7 @@ knows exactly which records were acknowledged. Three kinds of kill:
 * at seeded random moments (SIGKILL from the test);
 * at named steps inside a write, rotation or recovery (the store's ``ACQD_STORE_KILL_AT`` hook);
 * at the N-th ``pwrite64`` system call, i.e. inside HDF5's own data and metadata writes (strace's
-  syscall fault injection, the method of shared/STORAGE-NOTES.md).
+  syscall fault injection, ``-e inject=pwrite64:signal=SIGKILL:when=N``, strace(1) manual page).
 
 Every time: the store opens after recovery, every acknowledged record is there and bit-identical (its
 samples regenerated from the seed and its CRC-32 recomputed with zlib), and the recovered files are plain

@@ -8,7 +8,7 @@ Public API::
         reader.index(); reader.read(i); reader.analyses(); len(reader); list(reader)
     export_csv(reader, i, "out.csv")
 
-Why this layout - the evidence is in shared/STORAGE-NOTES.md (measured on a machine like ours):
+Why this layout - the measurements are quoted in DEVELOPERS.md, "The store" (taken on a machine like ours):
 
 * Pre-created, resizable, chunked datasets (one chunk per channel of a record), plus a parallel index
   dataset of fixed-size rows. Precisely timed kills lost acknowledged records in about a fifth of the

@@ -1,6 +1,6 @@
 """A kill switch at named steps of a write, so crash tests can stop the writer exactly where it hurts.
 
-Kills at random moments almost never land between two steps of a write (STORAGE-NOTES.md measured it),
+Kills at random moments almost never land between two steps of a write (measured; DEVELOPERS.md, "The store"),
 so the store calls ``step(name)`` between the steps that matter. With the environment variable
 ``ACQD_STORE_KILL_AT=NAME@K`` set, the K-th time (default 1) the process reaches step NAME it sends
 itself SIGKILL: no cleanup, no flush, exactly like a crash. The variable is read once, when this module

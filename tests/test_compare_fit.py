@@ -305,7 +305,11 @@ def _decay_fit(seed: int, t: np.ndarray):
     """One least-squares fit of y = a·e^(−t/τ) to white Gaussian noise of known σ (a linear, τ on ln)."""
     rng = np.random.default_rng(seed)
     y = DECAY_A * np.exp(-t / DECAY_TAU_S) + rng.normal(0.0, DECAY_SIGMA, t.size)
-    return fit_parameters(lambda v: (y - v["a"] * np.exp(-t / v["tau_s"])) / DECAY_SIGMA,
+    def jacobian(v: dict[str, float]) -> np.ndarray:  # ∂r/∂a, ∂r/∂τ of r = (y − a·e^(−t/τ))/σ, by hand
+        decay = np.exp(-t / v["tau_s"])
+        return np.column_stack([-decay, -v["a"] * decay * t / v["tau_s"] ** 2]) / DECAY_SIGMA
+
+    return fit_parameters(lambda v: (y - v["a"] * np.exp(-t / v["tau_s"])) / DECAY_SIGMA, jacobian,
                           {"a": Free(1.9, log=False, scale=DECAY_A_SCALE), "tau_s": Free(0.85, log=True, unit="s")},
                           (), "noise")
 

@@ -30,9 +30,14 @@ def test_acqd_sim_serves_every_transport_and_json_names_every_resource(visa):
         assert list(served) == ["socket", "hislip", "vxi11"]
         assert all(sorted(r) == ["divscope", "generator", "scope"] for r in served.values())
         # pyvisa-py parses each resource string and reaches the same instrument through each transport.
-        identities = {transport: {name: visa(resource).query("*IDN?") for name, resource in resources.items()}
-                      for transport, resources in served.items()}
+        sessions = {transport: {name: visa(resource) for name, resource in resources.items()}
+                    for transport, resources in served.items()}
+        identities = {transport: {name: s.query("*IDN?") for name, s in opened.items()}
+                      for transport, opened in sessions.items()}
         assert identities["hislip"] == identities["vxi11"] == identities["socket"]
+        for opened in sessions.values():  # closed while the server is there (a VXI-11 or HiSLIP close to a
+            for s in opened.values():     # server that has gone waits out its timeout)
+                s.close()
         assert served["hislip"]["scope"].split("::")[2].startswith("hislip1,")
         assert served["vxi11"]["scope"].split("::")[2] == "inst1"
         proc.send_signal(signal.SIGTERM)

@@ -7,26 +7,18 @@ References: pyvisa-py's clients for each transport (its resource-string parser a
 
 from __future__ import annotations
 
-import json
-import os
-import signal
 import socket
-import subprocess
-import sys
 
 import pytest
 
 from acqd.cli import main
 from lanbench import served_beside_the_socket
+from served import serving
 
 
 @pytest.mark.timeout(60)
 def test_acqd_sim_serves_every_transport_and_json_names_every_resource(visa):
-    proc = subprocess.Popen([sys.executable, "-m", "acqd", "sim", "--transport", "all", "--hislip-port", "0",
-                             "--no-portmapper", "--json"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                            env={**os.environ, "PYTHONUNBUFFERED": "1"})
-    try:
-        served = json.loads(proc.stdout.readline())
+    with serving("sim", "--transport", "all", "--hislip-port", "0", "--no-portmapper") as served:
         assert list(served) == ["socket", "hislip", "vxi11"]
         assert all(sorted(r) == ["divscope", "generator", "scope"] for r in served.values())
         # pyvisa-py parses each resource string and reaches the same instrument through each transport.
@@ -40,12 +32,6 @@ def test_acqd_sim_serves_every_transport_and_json_names_every_resource(visa):
                 s.close()
         assert served["hislip"]["scope"].split("::")[2].startswith("hislip1,")
         assert served["vxi11"]["scope"].split("::")[2] == "inst1"
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=20) == 0
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
 
 
 def test_a_hislip_port_in_use_is_one_line_naming_the_option(capsys):

@@ -8,12 +8,7 @@ client) and equal CRC-32 checksums (zlib's CRC-32 over the float64 samples, ``Re
 
 from __future__ import annotations
 
-import json
-import os
 import re
-import signal
-import subprocess
-import sys
 import tomllib
 from pathlib import Path
 
@@ -30,6 +25,7 @@ from acqd.sim.bench import SimBench, SimBenchConfig
 from acqd.sim.replay import ReplayBench
 from acqd.steptest import run_step_test
 from acqd.store import RecordStore, open_records
+from served import serving
 
 DIGITISER = Path(__file__).resolve().parents[1] / "drivers" / "scpi-digitiser.toml"  # REAL,32 big-endian
 N_NIGHT = 3
@@ -331,16 +327,6 @@ def test_a_missing_store_or_record_is_one_line(night, tmp_path, capsys):
 @pytest.mark.timeout(60)
 def test_acqd_replay_json_serves_until_sigterm(night, visa):
     path, _ = night
-    proc = subprocess.Popen([sys.executable, "-m", "acqd", "replay", str(path), "--json", "--records", "0,2"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                            env={**os.environ, "PYTHONUNBUFFERED": "1"})
-    try:
-        resources = json.loads(proc.stdout.readline())
+    with serving("replay", str(path), "--records", "0,2") as resources:
         assert sorted(resources) == ["generator", "scope"]
         assert visa(resources["scope"]).query("*IDN?").startswith("acqd-sim,DIG,REPLAY-night,")
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=20) == 0
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()

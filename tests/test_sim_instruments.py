@@ -7,12 +7,7 @@ low-pass, frequency response), numpy's statistics, pyvisa's own block decoder, a
 
 from __future__ import annotations
 
-import json
-import os
-import signal
 import socket
-import subprocess
-import sys
 import time
 
 import numpy as np
@@ -26,6 +21,7 @@ from acqd.cli.sim import load_config
 from acqd.errors import ConfigError
 from acqd.sim import frontend
 from acqd.sim.bench import DEMO_DUT, SimBenchConfig
+from served import serving
 
 # The demo DUT with the generator's 50 ohm: R_total = 77 ohm, L = 3.3 mH, C = 68 nF.
 R_TOTAL, L_H, C_F = DEMO_DUT["r_ohm"] + 50.0, DEMO_DUT["l_h"], DEMO_DUT["c_f"]
@@ -494,19 +490,10 @@ def test_cli_refuses_a_non_loopback_host(capsys):
 
 @pytest.mark.timeout(60)
 def test_acqd_sim_json_serves_until_sigterm(visa):
-    proc = subprocess.Popen([sys.executable, "-m", "acqd", "sim", "--json"], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env={**os.environ, "PYTHONUNBUFFERED": "1"})
-    try:
-        resources = json.loads(proc.stdout.readline())
+    with serving("sim") as resources:
         assert sorted(resources) == ["divscope", "generator", "scope"]
         models = {name: visa(resource).query("*IDN?").split(",")[1] for name, resource in resources.items()}
         assert models == {"generator": "FG", "scope": "DIG", "divscope": "DIVSCOPE"}
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=20) == 0
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
 
 
 def test_opc_query_answers_at_once_on_a_fresh_scope(sim_bench, visa) -> None:

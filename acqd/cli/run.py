@@ -93,7 +93,7 @@ def _step_tests(profile: Profile, bench: Bench, count: int, keeper: _Keeper, pro
     """``count`` step tests, configured once (``Applied``), each kept by ``keeper``; after a failed one the bench
     is reached again first. Returns (step tests not acquired, why the run stopped early or "")."""
     applied = Applied()  # the run configures once: later step tests send only what the plan changes
-    task = progress.add_task(Text(profile.name), total=count)
+    task = progress.add_task(profile.name, total=count)
     failed = in_a_row = 0
     for _ in range(count):
         try:

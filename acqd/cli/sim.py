@@ -90,10 +90,19 @@ def load_config(profile: str | None) -> SimBenchConfig:
 
 
 def _check_host(args: argparse.Namespace) -> None:
+    """Loopback only, unless ``--allow-remote``, and then said loudly; never an IPv6 address, which a VISA
+    resource string (``TCPIP0::host::port::SOCKET``, "::"-separated) cannot name, so nothing could open it."""
+    if ":" in args.host:
+        raise ConfigError("command line", "--host", f"{args.host} is an IPv6 address, which a VISA resource "
+                                                    "string cannot name; use 127.0.0.1 (or an IPv4 address)")
     if not (is_loopback(args.host) or args.allow_remote):
         raise ConfigError("command line", "--host", f"{args.host} is not a loopback address; the simulated "
-                                                    "instruments obey anyone who reaches them, so only 127.0.0.1, "
-                                                    "::1 or localhost are served unless --allow-remote is given")
+                                                    "instruments obey anyone who reaches them, so only 127.0.0.1 "
+                                                    "or localhost are served unless --allow-remote is given")
+    if not is_loopback(args.host):
+        where = "every interface of this machine" if args.host in ("0.0.0.0", "") else f"the interface {args.host}"
+        print(f"acqd: warning: serving on {where} with no authentication: anyone who can reach these ports can "
+              f"drive the simulated instruments and read what they serve", file=sys.stderr)
 
 
 def run(args: argparse.Namespace) -> int:

@@ -34,6 +34,9 @@ class RecordStore:
         self._paths = StorePaths(path)
         if not self._paths.directory.is_dir():
             raise ConfigError(str(path), "", f"directory {self._paths.directory} does not exist")
+        if self.path.exists() and not self.path.is_file():
+            raise ConfigError(str(path), "", "is not a regular file (a device, a pipe or a socket); name a store, "
+                                             "e.g. data/night.h5 (segments go beside it)")
         if self.path.is_file() and not is_overview(self.path):
             raise ConfigError(
                 str(path), "", f"is an existing file; name a store (segments {self._paths.stem}.NNNNNN.h5 go beside it)"

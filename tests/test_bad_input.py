@@ -70,6 +70,12 @@ CASES: dict[str, tuple[Callable[[Path], list[str]], tuple[str, ...]]] = {
                                       ("bench.generator.backend", "@py")),
     "--count 0": (lambda tmp: ["run", str(DEMO), "-n", "0"], ("--count", "1 or more")),
     "not a store": (_not_a_store, ("notes.h5", "not an acqd record file")),
+    "--records 0-999999999": (lambda tmp: ["run", str(DEMO), "--replay", str(tmp / "s.h5"), "--records",
+                                           "0-999999999"], ("--records", "at most 1,000,000")),
+    "a 10 MB channel name": (_profile(('name = "v_c"', f'name = "{"v" * 10_000_000}"')),
+                             ("acquisition.channels.CH3.name", "at most 4,096")),
+    "ESC in a channel name": (_profile(('name = "v_c"', 'name = "v\\u001b]0;owned\\u0007c"')),
+                              ("acquisition.channels.CH3.name", "control character")),
 }
 
 

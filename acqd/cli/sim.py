@@ -51,6 +51,7 @@ def _serving_options(parser: argparse.ArgumentParser) -> None:
                         help="allow listening on an address other than loopback")
 
 
+MAX_SELECTED = 1_000_000  # records one --records/--full list may name (a range of 10^9 took 11 GB)
 _SELECTION_ITEM = re.compile(r"\s*([0-9]+)\s*(?:-\s*([0-9]+)\s*)?")
 
 
@@ -63,8 +64,11 @@ def parse_selection(text: str, option: str = "--records") -> list[int]:
         if not match or (match.group(2) is not None and int(match.group(2)) < int(match.group(1))):
             raise ConfigError("command line", option, f"{item.strip()!r} in {text!r}: write record indices and "
                                                  "rising ranges separated by commas, e.g. 0,2,5-9")
-        first = int(match.group(1))
-        indices.extend(range(first, int(match.group(2) or first) + 1))
+        first, last = int(match.group(1)), int(match.group(2) or match.group(1))
+        if len(indices) + last - first + 1 > MAX_SELECTED:  # checked before the list is built: 0-999999999
+            raise ConfigError("command line", option, f"{text[:40]!r} selects over {MAX_SELECTED:,} records; "
+                                                      f"at most {MAX_SELECTED:,} at a time")
+        indices.extend(range(first, last + 1))
     return indices
 
 

@@ -120,13 +120,13 @@ class Table:
             return value
         if not isinstance(value, str) or not value.strip():
             raise self.error(key, f"must be a non-empty string, not {_shown(value)}")
+        if choices is not None and value not in (allowed := list(choices)):
+            raise self.error(key, f"must be one of {', '.join(allowed)}, not {_shown(value)}")
         if len(value) > MAX_STRING_CHARS:
             raise self.error(key, f"{len(value):,} characters; at most {MAX_STRING_CHARS:,}")
         if any(ch in _CONTROL for ch in value):
             raise self.error(key, "contains a control character (such as ESC); only printable text, tabs and "
                                   "newlines are allowed")
-        if choices is not None and value not in (allowed := list(choices)):
-            raise self.error(key, f"must be one of {', '.join(allowed)}, not {_shown(value)}")
         return value
 
     def moment(self, key: str, default: Any = None) -> datetime | None:

@@ -10,15 +10,18 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import ipaddress
 import json
 import re
 import signal
 import sys
 
-from ..config import load_toml
+from ..config import Table, load_toml
 from ..errors import ConfigError
 from ..sim.bench import TABLE, ServedBench, SimBench, SimBenchConfig
+from ..sim.faults import TABLE as FAULTS_TABLE
+from ..sim.faults import FaultRates
 from .common import add_command, add_json, add_store
 
 
@@ -30,6 +33,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                                      "describes. Profiles with kind = \"visa\" can then name its resources.")
     parser.add_argument("profile", nargs="?", metavar="PROFILE",
                         help=f"a profile whose [{TABLE}] table describes the bench (default: the demo bench)")
+    parser.add_argument("--faults", metavar="FILE", default=None,
+                        help=f"a TOML file of fault rates and a seed, as in [{FAULTS_TABLE}] (replaces the "
+                             "profile's): rehearse a bad night")
     _serving_options(parser)
     parser.set_defaults(func=run)
 
@@ -111,7 +117,11 @@ def _check_host(args: argparse.Namespace) -> None:
 
 def run(args: argparse.Namespace) -> int:
     _check_host(args)
-    bench = SimBench(load_config(args.profile), host=args.host)
+    config = load_config(args.profile)
+    if args.faults is not None:
+        data, text = load_toml(args.faults)
+        config = dataclasses.replace(config, faults=FaultRates.from_table(Table(data, args.faults, "", text)))
+    bench = SimBench(config, host=args.host)
     asyncio.run(_serve(bench, args.json, "acqd sim", "the simulated bench"))
     return 0
 

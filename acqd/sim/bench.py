@@ -24,6 +24,7 @@ drift         table  a slow change of one DUT parameter (below); absent: the DUT
 fixture       table  a fixture of N units behind a simulated switch (acqd.sim.fixture); also made, with its
                      defaults, when the profile has a [batch]. The units replace ``dut`` (each is ``dut``
                      with its parts scattered) and a drift is not applied to them
+faults        table  random faults at stated rates, with a seed (acqd.sim.faults lists the kinds)
 
 ``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
 known drift in minutes:
@@ -71,6 +72,7 @@ from .plant import Plant
 from .scope import N_CHANNELS, DigitiserScope
 from .server import InstrumentServer, LoopThread, SCPIError, SCPIInstrument
 from .divscope import DivScope
+from .faults import FaultPlan, FaultRates
 from .fixture import Fixture, FixtureConfig
 from .switch import SimSwitch
 
@@ -125,6 +127,7 @@ class SimBenchConfig:
     wiring: Mapping[str, str] = field(default_factory=lambda: dict(DEMO_WIRING))
     drift: DriftConfig | None = None
     fixture: FixtureConfig | None = None
+    faults: FaultRates | None = None
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
     drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
@@ -164,6 +167,7 @@ class SimBenchConfig:
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
             fixture=FixtureConfig.from_table(table.table("fixture", {}), batch_units)
             if table.has("fixture") or batch_units is not None else None,
+            faults=FaultRates.from_table(table.table("faults")) if table.has("faults") else None,
         )
         table.done()
         return cls(**values, source=source)
@@ -358,4 +362,7 @@ class SimBench(ServedBench):
         if self.fixture is not None:
             self.switch = SimSwitch(log_path=self.config.command_log)
             instruments["switch"] = self.switch
+        if self.config.faults is not None:  # each instrument its own stream of draws under the one seed
+            for stream, instrument in enumerate(instruments.values()):
+                instrument.faults.plan = FaultPlan(self.config.faults, stream)
         return instruments

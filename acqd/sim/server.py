@@ -538,6 +538,9 @@ def parse_unit(text: str) -> MessageUnit:
 # Instruments
 # ---------------------------------------------------------------------------------------------------
 
+SHORT_READ_PAUSE_S = 0.05  # between the two halves of a reply under the short_read fault
+
+
 @dataclass
 class Faults:
     """Fault injection, switched per instrument (attributes may be set from any thread)."""
@@ -546,6 +549,19 @@ class Faults:
     drop_mid_block: bool = False        # a reply holding a block is cut half-way and the connection closed
     garble_block_header: bool = False   # the block header's digit count is replaced by a non-digit
     trigger_never: bool = False         # an armed acquisition never sees its trigger
+    plan: Any = None                    # acqd.sim.faults.FaultPlan: random faults at stated rates
+
+    def hit(self, kind: str) -> bool:
+        """Whether fault ``kind`` (acqd.sim.faults.KINDS) strikes now: switched on here, or drawn by the plan."""
+        switched = {"cut_block": self.drop_mid_block, "garble_block": self.garble_block_header,
+                    "trigger_never": self.trigger_never}.get(kind, False)
+        return switched or (self.plan is not None and self.plan.draw(kind))
+
+    def delay_s(self, kind: str) -> float:
+        """The wait before a reply: the switched-on delay, or the plan's when ``kind`` strikes."""
+        if self.reply_delay_s > 0:
+            return self.reply_delay_s
+        return self.plan.rates.reply_delay_s if self.plan is not None and self.plan.draw(kind) else 0.0
 
 
 class LoggedMessage(NamedTuple):
@@ -875,8 +891,18 @@ class _Connection:
         while (message := await self.messages.get()) is not None:
             if self.messages.empty():
                 self.input_arrived.clear()
+            faults = self.instrument.faults
+            if faults.hit("connection_reset"):  # between messages: this one is never read
+                self.writer.transport.abort()
+                return
+            if faults.hit("power_cycle"):
+                self.instrument.power_cycle()
             try:
+                if "*OPC?" in message.upper() and (delay := faults.delay_s("slow_opc")):
+                    await self._wait(asyncio.sleep(delay), True)
                 replies = await self.instrument.execute(message, self._wait)
+                if faults.hit("error_entry"):
+                    self.instrument.push_error(-200, "execution error (injected fault)")
                 if replies:
                     await self._send(replies)
             except QueryInterrupted:
@@ -907,18 +933,23 @@ class _Connection:
 
     async def _send(self, replies: list[Reply]) -> None:
         faults = self.instrument.faults
-        if faults.reply_delay_s > 0:
-            await self._wait(asyncio.sleep(faults.reply_delay_s), True)
+        if delay := faults.delay_s("reply_delay"):
+            await self._wait(asyncio.sleep(delay), True)
         parts = [r.encode("ascii") if isinstance(r, str) else r for r in replies]
         block_at = self._first_block_offset(replies, parts)
         data = b";".join(parts) + b"\n"
-        if block_at is not None and faults.garble_block_header:
+        if block_at is not None and faults.hit("garble_block"):
             data = data[:block_at + 1] + b"?" + data[block_at + 2:]
-        if block_at is not None and faults.drop_mid_block:
+        if block_at is not None and faults.hit("cut_block"):
             self.writer.write(data[: block_at + (len(data) - block_at) // 2])
             await self.writer.drain()
             self.writer.transport.abort()
             raise _ConnectionLost
+        if len(data) > 1 and faults.hit("short_read"):  # the reply in two writes, a moment apart
+            self.writer.write(data[: len(data) // 2])
+            await self.writer.drain()
+            await asyncio.sleep(SHORT_READ_PAUSE_S)
+            data = data[len(data) // 2:]
         self.writer.write(data)
         await self.writer.drain()
 

@@ -2,7 +2,7 @@
 disk, then every acknowledged record checked.
 
     python bench/soak.py [--records 1000] [--chunk 25] [--random-kills 30] [--chosen-kills 30]
-                         [--disk-mib 48] [--seed 1] [--work DIR]
+                         [--disk-mib MIB] [--seed 1] [--work DIR]
 
 The simulated bench runs in this process (so its fault counts and the generator's output state can be
 read at any moment), behind a `kind = "visa"` profile; `[bench.simulated.faults]`-style rates are set so
@@ -48,6 +48,8 @@ DEMO = ROOT / "profiles" / "demo-bridge-filter.toml"
 RATES = {"seed": 0, "reply_delay_s": 3.0, "trigger_never": 0.02, "cut_block": 0.005, "garble_block": 0.005,
          "power_cycle": 0.002, "connection_reset": 0.001, "error_entry": 0.001, "reply_delay": 0.001,
          "slow_opc": 0.005, "short_read": 0.01}
+RECORD_MIB = 0.55  # one demo record in a segment (4 channels × 15,000 float64 samples and its metadata)
+MAX_STALLED_RUNS = 5
 WRITE_POINTS = ("append:blobs", "append:samples", "append:data-flushed", "append:index", "append:flushed",
                 "append:synced", "rotate:created", "rotate:closed", "rotate:renamed")
 
@@ -154,7 +156,9 @@ def soak(args: argparse.Namespace, disk: Path | None) -> None:
         filled_at = rng.randrange(len(kills) + 1) if disk is not None else None
         filler: Path | None = None
         runs = 0
-        while len(tally.acknowledged) < args.records or kills:
+        stalled = 0  # runs in a row that acknowledged nothing: a soak that cannot go on says so and ends
+        while (len(tally.acknowledged) < args.records or kills) and stalled < MAX_STALLED_RUNS:
+            before = len(tally.acknowledged)
             if filled_at is not None and runs == filled_at and filler is None:
                 filler = fill(disk)
             kind = kills.pop() if kills else ""
@@ -163,6 +167,7 @@ def soak(args: argparse.Namespace, disk: Path | None) -> None:
             ending = one_run(profile, args.chunk, tally, kill_after, kill_at)
             tally.output_after[f"{'on' if bench.generator.settings.output_on else 'off'} ({ending})"] += 1
             runs += 1
+            stalled = stalled + 1 if len(tally.acknowledged) == before and not kind and filler is None else 0
             if filler is not None and filled_at is not None:
                 filler.unlink()
                 filled_at = None  # freed once; the next run recovers the store
@@ -181,6 +186,8 @@ def soak(args: argparse.Namespace, disk: Path | None) -> None:
     print(f"runs: {runs}; ended: {', '.join(f'{k} {v}' for k, v in sorted(tally.endings.items()))}")
     print(f"generator output when a run had ended: {', '.join(f'{k} {v}' for k, v in sorted(tally.output_after.items()))}")
     print(f"disk filled and freed: {'yes' if disk is not None else 'no (no tmpfs could be mounted here)'}")
+    if stalled >= MAX_STALLED_RUNS:
+        print(f"stopped early: {MAX_STALLED_RUNS} runs in a row stored nothing")
     if not args.work:
         shutil.rmtree(work, ignore_errors=True)
 
@@ -191,11 +198,15 @@ def main() -> None:
     parser.add_argument("--chunk", type=int, default=25, help="step tests per acqd run")
     parser.add_argument("--random-kills", type=int, default=30)
     parser.add_argument("--chosen-kills", type=int, default=30)
-    parser.add_argument("--disk-mib", type=int, default=48, help="tmpfs size for the store; 0: no full disk")
+    parser.add_argument("--disk-mib", type=int, default=None,
+                        help="tmpfs size for the store (default: room for every record and a segment's copy); "
+                             "0: no full disk")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--work", default=None, help="folder for the profile (kept); default a temporary one")
     parser.add_argument("--mounted", default=None, help=argparse.SUPPRESS)  # set inside the namespace
     args = parser.parse_args()
+    if args.disk_mib is None:
+        args.disk_mib = int((args.records * 1.3 + 2 * args.chunk) * RECORD_MIB) + 16
     if args.mounted is not None:
         soak(args, Path(args.mounted))
     elif args.disk_mib and shutil.which("unshare"):

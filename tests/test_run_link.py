@@ -174,3 +174,21 @@ def test_step_tests_that_keep_failing_stop_the_run(tmp_path: Path, capsys) -> No
     (line,) = err.strip().splitlines()
     assert f"{run.MAX_FAILURES_IN_A_ROW} step tests in a row not acquired" in line
 
+
+
+def test_a_run_switches_off_an_output_a_killed_run_left_on_before_anything_else(linked, visa) -> None:
+    bench, _, profile = linked
+    session = visa(bench.resources["generator"])
+    session.write("OUTPut ON")  # as a run SIGKILLed mid-measurement leaves it
+    assert session.query("OUTPut?") in ("1", "ON")
+    bench.scope.start_logging()
+    started = time.monotonic()
+    assert main(["run", str(profile), "-n", "1"]) == 0
+    # Housekeeping that drives nothing: who answers (*IDN?), the status emptied and read (*CLS, SYSTem:ERRor?,
+    # *ESR?; IEEE 488.2 §10.3, §11.5.1; SCPI-1999 Vol 2 §21.8).
+    quiet = ("*IDN?", "*CLS", "SYSTEM:ERROR?", "*ESR?")
+    first_off = next(e.monotonic_s for e in bench.generator.command_log
+                     if e.monotonic_s > started and e.text.upper() == "OUTPUT OFF")
+    first_scope_setting = next(e.monotonic_s for e in bench.scope.command_log
+                               if e.monotonic_s > started and e.text.upper() not in quiet)
+    assert first_off < first_scope_setting  # the output goes off before the scope is set up at all

@@ -89,4 +89,6 @@ def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench
             role = open_instrument(resource, plan.driver, backend=plan.backend, timeout_s=plan.timeout_s)
             stack.callback(role.close)
             roles.append(role)
+            if plan.role == "generator":  # off before anything else is opened: a run or daemon killed
+                role.output(False)        # (SIGKILL) in the middle of a step test left it on
         yield Bench(roles[0], roles[1], sim, roles[2] if len(roles) > 2 else None)

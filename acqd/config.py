@@ -39,6 +39,13 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         raise ConfigError(str(path), "", f"not valid TOML: {exc}") from None
 
 
+# Every string a TOML file gives (names, units, descriptions, templates): a stated bound, so a 10 MB channel
+# name is refused at once instead of spending minutes in the terminal; and no control character, which
+# would reach the terminal in every line that names it (tab and newline are text).
+MAX_STRING_CHARS = 4096
+_CONTROL = frozenset(chr(c) for c in (*range(0x20), *range(0x7F, 0xA0)) if chr(c) not in "\t\n")
+
+
 class Table:
     """One TOML table being validated; call ``done()`` last so leftover (unknown) keys are reported."""
 
@@ -115,6 +122,11 @@ class Table:
             raise self.error(key, f"must be a non-empty string, not {_shown(value)}")
         if choices is not None and value not in (allowed := list(choices)):
             raise self.error(key, f"must be one of {', '.join(allowed)}, not {_shown(value)}")
+        if len(value) > MAX_STRING_CHARS:
+            raise self.error(key, f"{len(value):,} characters; at most {MAX_STRING_CHARS:,}")
+        if any(ch in _CONTROL for ch in value):
+            raise self.error(key, "contains a control character (such as ESC); only printable text, tabs and "
+                                  "newlines are allowed")
         return value
 
     def moment(self, key: str, default: Any = None) -> datetime | None:

@@ -100,15 +100,19 @@ def writer_main(argv: list[str]) -> None:
                 time.sleep(pause_s)
 
 
-def check_store(store: Path, acked: dict[int, int], *, recover: bool, since: int = 0) -> int:
-    """Acknowledged records are present and exact; stored records from ``since`` on verify. Returns the count."""
+def check_store(store: Path, acked: dict[int, int], *, recover: bool, since: int = 0, damaged: int = 0) -> int:
+    """Acknowledged records are present and exact; stored records from ``since`` on verify. Returns the count.
+    With ``damaged`` segments set aside, the reader names each and their indices stay a hole, never reused."""
     if recover:
         RecordStore(store).close()  # the writer's start-up recovery, then a clean close
         assert not [p.name for p in store.parent.iterdir() if LEFTOVER.search(p.name)]
     with open_records(store) as reader:
-        assert reader.notes == []
+        assert len(reader.notes) == damaged and all("damaged segment" in n for n in reader.notes)
         stored = [s.index for s in reader.index()]
-        assert stored == list(range(len(stored)))  # a crash never leaves a hole in the indices
+        if damaged:
+            assert stored == sorted(set(stored))
+        else:
+            assert stored == list(range(len(stored)))  # a crash never leaves a hole in the indices
         assert set(acked) <= set(stored)
         for index in stored[since:]:
             record = reader.read(index)  # read() checks the samples against the stored CRC-32
@@ -230,11 +234,13 @@ def test_unopenable_live_segment_is_moved_aside_not_deleted(tmp_path: Path) -> N
         assert [s.index for s in reader.index()] == [0, 1, 2, 3]
         assert len(reader.notes) == 1 and "s.000001.h5.part: skipped" in reader.notes[0]
     with RecordStore(store) as writer:
-        assert len(writer.notes) == 1
+        assert len(writer.notes) == 2
         assert "cannot be read" in writer.notes[0] and "moved aside to s.000001.h5.damaged" in writer.notes[0]
-        writer.append(make_record(99))
+        # Nobody can tell which indices it held: a whole segment's worth is skipped, none given out twice.
+        assert "indices 4 to 1003 are left unused" in writer.notes[1]
+        assert writer.append(make_record(99)) == 1004
     assert (tmp_path / "s.000001.h5.damaged").read_bytes() == wrecked  # kept byte for byte
-    check_store(store, {i: acked[i] for i in range(4)}, recover=False)
+    check_store(store, {i: acked[i] for i in range(4)}, recover=False, damaged=1)
 
 
 def test_damage_before_the_last_row_keeps_the_original(tmp_path: Path) -> None:
@@ -248,8 +254,13 @@ def test_damage_before_the_last_row_keeps_the_original(tmp_path: Path) -> None:
         fh.write(b"\xff" * 8)
     with RecordStore(store) as writer:
         assert "recovered 1 record(s)" in writer.notes[0] and "kept as s.000000.h5.damaged" in writer.notes[0]
+        # Records 1-4 were acknowledged, only their copy in the .damaged file is left: never reuse their indices.
+        assert writer.append(make_record(99)) > max(acked)
     assert (tmp_path / "s.000000.h5.damaged").exists()
-    check_store(store, {0: acked[0]}, recover=False)
+    with open_records(store) as reader:  # the damaged segment is named with what it holds
+        (note,) = [n for n in reader.notes if "s.000000.h5.damaged" in n]
+        assert f"holds {len(acked)} record(s) (records 0-{len(acked) - 1})" in note
+    check_store(store, {0: acked[0]}, recover=False, damaged=1)
 
 
 @pytest.mark.skipif(STRACE is None, reason="strace not installed")

@@ -14,7 +14,7 @@ import sys
 
 from .. import __version__
 from ..errors import AcqdError
-from .common import Parser
+from .common import Parser, printable
 
 # Sub-command modules, in the order of the data path; each owns its own flags.
 COMMAND_MODULES = ("sim", "instruments", "plan", "run", "store", "compare", "report", "campaign", "fleet")
@@ -39,7 +39,7 @@ def main(argv: list[str] | None = None) -> int:
         sys.stdout.flush()  # a closed pipe shows here, inside the handler, not in the interpreter's exit
         return status
     except AcqdError as exc:
-        print(f"acqd: error: {exc}", file=sys.stderr)
+        print(f"acqd: error: {printable(str(exc))}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("acqd: interrupted", file=sys.stderr)

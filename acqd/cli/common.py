@@ -12,7 +12,7 @@ option (argparse lets an exception that is not a ``ValueError`` or ``TypeError``
 from __future__ import annotations
 
 import argparse
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, NoReturn
@@ -20,6 +20,7 @@ from typing import Any, NoReturn
 import numpy as np
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+from rich.segment import Segment
 from rich.text import Text
 from rich.theme import Theme
 
@@ -43,15 +44,35 @@ _PLAIN_PROGRESS = Theme({"bar.back": "dim", "bar.complete": "bold", "bar.finishe
 
 
 # -- the console ---------------------------------------------------------------------------------------
+# Control characters (C0 but tab and newline, DEL, C1) from files or instruments must not reach a terminal:
+# an ESC in a stored channel name could recolour it, move the cursor or set the window title. Shown as "?".
+_UNPRINTABLE = {c: "?" for c in (*range(0x00, 0x20), *range(0x7F, 0xA0)) if chr(c) not in "\t\n"}
+
+
+def printable(text: str) -> str:
+    """``text`` with every control character but tab and newline shown as "?" (for plain ``print``s)."""
+    return text.translate(_UNPRINTABLE)
+
+
+class _Console(Console):
+    """rich's console, but the text of every segment it writes goes through ``printable`` first — every
+    table, ``Text`` and progress line, whatever built it. Segments rich marks as control (its own cursor
+    moves) and the style codes it adds around text are left alone."""
+
+    def _render_buffer(self, buffer: Iterable[Segment]) -> str:
+        return super()._render_buffer(Segment(text if control else printable(text), style, control)
+                                      for text, style, control in buffer)
+
+
 def console(wide: bool = False, **options: Any) -> Console:
     """The one way a sub-command gets a console: rich's automatic highlighting off (it coloured dates and
     words such as "record(s)" as if they were code), emoji codes off, monochrome progress bars. Markup
     stays on for the tables that use it; text from files and instruments goes in as ``rich.text.Text``
     (markup would swallow a ``[dut]``). ``wide``: in a pipe or a log file, wide enough that
     tables do not wrap; in a terminal its own width."""
-    made = Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, **options)
+    made = _Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, **options)
     if wide and not made.is_terminal and "width" not in options:
-        made = Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, width=160, **options)
+        made = _Console(highlight=False, emoji=False, theme=_PLAIN_PROGRESS, width=160, **options)
     return made
 
 
@@ -60,8 +81,9 @@ def progress_bar(out: Console) -> Iterator[Progress]:
     """rich's progress bar (what, a bar, N of M, time so far) on ``out``, gone when done, and off when
     ``out`` is not a terminal, so a pipe or a log file gets no control codes. Lines printed through
     ``progress.console`` meanwhile appear above it."""
-    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-                  console=out, transient=True, disable=not out.is_terminal) as progress:
+    with Progress(TextColumn("{task.description}", markup=False),  # a profile's name is text, not markup
+                  BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(), console=out, transient=True,
+                  disable=not out.is_terminal) as progress:
         yield progress
 
 

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING
 from rich.text import Text
 
 from ..errors import ConfigError
-from .common import add_command, add_last, add_out, add_profile, add_store, console, progress_bar
+from .common import add_command, add_last, add_out, add_profile, add_store, console, printable, progress_bar
 from .sim import parse_selection
 
 if TYPE_CHECKING:
@@ -67,7 +67,7 @@ def run_report(args: argparse.Namespace) -> int:
 
     with open_records(args.store) as reader:
         for note in reader.notes:
-            print(f"acqd: note: {note}", file=sys.stderr)
+            print(f"acqd: note: {printable(note)}", file=sys.stderr)
         numbers = [s.index for s in reader.index()]
         if not numbers:
             raise ConfigError(args.store, "", "holds no records")

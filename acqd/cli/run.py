@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import signal
+import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import contextmanager
@@ -12,6 +13,7 @@ from types import FrameType
 from typing import Any
 
 from rich.console import Console
+from rich.progress import Progress
 from rich.text import Text
 
 from .. import scpi
@@ -70,32 +72,80 @@ def run_command(args: argparse.Namespace) -> int:
     out = args.out or profile.output.file
     screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
-    failed = 0
     with sigterm_raises(), open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         _open_switch(bench, screen)
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         out.parent.mkdir(parents=True, exist_ok=True)
-        applied = Applied()  # the run configures once: later step tests send only what the plan changes
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
                 progress_bar(screen) as progress, _Keeper(judge, store, progress.console) as keeper, \
                 output_guard(bench.generator):  # left first: the output goes off before the last records are kept
-            task = progress.add_task(profile.name, total=args.count)
-            for _ in range(args.count):
-                try:
-                    records = run_step_test(profile, bench.generator, bench.scope, applied)
-                except InstrumentError as exc:
-                    failed += 1
-                    keeper.wait()  # the lines stay in the order of the step tests
-                    progress.console.print(Text(f"not acquired: {exc}"))
-                    progress.advance(task)
-                    continue
-                keeper.keep(records)
-                progress.advance(task)
+            failed, aborted = _step_tests(profile, bench, args.count, keeper, progress)
         stored = keeper.stored
     screen.print(Text(f"{stored} record(s) stored in {out}; {failed} step test(s) not acquired"))
+    if aborted:
+        raise InstrumentError("acqd run", aborted)
     return 1 if failed else 0
+
+
+def _step_tests(profile: Profile, bench: Bench, count: int, keeper: _Keeper, progress: Progress) -> tuple[int, str]:
+    """``count`` step tests, configured once (``Applied``), each kept by ``keeper``; after a failed one the bench
+    is reached again first. Returns (step tests not acquired, why the run stopped early or "")."""
+    applied = Applied()  # the run configures once: later step tests send only what the plan changes
+    task = progress.add_task(profile.name, total=count)
+    failed = in_a_row = 0
+    for _ in range(count):
+        try:
+            records = run_step_test(profile, bench.generator, bench.scope, applied)
+        except InstrumentError as exc:
+            failed, in_a_row = failed + 1, in_a_row + 1
+            keeper.wait()  # the lines stay in the order of the step tests
+            progress.console.print(Text(f"not acquired: {exc}"))
+            progress.advance(task)
+            if in_a_row >= MAX_FAILURES_IN_A_ROW:
+                return failed, f"{in_a_row} step tests in a row not acquired; the run is stopped"
+            aborted = _reach_again(bench, progress.console)
+            if aborted:
+                return failed, aborted
+            continue
+        in_a_row = 0
+        keeper.keep(records)
+        progress.advance(task)
+    return failed, ""
+
+
+# A dropped link: after a step test fails, both instruments are reached again before the next one, the
+# generator first (its output off is the first command it gets), waiting 0.5 s, 1 s, 2 s, ... (doubling,
+# as the daemon's retry_backoff_s does) up to 4 s between attempts, 10 attempts (about 30 s) in all.
+RECONNECT_FIRST_DELAY_S, RECONNECT_MAX_DELAY_S, RECONNECT_ATTEMPTS = 0.5, 4.0, 10
+MAX_FAILURES_IN_A_ROW = 5  # step tests not acquired one after another (each reached again) stop the run
+
+
+def _reach_again(bench: Bench, out: Console) -> str:
+    """After a failed step test: the generator's output off as the first thing it is sent once it answers
+    again, then the scope answering; "" when both do, else why the run stops (the attempts used up).
+    Said on the console when it took more than one attempt, so a dropped link is visible in the run's log."""
+    delays_s = [min(RECONNECT_FIRST_DELAY_S * 2 ** k, RECONNECT_MAX_DELAY_S) for k in range(RECONNECT_ATTEMPTS)]
+    last: InstrumentError | None = None
+    for attempt, delay_s in enumerate([0.0, *delays_s]):
+        time.sleep(delay_s)
+        try:
+            bench.generator.output(False)  # reopens a closed session: *IDN? (who answers), then output off
+            bench.scope.status_changed()
+        except InstrumentError as exc:
+            if last is None:
+                out.print(Text(f"lost the bench ({exc}); reconnecting, up to {RECONNECT_ATTEMPTS} attempts"))
+            last = exc
+            bench.generator.close()  # a fresh connection for the next attempt: a broken one never recovers
+            bench.scope.close()
+            continue
+        if last is not None:
+            out.print(Text(f"the bench answers again after {sum(delays_s[:attempt]):g} s; "
+                           f"generator output switched off first"))
+        return ""
+    return (f"the bench did not answer again within {sum(delays_s):g} s ({RECONNECT_ATTEMPTS} attempts; last: "
+            f"{last}); the run is stopped and the generator output may still be on")
 
 
 class _Keeper:

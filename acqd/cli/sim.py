@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import ipaddress
 import json
 import re
@@ -20,12 +21,14 @@ import signal
 import sys
 from collections.abc import Callable
 
-from ..config import load_toml
+from ..config import Table, load_toml
 from ..errors import ConfigError
 from ..sim.bench import TABLE, TRANSPORTS, ServedBench, Serving, SimBench, SimBenchConfig
 from ..sim.hislip import DEFAULT_PORT as HISLIP_PORT
 from ..sim.oncrpc import PORTMAPPER_PORT
 from ..sim.serving import ListenError
+from ..sim.faults import TABLE as FAULTS_TABLE
+from ..sim.faults import FaultRates
 from .common import add_command, add_json, add_store
 
 
@@ -37,6 +40,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                                      "describes. Profiles with kind = \"visa\" can then name its resources.")
     parser.add_argument("profile", nargs="?", metavar="PROFILE",
                         help=f"a profile whose [{TABLE}] table describes the bench (default: the demo bench)")
+    parser.add_argument("--faults", metavar="FILE", default=None,
+                        help=f"a TOML file of fault rates and a seed, as in [{FAULTS_TABLE}] (replaces the "
+                             "profile's): rehearse a bad night")
     _serving_options(parser)
     parser.set_defaults(func=run)
 
@@ -98,6 +104,7 @@ def serving(args: argparse.Namespace, default: str) -> Serving:
                    portmapper_port=None if args.no_portmapper else PORTMAPPER_PORT)
 
 
+MAX_SELECTED = 1_000_000  # records one --records/--full list may name (a range of 10^9 took 11 GB)
 _SELECTION_ITEM = re.compile(r"\s*([0-9]+)\s*(?:-\s*([0-9]+)\s*)?")
 
 
@@ -110,8 +117,11 @@ def parse_selection(text: str, option: str = "--records") -> list[int]:
         if not match or (match.group(2) is not None and int(match.group(2)) < int(match.group(1))):
             raise ConfigError("command line", option, f"{item.strip()!r} in {text!r}: write record indices and "
                                                  "rising ranges separated by commas, e.g. 0,2,5-9")
-        first = int(match.group(1))
-        indices.extend(range(first, int(match.group(2) or first) + 1))
+        first, last = int(match.group(1)), int(match.group(2) or match.group(1))
+        if len(indices) + last - first + 1 > MAX_SELECTED:  # checked before the list is built: 0-999999999
+            raise ConfigError("command line", option, f"{text[:40]!r} selects over {MAX_SELECTED:,} records; "
+                                                      f"at most {MAX_SELECTED:,} at a time")
+        indices.extend(range(first, last + 1))
     return indices
 
 
@@ -137,15 +147,27 @@ def load_config(profile: str | None) -> SimBenchConfig:
 
 
 def _check_host(args: argparse.Namespace) -> None:
+    """Loopback only, unless ``--allow-remote``, and then said loudly; never an IPv6 address, which a VISA
+    resource string (``TCPIP0::host::port::SOCKET``, "::"-separated) cannot name, so nothing could open it."""
+    if ":" in args.host:
+        raise ConfigError("command line", "--host", f"{args.host} is an IPv6 address, which a VISA resource "
+                                                    "string cannot name; use 127.0.0.1 (or an IPv4 address)")
     if not (is_loopback(args.host) or args.allow_remote):
         raise ConfigError("command line", "--host", f"{args.host} is not a loopback address; the simulated "
-                                                    "instruments obey anyone who reaches them, so only 127.0.0.1, "
-                                                    "::1 or localhost are served unless --allow-remote is given")
+                                                    "instruments obey anyone who reaches them, so only 127.0.0.1 "
+                                                    "or localhost are served unless --allow-remote is given")
+    if not is_loopback(args.host):
+        where = "every interface of this machine" if args.host in ("0.0.0.0", "") else f"the interface {args.host}"
+        print(f"acqd: warning: serving on {where} with no authentication: anyone who can reach these ports can "
+              f"drive the simulated instruments and read what they serve", file=sys.stderr)
 
 
 def run(args: argparse.Namespace) -> int:
     _check_host(args)
     config = load_config(args.profile)
+    if args.faults is not None:
+        data, text = load_toml(args.faults)
+        config = dataclasses.replace(config, faults=FaultRates.from_table(Table(data, args.faults, "", text)))
     bench = SimBench(config, host=args.host, serving=serving(args, config.transport))
     asyncio.run(_serve(bench, args.json, "acqd sim", "the simulated bench"))
     return 0

@@ -15,7 +15,7 @@ from ..display import edge_label, si, stimulus_text
 from ..store import RecordReader, RecordSummary, export_csv, open_records
 from ..units import records_by_unit
 from .common import (add_command, add_json, add_out, add_record, add_store, chosen_record, console, utc_text,
-                     verdict_text)
+                     printable, verdict_text)
 from .results import renderables
 
 
@@ -52,7 +52,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _open(path: str) -> RecordReader:
     reader = open_records(path)
     for note in reader.notes:
-        print(f"acqd: note: {note}", file=sys.stderr)
+        print(f"acqd: note: {printable(note)}", file=sys.stderr)
     return reader
 
 

@@ -23,6 +23,9 @@ from ..record import EDGES, LOADS, TIMING_SETTING, Channel, Record, Stimulus, Ti
 
 GRID_TOLERANCE = 0.01  # share of a sample interval a time may stray from the uniform grid
 
+# Sanity bound on every CSV value (seconds, volts, amperes): far beyond any bench signal, far below where the
+# comparator's sums of squares overflow float64 (a CSV of values near 1e308 gave an NRMSE of inf).
+MAX_MAGNITUDE = 1e9
 
 def metadata_path(csv_path: str | Path) -> Path:
     """Where ``acqd export`` puts a CSV's metadata: the same name with ``.json`` added."""
@@ -67,6 +70,9 @@ def _read_table(path: str) -> tuple[list[tuple[str, str | None]], np.ndarray]:
                 raise ConfigError(path, where, f"{cell.strip()!r} is not a number") from None
             if not math.isfinite(value):
                 raise ConfigError(path, where, f"{cell.strip()!r} is not a finite number")
+            if abs(value) > MAX_MAGNITUDE:
+                raise ConfigError(path, where, f"{cell.strip()!r} is beyond ±{MAX_MAGNITUDE:g}: no sampled time, "
+                                               f"voltage or current is that large (their squares would overflow)")
             data[line - 2, j] = value
     return columns, data
 

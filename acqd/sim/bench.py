@@ -26,6 +26,7 @@ transport     str    how the embedded bench serves its instruments: socket (defa
 fixture       table  a fixture of N units behind a simulated switch (acqd.sim.fixture); also made, with its
                      defaults, when the profile has a [batch]. The units replace ``dut`` (each is ``dut``
                      with its parts scattered) and a drift is not applied to them
+faults        table  random faults at stated rates, with a seed (acqd.sim.faults lists the kinds)
 
 ``[bench.simulated.drift]`` makes the DUT age while the bench runs, so a campaign can be tried against a
 known drift in minutes:
@@ -77,6 +78,7 @@ from .rawsocket import SocketServer
 from .serving import LoopThread, TransportServer
 from .vxi11 import Vxi11Server
 from .divscope import DivScope
+from .faults import FaultPlan, FaultRates
 from .fixture import Fixture, FixtureConfig
 from .switch import SimSwitch
 
@@ -132,6 +134,7 @@ class SimBenchConfig:
     drift: DriftConfig | None = None
     fixture: FixtureConfig | None = None
     transport: str = "socket"
+    faults: FaultRates | None = None
     source: str = "demo bench"
     model: StateSpace = field(init=False, compare=False, repr=False)  # built from ``dut``
     drift_nominal: float | None = field(init=False, compare=False, repr=False)  # the drifting parameter at t = 0
@@ -172,6 +175,7 @@ class SimBenchConfig:
             fixture=FixtureConfig.from_table(table.table("fixture", {}), batch_units)
             if table.has("fixture") or batch_units is not None else None,
             transport=table.string("transport", d.transport, choices=TRANSPORTS),
+            faults=FaultRates.from_table(table.table("faults")) if table.has("faults") else None,
         )
         table.done()
         return cls(**values, source=source)
@@ -401,4 +405,7 @@ class SimBench(ServedBench):
         if self.fixture is not None:
             self.switch = SimSwitch(log_path=self.config.command_log)
             instruments["switch"] = self.switch
+        if self.config.faults is not None:  # each instrument its own stream of draws under the one seed
+            for stream, instrument in enumerate(instruments.values()):
+                instrument.faults.plan = FaultPlan(self.config.faults, stream)
         return instruments

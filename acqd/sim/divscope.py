@@ -66,7 +66,7 @@ class DivScope(SCPIInstrument):
     def __init__(self, bench: Bench, rng: np.random.Generator) -> None:
         super().__init__()
         self.bench = bench
-        self.acquisition = Acquisition(bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
+        self.acquisition = Acquisition(bench, rng, lambda: self.faults.hit("trigger_never"), self.operation_complete)
 
     def make_settings(self) -> DivSettings:
         return DivSettings()

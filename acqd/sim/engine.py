@@ -539,6 +539,9 @@ def parse_unit(text: str) -> MessageUnit:
 # Instruments
 # ---------------------------------------------------------------------------------------------------
 
+SHORT_READ_PAUSE_S = 0.05  # between the two halves of a reply under the short_read fault
+
+
 @dataclass
 class Faults:
     """Fault injection, switched per instrument (attributes may be set from any thread)."""
@@ -547,6 +550,19 @@ class Faults:
     drop_mid_block: bool = False        # a reply holding a block is cut half-way and the connection closed
     garble_block_header: bool = False   # the block header's digit count is replaced by a non-digit
     trigger_never: bool = False         # an armed acquisition never sees its trigger
+    plan: Any = None                    # acqd.sim.faults.FaultPlan: random faults at stated rates
+
+    def hit(self, kind: str) -> bool:
+        """Whether fault ``kind`` (acqd.sim.faults.KINDS) strikes now: switched on here, or drawn by the plan."""
+        switched = {"cut_block": self.drop_mid_block, "garble_block": self.garble_block_header,
+                    "trigger_never": self.trigger_never}.get(kind, False)
+        return switched or (self.plan is not None and self.plan.draw(kind))
+
+    def delay_s(self, kind: str) -> float:
+        """The wait before a reply: the switched-on delay, or the plan's when ``kind`` strikes."""
+        if self.reply_delay_s > 0:
+            return self.reply_delay_s
+        return self.plan.rates.reply_delay_s if self.plan is not None and self.plan.draw(kind) else 0.0
 
 
 class LoggedMessage(NamedTuple):
@@ -830,11 +846,14 @@ class Response:
     message terminator is NL with END; the transport adds END its own way).
 
     ``tag`` is what the transport passed with the program message that produced it (HiSLIP: the message
-    ID); ``cut_at`` (fault injection) says to send only that many bytes and then drop the connection."""
+    ID). Fault injection: ``cut_at`` says to send only that many bytes and then drop the connection (0 with
+    no data: the connection reset between messages); ``pause_at`` to send the reply in two writes split there,
+    ``SHORT_READ_PAUSE_S`` apart (a transport that frames its messages may send it whole)."""
 
     data: bytes
     tag: Any = None
     cut_at: int | None = None
+    pause_at: int | None = None
 
 
 class DeviceCleared(Exception):
@@ -913,11 +932,24 @@ class MessageExchange:
             message, tag = item
             if self._messages.empty():
                 self._input_arrived.clear()
+            faults = self.instrument.faults
+            if faults.hit("connection_reset"):  # between messages: this one is never read
+                try:
+                    await self.respond(Response(b"", tag, cut_at=0))
+                except (ConnectionLost, ConnectionError):
+                    pass
+                return
+            if faults.hit("power_cycle"):
+                self.instrument.power_cycle()
             try:
+                if "*OPC?" in message.upper() and (delay := faults.delay_s("slow_opc")):
+                    await self._wait(asyncio.sleep(delay), True)
                 replies = await self.instrument.execute(message, self._wait)
+                if faults.hit("error_entry"):
+                    self.instrument.push_error(-200, "execution error (injected fault)")
                 if replies:
-                    if self.instrument.faults.reply_delay_s > 0:
-                        await self._wait(asyncio.sleep(self.instrument.faults.reply_delay_s), True)
+                    if delay := faults.delay_s("reply_delay"):
+                        await self._wait(asyncio.sleep(delay), True)
                     await self.respond(self._response(replies, tag))
             except QueryInterrupted:
                 self.instrument.push_error(-410, "a new message arrived before the reply was sent")
@@ -956,10 +988,11 @@ class MessageExchange:
         parts = [r.encode("ascii") if isinstance(r, str) else r for r in replies]
         block_at = _first_block_offset(replies, parts)
         data = b";".join(parts) + b"\n"
-        if block_at is not None and faults.garble_block_header:
+        if block_at is not None and faults.hit("garble_block"):
             data = data[:block_at + 1] + b"?" + data[block_at + 2:]
-        cut_at = block_at + (len(data) - block_at) // 2 if block_at is not None and faults.drop_mid_block else None
-        return Response(data, tag, cut_at)
+        cut_at = block_at + (len(data) - block_at) // 2 if block_at is not None and faults.hit("cut_block") else None
+        pause_at = len(data) // 2 if cut_at is None and len(data) > 1 and faults.hit("short_read") else None
+        return Response(data, tag, cut_at, pause_at)
 
 
 def _first_block_offset(replies: list[Reply], parts: list[bytes]) -> int | None:

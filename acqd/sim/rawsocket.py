@@ -11,7 +11,7 @@ import asyncio
 import functools
 from collections.abc import Mapping
 
-from .engine import ConnectionLost, MessageExchange, Response, SCPIInstrument
+from .engine import SHORT_READ_PAUSE_S, ConnectionLost, MessageExchange, Response, SCPIInstrument
 from .serving import Listener, ack_promptly
 
 
@@ -71,5 +71,11 @@ async def _send(writer: asyncio.StreamWriter, response: Response) -> None:
         await writer.drain()
         writer.transport.abort()
         raise ConnectionLost
-    writer.write(response.data)
+    data = response.data
+    if response.pause_at is not None:  # a short read: the client sees the reply arrive in two parts
+        writer.write(data[:response.pause_at])
+        await writer.drain()
+        await asyncio.sleep(SHORT_READ_PAUSE_S)
+        data = data[response.pause_at:]
+    writer.write(data)
     await writer.drain()

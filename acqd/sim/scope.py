@@ -352,7 +352,7 @@ class DigitiserScope(SCPIInstrument):
     def make_acquisition(self, rng: np.random.Generator | None) -> Acquisition:
         """The engine that fills a record when armed: here the plant behind the bench's generator. Replay
         substitutes one that serves stored records, keeping this command set (``acqd.sim.replay``)."""
-        return Acquisition(self.bench, rng, lambda: self.faults.trigger_never, self.operation_complete)
+        return Acquisition(self.bench, rng, lambda: self.faults.hit("trigger_never"), self.operation_complete)
 
     def make_settings(self) -> DigitiserSettings:
         return DigitiserSettings()

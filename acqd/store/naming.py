@@ -110,3 +110,8 @@ def sync_directory(directory: Path) -> None:
         os.fsync(fd)
     finally:
         os.close(fd)
+
+
+def os_reason(exc: OSError) -> str:
+    """``No space left on device``: the system's words for an errno, not HDF5's multi-line report of it."""
+    return os.strerror(exc.errno) if exc.errno else str(exc).splitlines()[0]

@@ -14,9 +14,9 @@ from typing import Any, NamedTuple
 
 from ..errors import ConfigError
 from ..record import Record
-from .naming import LIVE, Segment, StorePaths
+from .naming import DAMAGED, LIVE, Segment, StorePaths
 from .overview import is_overview
-from .recovery import examine
+from .recovery import damaged_extent, examine
 from .schema import row_summary
 from .segment import SegmentView
 
@@ -57,9 +57,29 @@ class RecordReader:
         self._views: dict[int, SegmentView] = {}
         self.notes: list[str] = []
         self.refresh()
-        if not self._views and not self.path.is_file() and not self._paths.lock.exists():  # a writer made it
+        damaged = self._damaged_notes()
+        self.notes += damaged
+        if not self._views and not damaged and not self.path.is_file() and not self._paths.lock.exists():
             segments = f"{self._paths.stem}.NNNNNN.h5[.part]"
             raise ConfigError(str(path), "", f"no such record store: no file and no segments {segments} there")
+
+    def _damaged_notes(self) -> list[str]:
+        """One note per ``.damaged`` segment beside the store, with how many records it holds: recovery set
+        it aside for a person, so its records are not listed, but nobody may miss that it is there."""
+        if self.path.is_file() and not is_overview(self.path):
+            return []
+        notes = []
+        for seg in self._paths.segments():
+            if seg.state != DAMAGED:
+                continue
+            extent = damaged_extent(seg.path)
+            if isinstance(extent, str):
+                notes.append(f"{seg.path}: damaged segment, not listed; it cannot be opened ({extent})")
+                continue
+            first, rows = extent
+            span = f" (records {first}-{first + rows - 1})" if first is not None and rows else ""
+            notes.append(f"{seg.path}: damaged segment, not listed; its index holds {rows} record(s){span}")
+        return notes
 
     def _segments(self) -> list[Segment]:
         if self.path.is_file() and not is_overview(self.path):

@@ -25,19 +25,25 @@ import subprocess
 import sys
 from pathlib import Path
 
-from ..errors import AcqdError
+from ..errors import AcqdError, ConfigError
 from . import faults
-from .naming import CREATING, DAMAGED, LIVE, RECOVERING, Segment, StorePaths, replace_durably, sync_directory
+from .naming import CREATING, DAMAGED, LIVE, RECOVERING, Segment, StorePaths, os_reason, replace_durably, sync_directory
 from .schema import encode
 from .segment import SegmentView, SegmentWriter, create_segment
 
 log = logging.getLogger("acqd.store")
 CHILD_TIMEOUT_S = 600.0
 _CHILD = "import sys; from acqd.store.recovery import main; sys.exit(main(sys.argv[1:]))"
+NOT_A_STORE, CANNOT_WRITE = 3, 4  # the child's exit statuses besides 0
+
+
+class _CannotWrite(Exception):
+    """The child could read the segment but not write the copy (a full disk): never a reason to demote it."""
 
 
 def _run_child(*args: str) -> tuple[dict | None, str]:
-    """Run this module in a child process; (its JSON report, "") or (None, why it failed)."""
+    """Run this module in a child process; (its JSON report, "") or (None, why it failed). A failure to
+    write the copy raises ``_CannotWrite`` instead, because it says nothing about the segment itself."""
     env = {k: v for k, v in os.environ.items() if k != faults.ENV}
     try:
         proc = subprocess.run(
@@ -45,18 +51,30 @@ def _run_child(*args: str) -> tuple[dict | None, str]:
         )
     except subprocess.TimeoutExpired:
         return None, f"opening it did not finish within {CHILD_TIMEOUT_S:.0f} s"
+    lines = proc.stderr.strip().splitlines()
+    why = lines[-1] if lines else f"exit status {proc.returncode}"
     if proc.returncode == 0:
         return json.loads(proc.stdout), ""
+    if proc.returncode == CANNOT_WRITE:
+        raise _CannotWrite(why)
     if proc.returncode < 0:
         return None, f"the process opening it died of signal {-proc.returncode}"
-    lines = proc.stderr.strip().splitlines()
-    return None, lines[-1] if lines else f"exit status {proc.returncode}"
+    return None, why
 
 
 def examine(path: Path) -> str:
     """Why ``path`` (a live segment) cannot be opened safely, or "" if it can; readers ask before opening it."""
     report, why = _run_child("examine", str(path))
     return "" if report is not None else why
+
+
+def damaged_extent(path: Path) -> tuple[int | None, int] | str:
+    """What a ``.damaged`` segment holds, opened in a child: (its first verified row's record index or None,
+    rows in its index), or why it cannot be opened at all."""
+    report, why = _run_child("examine", str(path))
+    if report is None:
+        return why
+    return report["first_index"], report["index_rows"]
 
 
 def recover_store(paths: StorePaths) -> list[str]:
@@ -85,7 +103,13 @@ def recover_store(paths: StorePaths) -> list[str]:
 def _recover_segment(paths: StorePaths, seg: Segment) -> str:
     copy, final = paths.with_state(seg.number, RECOVERING), paths.finished(seg.number)
     damaged = paths.with_state(seg.number, DAMAGED)
-    report, why = _run_child("copy", str(seg.path), str(copy))
+    try:
+        report, why = _run_child("copy", str(seg.path), str(copy))
+    except _CannotWrite as exc:  # the .part is left as it is: acqd ls still reads it, the next writer retries
+        copy.unlink(missing_ok=True)
+        problem = (f"{seg.path.name} cannot be recovered: writing its copy failed ({exc}); it is kept as it is "
+                   f"(acqd ls reads it); free space and open the store again")
+        raise ConfigError(str(paths.path), "", problem) from None
     if report is None:
         copy.unlink(missing_ok=True)
         replace_durably(seg.path, damaged)
@@ -115,13 +139,19 @@ def _copy_verified(part: Path, dest: Path) -> dict:
         except AcqdError:
             break
         enc = encode(record, int(record.index), str(dest))
-        if writer is None:
-            writer = create_segment(dest, enc.layout, swmr=False)
-        writer.write(enc, fsync=False)
+        try:
+            if writer is None:
+                writer = create_segment(dest, enc.layout, swmr=False)
+            writer.write(enc, fsync=False)
+        except OSError as exc:
+            raise _CannotWrite(os_reason(exc)) from None
         kept += 1
     if writer is not None:
-        writer.sync()
-        writer.close()
+        try:
+            writer.sync()
+            writer.close()
+        except OSError as exc:
+            raise _CannotWrite(os_reason(exc)) from None
     return {"kept": kept, "index_rows": view.index_rows, "sample_chunks": view.sample_chunks}
 
 
@@ -131,11 +161,15 @@ def main(argv: list[str]) -> int:
     try:
         if command == "examine":
             view = SegmentView(Path(paths[0]), live=True)
-            report = {"rows": len(view.rows)}
+            first = int(view.rows["index"][0]) if len(view.rows) else None
+            report = {"rows": len(view.rows), "first_index": first, "index_rows": view.index_rows}
         else:
             report = _copy_verified(Path(paths[0]), Path(paths[1]))
     except AcqdError as exc:
         print(exc, file=sys.stderr)
-        return 3
+        return NOT_A_STORE
+    except _CannotWrite as exc:
+        print(exc, file=sys.stderr)
+        return CANNOT_WRITE
     print(json.dumps(report))
     return 0

@@ -268,8 +268,61 @@ def row_summary(row: np.void) -> dict[str, Any]:
     }
 
 
+def rows_fit(rows: np.ndarray, n_channels: int, n_samples: int, blob_end: int) -> np.ndarray:
+    """Per row: its numbers fit the segment it is in - the sample block's shape, blobs inside the blob
+    dataset, a pre-trigger count within the record, text fields in UTF-8.
+
+    Why beside the CRCs: a CRC-32 catches damage, but anyone can recompute it; a hostile or hand-edited
+    file must still fail here with a note, not claim 10^12 samples and make a reader allocate them."""
+    ok = (rows["n_channels"] == n_channels) & (rows["n_samples"] == n_samples)
+    ok &= (rows["pretrigger_samples"] >= 0) & (rows["pretrigger_samples"] <= rows["n_samples"])
+    ok &= (rows["averages"] >= 1) & np.isfinite(rows["sample_interval_s"]) & (rows["sample_interval_s"] > 0)
+    for part in BLOB_PARTS:
+        offset, length = rows[f"{part}_offset"], rows[f"{part}_length"]
+        ok &= (offset >= 0) & (length >= 0) & (length <= blob_end) & (offset <= blob_end - length)
+    for name in TEXT_SIZES:
+        ok &= np.array([_is_utf8(bytes(v)) for v in rows[name]], dtype=bool)
+    return ok
+
+
+def _is_utf8(raw: bytes) -> bool:
+    try:
+        raw.decode("utf-8")
+    except UnicodeDecodeError:
+        return False
+    return True
+
+
 def decode_blob(raw: bytes) -> Any:
+    """The JSON value of a blob; ``ValueError`` (JSON's and UTF-8's errors both are) if it is not one."""
     return json.loads(raw.decode("utf-8"))
+
+
+_TEXT_KEYS = ("name", "unit", "source")
+
+
+def blob_problem(part: str, value: Any, n_channels: int) -> str:
+    """What is wrong with the decoded ``part`` of a record for ``build_record``, or "" - the shapes the
+    writer stores: a list of ``n_channels`` channels with text name, unit and source; text identities;
+    objects for settings and (or null) dut and analysis; text for the profile."""
+    if part == "channels":
+        if not isinstance(value, list) or len(value) != n_channels:
+            return f"must be a list of {n_channels} channel(s) (the sample block's), not {_kind(value)}"
+        if not all(isinstance(c, dict) and all(isinstance(c.get(k), str) for k in _TEXT_KEYS) for c in value):
+            return "every channel must have text name, unit and source"
+    elif part == "identities":
+        if not isinstance(value, dict) or not all(isinstance(v, str) for v in value.values()):
+            return f"must be an object of texts, not {_kind(value)}"
+    elif part == "profile_text":
+        if not isinstance(value, str):
+            return f"must be text, not {_kind(value)}"
+    elif not isinstance(value, dict) and not (value is None and part in ("dut", "analysis")):
+        return f"must be an object, not {_kind(value)}"
+    return ""
+
+
+def _kind(value: Any) -> str:
+    return f"a list of {len(value)}" if isinstance(value, list) else type(value).__name__.replace("NoneType", "null")
 
 
 def build_record(meta: dict[str, Any], samples: np.ndarray) -> Record:

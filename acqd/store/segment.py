@@ -33,10 +33,12 @@ from .schema import (
     LIBVER,
     Encoded,
     Layout,
+    blob_problem,
     build_record,
     crc32,
     decode_blob,
     row_summary,
+    rows_fit,
     samples_crc,
     seal,
     sealed,
@@ -172,6 +174,12 @@ def _check_format(path: Path, h5: h5py.File) -> None:
     if h5["index"].dtype != INDEX_DTYPES[version]:
         raise ConfigError(str(path), "index", f"unexpected row layout for format_version {version}: "
                                               "not an acqd record file")
+    samples, blobs = h5["samples"], h5["blobs"]
+    if samples.ndim != 3 or samples.dtype.str not in ("<f8", "<f4") or samples.shape[1] < 1 or samples.shape[2] < 1:
+        raise ConfigError(str(path), "samples", f"{samples.dtype.str} of shape {samples.shape}; an acqd record file "
+                                                f"holds float64 or float32 as (records, channels, samples)")
+    if blobs.ndim != 1 or blobs.dtype != np.uint8:
+        raise ConfigError(str(path), "blobs", "must be bytes (uint8, one dimension): not an acqd record file")
 
 
 class SegmentView:
@@ -231,10 +239,8 @@ class SegmentView:
 
     def row_ok(self, rows: np.ndarray, first_position: int) -> np.ndarray:
         """Per row: CRC matches, blobs inside the blob dataset, index continues the previous row's."""
-        ok = sealed(rows)
-        blob_end = self._blobs.shape[0]
-        for part in BLOB_PARTS:
-            ok &= rows[f"{part}_offset"] + rows[f"{part}_length"] <= blob_end
+        _, n_channels, n_samples = self._samples.shape
+        ok = sealed(rows) & rows_fit(rows, n_channels, n_samples, self._blobs.shape[0])
         if len(rows):
             before = self.rows["index"][first_position - 1] + 1 if first_position else rows["index"][0]
             ok &= rows["index"] == before + np.arange(len(rows))
@@ -254,10 +260,18 @@ class SegmentView:
                 if span is None:
                     span = self._blobs[lo:hi].tobytes()
                 raw = span[off - lo : off - lo + length]
+                where = f"record {int(row['index'])}"
                 if crc32(raw) != int(row[f"{part}_crc"]):
-                    where = f"record {int(row['index'])}"
                     raise ConfigError(str(self.path), where, f"{part} fails its CRC-32: the file is damaged")
-                self._blob_cache[key] = decode_blob(raw)
+                try:
+                    value = decode_blob(raw)
+                except ValueError:
+                    raise ConfigError(str(self.path), where, f"{part} is not UTF-8 JSON: the file is damaged "
+                                                             f"or was not written by acqd") from None
+                problem = blob_problem(part, value, int(row["n_channels"]))
+                if problem:
+                    raise ConfigError(str(self.path), where, f"{part} {problem}: the file was not written by acqd")
+                self._blob_cache[key] = value
             values.append(self._blob_cache[key])
         return values
 

@@ -9,9 +9,9 @@ from ..errors import ConfigError
 from ..record import Record
 from . import faults
 from .lockfile import release_lock, take_lock
-from .naming import CREATING, LIVE, StorePaths, fsync_file, replace_durably
+from .naming import CREATING, DAMAGED, LIVE, StorePaths, fsync_file, os_reason, replace_durably
 from .overview import is_overview, write_overview
-from .recovery import recover_store
+from .recovery import damaged_extent, recover_store
 from .schema import Layout, encode
 from .segment import SegmentView, SegmentWriter, create_segment
 
@@ -34,6 +34,9 @@ class RecordStore:
         self._paths = StorePaths(path)
         if not self._paths.directory.is_dir():
             raise ConfigError(str(path), "", f"directory {self._paths.directory} does not exist")
+        if self.path.exists() and not self.path.is_file():
+            raise ConfigError(str(path), "", "is not a regular file (a device, a pipe or a socket); name a store, "
+                                             "e.g. data/night.h5 (segments go beside it)")
         if self.path.is_file() and not is_overview(self.path):
             raise ConfigError(
                 str(path), "", f"is an existing file; name a store (segments {self._paths.stem}.NNNNNN.h5 go beside it)"
@@ -49,41 +52,63 @@ class RecordStore:
             raise
         self._live: SegmentWriter | None = None
         self._live_number = -1
-        self._failed = False
+        self._failed = ""  # why appends are refused after a failed write
 
     def _resume_point(self) -> tuple[int, int]:
-        """(next record index, next segment number), continuing after every segment already present."""
+        """(next record index, next segment number), after every index any segment present ever held.
+
+        A ``.damaged`` segment counts with every row of its index (the rows that fail verification held
+        acknowledged records too); one that cannot be opened at all is assumed full (``rotate_records``
+        after the indices before it) and said so in ``notes``: an index is never given out twice."""
         segments = self._paths.segments()
         next_number = segments[-1].number + 1 if segments else 0
-        for seg in reversed([s for s in segments if s.state == ""]):
-            view = SegmentView(seg.path, live=False)
-            try:
-                if len(view.rows):
-                    return int(view.rows["index"][-1]) + 1, next_number
-            finally:
-                view.close()
-        return 0, next_number
+        end = 0
+        for seg in segments:
+            if seg.state == "":
+                view = SegmentView(seg.path, live=False)
+                try:
+                    end = max(end, int(view.rows["index"][-1]) + 1) if len(view.rows) else end
+                finally:
+                    view.close()
+            elif seg.state == DAMAGED:
+                extent = damaged_extent(seg.path)
+                if isinstance(extent, str):
+                    self.notes.append(f"{seg.path}: cannot be opened ({extent}); indices {end} to "
+                                      f"{end + self._rotate - 1} are left unused in case it held them")
+                    end += self._rotate
+                else:
+                    first, rows = extent
+                    end = max(end, (end if first is None else first) + rows)
+        return end, next_number
 
     def append(self, record: Record) -> int:
-        """Store ``record``; returns its global index (also set on ``record.index``) once it is durable."""
+        """Store ``record``; returns its global index (also set on ``record.index``) once it is durable.
+
+        A write that fails (a full disk) leaves the live segment as ``.part`` with every record acknowledged
+        before, and raises one ``ConfigError`` line; so does every later append (the next writer recovers)."""
         if self._lock_fd is None or self._failed:
-            why = "is closed" if self._lock_fd is None else "failed on an earlier append; reopen it to recover"
-            raise ConfigError(str(self.path), "", f"this store {why}")
+            raise ConfigError(str(self.path), "", self._failed or "this store is closed")
         index = self._next_index
         enc = encode(record, index, str(self.path))
-        if self._live is not None and self._live.layout != enc.layout:
-            self._finish()
-        if self._live is None:
-            self._start(enc.layout)
         try:
+            if self._live is not None and self._live.layout != enc.layout:
+                self._finish()
+            if self._live is None:
+                self._start(enc.layout)
             self._live.write(enc, fsync=self._fsync)
+        except OSError as exc:
+            self._abandon(f"record {index} was not stored: writing failed ({os_reason(exc)})")
+            raise ConfigError(str(self.path), "", self._failed) from None
         except BaseException:
-            self._abandon()
+            self._abandon("an earlier append was interrupted; reopen the store to recover it")
             raise
         self._next_index += 1
         record.index = index
         if self._live.count >= self._rotate:
-            self._finish()
+            try:
+                self._finish()
+            except OSError as exc:  # this record is durable in the .part; the next append reports the failure
+                self._abandon(f"segment {self._live_number} was not finished ({os_reason(exc)})")
         return index
 
     def _start(self, layout: Layout) -> None:
@@ -91,9 +116,13 @@ class RecordStore:
         number = self._next_number
         self._next_number += 1
         creating = self._paths.with_state(number, CREATING)
-        writer = create_segment(creating, layout, swmr=True)
-        if self._fsync:
-            writer.sync()
+        try:
+            writer = create_segment(creating, layout, swmr=True)
+            if self._fsync:
+                writer.sync()
+        except OSError:
+            creating.unlink(missing_ok=True)  # never held a record; recovery would remove it anyway
+            raise
         faults.step("rotate:created")
         replace_durably(creating, self._paths.with_state(number, LIVE), fsync=self._fsync)
         self._live, self._live_number = writer, number
@@ -118,10 +147,13 @@ class RecordStore:
         except OSError as exc:
             self.notes.append(f"{self.path}: the overview was not rewritten ({exc}); the segments hold every record")
 
-    def _abandon(self) -> None:
-        """After a failed write the live file's state is unknown: leave it as .part for recovery."""
-        self._failed = True
+    def _abandon(self, failure: str) -> None:
+        """After a failed write the live file's state is unknown: leave it as .part for recovery, and refuse
+        every later append with ``failure`` and what is kept."""
+        self._failed = f"{failure}; every record acknowledged before it is kept, the next writer recovers them"
         writer, self._live = self._live, None
+        if writer is None:
+            return
         try:
             writer.close()
         except Exception:  # noqa: BLE001 - the original error is the one worth reporting
@@ -131,7 +163,11 @@ class RecordStore:
         """Finish the live segment and release the store; safe to call twice."""
         try:
             if self._live is not None:
-                self._finish()
+                try:
+                    self._finish()
+                except OSError as exc:  # the .part stays, every record in it acknowledged; the next writer recovers it
+                    problem = f"the live segment was not finished ({os_reason(exc)}); the next writer recovers its records"
+                    raise ConfigError(str(self.path), "", problem) from None
         finally:
             self._release_lock()
 

@@ -111,7 +111,8 @@ class Session:
         except pyvisa.errors.VisaIOError as exc:
             raise InstrumentError(self.resource, f"cannot open ({exc.abbreviation}: {exc.description})") from None
         except Exception as exc:  # pyvisa-py raises a bare Exception("could not connect: ...") on open
-            raise InstrumentError(self.resource, f"cannot open ({exc})") from None
+            said = "; ".join(line.strip() for line in str(exc).splitlines() if line.strip())  # one line (GPIB, ASRL)
+            raise InstrumentError(self.resource, f"cannot open ({said})") from None
         inst.chunk_size = TEXT_CHUNK_BYTES
         self._inst = inst
         self._no_delay()

@@ -15,7 +15,7 @@ power_cycle       each message     the instrument resets first (defaults, empty 
 connection_reset  each message     the connection is reset before the message is read (between messages)
 error_entry       each message     an execution error (-200) is queued after it, as a neighbour's fault would
 
-``Faults`` (acqd.sim.server) asks ``FaultPlan.draw(kind)`` at those points; the plain switches of
+``Faults`` (acqd.sim.engine) asks ``FaultPlan.draw(kind)`` at those points; the plain switches of
 ``Faults`` (set from Python by the tests) still work as before.
 """
 

@@ -280,7 +280,7 @@ def rows_fit(rows: np.ndarray, n_channels: int, n_samples: int, blob_end: int) -
     for part in BLOB_PARTS:
         offset, length = rows[f"{part}_offset"], rows[f"{part}_length"]
         ok &= (offset >= 0) & (length >= 0) & (length <= blob_end) & (offset <= blob_end - length)
-    for name in TEXT_SIZES:
+    for name in TEXT_SIZES.keys() & set(rows.dtype.names):  # a version-1 row has no bench_id
         ok &= np.array([_is_utf8(bytes(v)) for v in rows[name]], dtype=bool)
     return ok
 

@@ -36,7 +36,7 @@ from .display import si
 from .errors import ConfigError
 from .instruments import find_driver, load_driver
 from .models import Signal, StateSpace
-from .profile import AcquisitionPlan, ChannelPlan, Profile, load_profile
+from .profile import AcquisitionPlan, Profile, load_profile
 
 SETTLING_MARGIN = 1.5
 MIN_SAMPLES = 2000  # common practice: a few thousand points resolve levels, rise and settling finely

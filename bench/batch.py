@@ -23,7 +23,6 @@ import argparse
 import statistics
 import tempfile
 import time
-from dataclasses import replace
 from pathlib import Path
 
 from acqd.batch import open_left_closed, run_unit, unit_profile

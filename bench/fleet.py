@@ -99,7 +99,7 @@ def moto_server() -> tuple[subprocess.Popen, str]:
     import boto3
 
     boto3.client("s3").create_bucket(Bucket="bench")
-    return proc, f"s3://bench"
+    return proc, "s3://bench"
 
 
 def sync_round(data: Path, base: str, round_no: int) -> tuple[float, float]:

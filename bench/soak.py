@@ -31,7 +31,6 @@ import subprocess
 import sys
 import tempfile
 import threading
-import time
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path

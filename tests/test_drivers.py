@@ -162,7 +162,6 @@ def test_each_mistake_is_one_line_naming_file_and_field(tmp_path, name, old, new
 
 def test_quoted_semicolon_is_one_command():
     # IEEE 488.2 §7.7.5 string program data (from memory): a ';' inside quotes is data, not a separator.
-    from acqd import scpi
     assert scpi.single_message_problem('DISPlay:TEXT "ready; armed"') is None
     assert scpi.single_message_problem('DISPlay:TEXT "ready"; *RST') is not None
 

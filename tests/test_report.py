@@ -9,14 +9,12 @@ with a [dut] table that names no model (never compared).
 from __future__ import annotations
 
 import base64
-import json
 import os
 import pty
 import re
 import shutil
 import struct
 import subprocess
-import sys
 from datetime import datetime, timedelta, timezone
 from html.parser import HTMLParser
 from importlib.metadata import version

@@ -6,8 +6,8 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from pathlib import Path
 
+from rich.table import Table
 from rich.text import Text
 
 from ..errors import ConfigError
@@ -158,9 +158,8 @@ def fleet_drift_command(args: argparse.Namespace) -> int:
     return 0
 
 
-def distribution_table(distributions: list[dict]) -> "Table":
+def distribution_table(distributions: list[dict]) -> Table:
     """Each fitted parameter across the fleet: its spread, the ANOVA, and the benches that read apart."""
-    from rich.table import Table
 
     from ..display import label, si
 

@@ -54,7 +54,6 @@ error −300 naming it, rather than simulate a part that cannot exist.
 
 from __future__ import annotations
 
-import inspect
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -67,7 +66,7 @@ import numpy as np
 
 from ..config import Table
 from ..errors import ConfigError
-from ..models import BUILDERS, Signal, StateSpace, build_model, parameter_infos
+from ..models import Signal, StateSpace, build_model, parameter_infos
 from .frontend import FrontEndSettings
 from .generator import Generator
 from .plant import Plant

@@ -25,7 +25,7 @@ from .memo import Memo
 from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
                       record_code_step)
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
-from .stimulus import Edge, align_edge, edge_response, steady_state
+from .stimulus import Edge, align_edge, edge_states, steady_state
 from .verdict import Verdict, judge
 
 STEP_MIN_SHARE = 1e-3  # a signal whose rest value moves less than this share of its range has no step
@@ -130,10 +130,13 @@ class _Setup:
 
     def predict(self, model: StateSpace, edge: Edge) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(states, predicted channels (n_channels, n_samples), EMF)."""
-        x, _, u = edge_response(model, self.times, edge)
+        x, u = edge_states(model, self.times, edge)
         p, q = self.rows(model)
         offsets = np.array([m.offset for m in self.mapping])
-        return x, (x @ p.T + np.outer(u, q)).T + offsets[:, None], u
+        predicted = p @ x.T  # built in the (channel, sample) layout: numpy broadcasts fastest along samples
+        predicted += q[:, None] * u
+        predicted += offsets[:, None]
+        return x, predicted, u
 
     def sensitivities(self, values: Mapping[str, float], edge: Edge, edge_parameter: str,
                       channel_scale: np.ndarray) -> np.ndarray:
@@ -156,7 +159,7 @@ class _Setup:
         p, q = self.rows(model)
         d_models = [self._model_derivative(params, name) for name in params]
         moved = replace(edge, t50_s=values.get(edge_parameter, edge.t50_s))
-        xs, _, u = edge_response(with_sensitivities(model, [d.A for d in d_models], [d.B for d in d_models]),
+        xs, u = edge_states(with_sensitivities(model, [d.A for d in d_models], [d.B for d in d_models]),
                                  self.times, moved)
         n, columns = len(model.states), xs.shape[1]
         basis = np.empty((len(u), columns + 2))

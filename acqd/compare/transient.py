@@ -26,13 +26,17 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import OptimizeResult, least_squares, minimize_scalar
+from scipy.optimize import minimize_scalar
 
 MIN_FIT_SAMPLES = 8
 APPROACH_TAU_RANGE = (0.02, 50.0)  # τ searched between these multiples of the first guess
 FREQUENCY_DRIFT_MAX = 0.3  # a damped fit whose ω moved more than 30 % from its seed did not find the ring
 FIT_POINTS = 600  # the damped fit runs on at most about this many block means ...
 BLOCKS_PER_PERIOD = 24  # ... each at most 1/24 of a period long
+LM_TOLERANCE = 1e-8  # relative change of the cost or the parameters that ends a damped fit (MINPACK's default)
+LM_MAX_STEPS = 300  # one evaluation per step: MINPACK's default budget for two unknowns, 100·(n + 1)
+LM_DAMPING_START = 1e-3  # × the largest diagonal entry of JᵀJ (common practice)
+LM_DAMPING_FACTOR = 10.0  # damping ÷ this after a step that lowered the cost, × it after one that did not
 
 
 def smooth(y: np.ndarray, width: int) -> np.ndarray:
@@ -144,21 +148,47 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
 
 
 def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: bool
-                      ) -> tuple[OptimizeResult, np.ndarray]:
-    """Levenberg–Marquardt (MINPACK, through ``least_squares``) on the projected residual with its exact
-    Jacobian: (the solution, the linear coefficients at it). Residual and Jacobian share one projection
-    per point (the solver asks for both at the same p)."""
-    last: dict[bytes, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+                      ) -> tuple[np.ndarray, np.ndarray] | None:
+    """(σ, ω) and the linear coefficients at the least-squares optimum of the projected residual, by
+    Levenberg–Marquardt with Marquardt's diagonal scaling (Marquardt 1963, J. SIAM 11(2):431–441) and the
+    exact Jacobian of ``_projection``; None when it does not converge in ``LM_MAX_STEPS`` steps.
 
-    def at(p: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        key = p.tobytes()
-        if key not in last:
-            last.clear()
-            last[key] = _projection(x, y, p, with_level)
-        return last[key]
-
-    sol = least_squares(lambda p: at(p)[1], p0, lambda p: at(p)[2], method="lm")
-    return sol, at(sol.x)[0]
+    Written out rather than through ``scipy.optimize.least_squares`` because these problems are tiny (two
+    unknowns, at most ``FIT_POINTS`` residuals): the general solver's set-up and checks cost three times
+    the arithmetic, and a comparison runs six of these fits. It stops where MINPACK's defaults would: a
+    relative reduction of the cost or a relative step below ``LM_TOLERANCE``, or a gradient orthogonal
+    to the residual within it (``tests/test_compare_transient.py`` checks the optimum against
+    ``least_squares`` with finite differences, the way these fits ran before).
+    """
+    p = np.asarray(p0, dtype=float)
+    coef, residual, jac = _projection(x, y, p, with_level)
+    cost = float(residual @ residual)
+    damping = None
+    for _ in range(LM_MAX_STEPS):
+        grad, hess = jac.T @ residual, jac.T @ jac
+        scale = np.diag(hess).copy()
+        if cost == 0 or np.max(np.abs(grad) / np.sqrt(scale * cost + 1e-300)) <= LM_TOLERANCE:
+            return p, coef  # the residual is orthogonal to every direction the parameters can move it
+        damping = LM_DAMPING_START * float(scale.max()) if damping is None else damping
+        try:
+            step = -np.linalg.solve(hess + damping * np.diag(scale), grad)
+        except np.linalg.LinAlgError:
+            return None
+        small_step = float(np.linalg.norm(step)) <= LM_TOLERANCE * (float(np.linalg.norm(p)) + LM_TOLERANCE)
+        trial = p + step
+        trial_coef, trial_residual, trial_jac = _projection(x, y, trial, with_level)
+        trial_cost = float(trial_residual @ trial_residual)
+        if not trial_cost < cost:  # also refuses a cost that is not a number
+            if small_step:
+                return p, coef  # no smaller step could still improve it: the optimum, to the tolerance
+            damping *= LM_DAMPING_FACTOR
+            continue
+        converged = small_step or cost - trial_cost <= LM_TOLERANCE * cost
+        p, coef, residual, jac, cost = trial, trial_coef, trial_residual, trial_jac, trial_cost
+        damping /= LM_DAMPING_FACTOR
+        if converged:
+            return p, coef
+    return None
 
 
 def fit_damped_sinusoid(t: np.ndarray, y: np.ndarray, omega_guess: float, sigma_guess: float) -> DampedFit | None:
@@ -177,9 +207,11 @@ def fit_damped_sinusoid(t: np.ndarray, y: np.ndarray, omega_guess: float, sigma_
         return None
     x = (tb - tb[0]) * omega_guess  # time in radians of the seed
 
-    sol, coef = _solve_projection(x, yb, np.array([sigma_guess / omega_guess, 1.0]), True)
-    s, w = sol.x
-    if not sol.success or s < 0 or abs(w - 1) > FREQUENCY_DRIFT_MAX:
+    solution = _solve_projection(x, yb, np.array([sigma_guess / omega_guess, 1.0]), True)
+    if solution is None:
+        return None
+    (s, w), coef = solution
+    if s < 0 or abs(w - 1) > FREQUENCY_DRIFT_MAX:
         return None
     return DampedFit(float(coef[0]), float(s * omega_guess), float(w * omega_guess))
 
@@ -200,9 +232,11 @@ def lobe_peak(t: np.ndarray, y: np.ndarray, level: float) -> tuple[float, float]
     t0, omega = float(t[np.argmax(y)]), math.pi / float(t[-1] - t[0])  # a lobe is about half a period
     x, z = (t - t0) * omega, y - level
 
-    sol, c = _solve_projection(x, z, np.array([0.1, 1.0]), False)
-    s, w = sol.x
-    if not sol.success or not w > 0:
+    solution = _solve_projection(x, z, np.array([0.1, 1.0]), False)
+    if solution is None:
+        return None
+    (s, w), c = solution
+    if not w > 0:
         return None
     # r·e^(−s x)·cos(w x − φ) has its maxima where tan(w x − φ) = −s / w; take the one nearest x = 0
     phi = math.atan2(c[1], c[0])

@@ -155,7 +155,7 @@ def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: 
 
     Written out rather than through ``scipy.optimize.least_squares`` because these problems are tiny (two
     unknowns, at most ``FIT_POINTS`` residuals): the general solver's set-up and checks cost three times
-    the arithmetic, and a comparison runs six of these fits. It stops where MINPACK's defaults would: a
+    the arithmetic, and a demo comparison runs twelve of these fits. It stops where MINPACK's defaults would: a
     relative reduction of the cost or a relative step below ``LM_TOLERANCE``, or a gradient orthogonal
     to the residual within it (``tests/test_compare_transient.py`` checks the optimum against
     ``least_squares`` with finite differences, the way these fits ran before).

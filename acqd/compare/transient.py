@@ -37,6 +37,7 @@ LM_TOLERANCE = 1e-8  # relative change of the cost or the parameters that ends a
 LM_MAX_STEPS = 300  # one evaluation per step: MINPACK's default budget for two unknowns, 100·(n + 1)
 LM_DAMPING_START = 1e-3  # × the largest diagonal entry of JᵀJ (common practice)
 LM_DAMPING_FACTOR = 10.0  # damping ÷ this after a step that lowered the cost, × it after one that did not
+LM_SCALE_FLOOR = 1e-12  # Marquardt's scaling of a direction never below this share of the largest
 
 
 def smooth(y: np.ndarray, width: int) -> np.ndarray:
@@ -155,9 +156,9 @@ def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: 
 
     Written out rather than through ``scipy.optimize.least_squares`` because these problems are tiny (two
     unknowns, at most ``FIT_POINTS`` residuals): the general solver's set-up and checks cost three times
-    the arithmetic, and a demo comparison runs twelve of these fits. It stops where MINPACK's defaults would: a
-    relative reduction of the cost or a relative step below ``LM_TOLERANCE``, or a gradient orthogonal
-    to the residual within it (``tests/test_compare_transient.py`` checks the optimum against
+    the arithmetic, and a demo comparison runs twelve of these fits. It stops where MINPACK's defaults
+    would: a relative reduction of the cost or a relative step below ``LM_TOLERANCE``, or a gradient
+    orthogonal to the residual within it (``tests/test_compare_transient.py`` checks the optimum against
     ``least_squares`` with finite differences, the way these fits ran before).
     """
     p = np.asarray(p0, dtype=float)
@@ -166,7 +167,8 @@ def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: 
     damping = None
     for _ in range(LM_MAX_STEPS):
         grad, hess = jac.T @ residual, jac.T @ jac
-        scale = np.diag(hess).copy()
+        diagonal = np.diag(hess)
+        scale = np.maximum(diagonal, LM_SCALE_FLOOR * float(diagonal.max()))  # a flat direction stays solvable
         if cost == 0 or np.max(np.abs(grad) / np.sqrt(scale * cost + 1e-300)) <= LM_TOLERANCE:
             return p, coef  # the residual is orthogonal to every direction the parameters can move it
         damping = LM_DAMPING_START * float(scale.max()) if damping is None else damping

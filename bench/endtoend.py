@@ -148,18 +148,21 @@ def breakdown(profile: Profile, folder: Path, count: int) -> tuple[dict[str, flo
 
 
 def forward_differences(setup: _Setup, values: dict[str, float], edge: Any, edge_parameter: str,
-                        channel_scale: np.ndarray) -> np.ndarray:
-    """The finite-difference Jacobian the exact sensitivities replaced: one more prediction per parameter."""
+                        channel_scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """In place of ``_Setup.response_and_sensitivities``: the response and the finite-difference Jacobian
+    the exact sensitivities replaced, one more prediction per parameter."""
     def predicted(v: dict[str, float]) -> np.ndarray:
         params = {k: x for k, x in v.items() if k != edge_parameter}
         _, channels, _ = setup.predict(setup.model(params), replace(edge, t50_s=v.get(edge_parameter, edge.t50_s)))
-        return (channels * np.reshape(channel_scale, (-1, 1))).ravel()
+        return channels
 
-    base, columns = predicted(values), []
+    scale = np.reshape(channel_scale, (-1, 1))
+    response = predicted(values)
+    base, columns = (response * scale).ravel(), []
     for name, value in values.items():
         h = FORWARD_STEP * max(abs(value), 1e-300)
-        columns.append((predicted({**values, name: value + h}) - base) / h)
-    return np.column_stack(columns)
+        columns.append(((predicted({**values, name: value + h}) * scale).ravel() - base) / h)
+    return response, np.column_stack(columns)
 
 
 def best_of_five(run: Callable[[], Any]) -> tuple[float, Any]:
@@ -190,12 +193,12 @@ def fit_times(profile: Profile, record: Any) -> tuple[float, float, float, int, 
         return best_of_five(lambda: compare_spec(record, spec))
 
     exact_s, exact = best()
-    original = _Setup.sensitivities
-    _Setup.sensitivities = forward_differences
+    original = _Setup.response_and_sensitivities
+    _Setup.response_and_sensitivities = forward_differences
     try:
         fd_s, fd = best()
     finally:
-        _Setup.sensitivities = original
+        _Setup.response_and_sensitivities = original
     gap = max(abs(exact.fit.values[n] - fd.fit.values[n]) / (fd.fit.ci95[n][1] - fd.fit.ci95[n][0]) * 100
               for n in fd.fit.fitted)
     return exact_s, fd_s, gap, exact.fit.evaluations, fd.fit.evaluations

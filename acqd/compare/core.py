@@ -25,7 +25,7 @@ from .memo import Memo
 from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
                       record_code_step)
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
-from .stimulus import Edge, align_edge, edge_response, steady_state
+from .stimulus import Edge, align_edge, edge_states, steady_state
 from .verdict import Verdict, judge
 
 STEP_MIN_SHARE = 1e-3  # a signal whose rest value moves less than this share of its range has no step
@@ -130,16 +130,30 @@ class _Setup:
 
     def predict(self, model: StateSpace, edge: Edge) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(states, predicted channels (n_channels, n_samples), EMF)."""
-        x, _, u = edge_response(model, self.times, edge)
+        x, u = edge_states(model, self.times, edge)
+        return x, self._channels(model, x, u), u
+
+    def _channels(self, model: StateSpace, x: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """The predicted channels (n_channels, n_samples) from the states and the EMF."""
         p, q = self.rows(model)
-        offsets = np.array([m.offset for m in self.mapping])
-        return x, (x @ p.T + np.outer(u, q)).T + offsets[:, None], u
+        predicted = p @ x.T  # built in the (channel, sample) layout: numpy broadcasts fastest along samples
+        predicted += q[:, None] * u
+        predicted += np.array([m.offset for m in self.mapping])[:, None]
+        return predicted
 
     def sensitivities(self, values: Mapping[str, float], edge: Edge, edge_parameter: str,
                       channel_scale: np.ndarray) -> np.ndarray:
-        """∂(predicted channel × ``channel_scale``)/∂value for each of ``values`` in its order (model
-        parameters, and ``edge_parameter`` if present, the edge's t50 instant): one column each, the
-        channels one after the other down the rows, as the fit's residual vector has them.
+        """∂(predicted channel × ``channel_scale``)/∂value (``response_and_sensitivities``, without the
+        response)."""
+        return self.response_and_sensitivities(values, edge, edge_parameter, channel_scale)[1]
+
+    def response_and_sensitivities(self, values: Mapping[str, float], edge: Edge, edge_parameter: str,
+                                   channel_scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(the predicted channels at ``values``, as ``predict`` gives them; ∂(predicted channel ×
+        ``channel_scale``)/∂value for each of ``values`` in its order (model parameters, and
+        ``edge_parameter`` if present, the edge's t50 instant): one column each, the channels one after the
+        other down the rows, as the fit's residual vector has them). The response is the first block of
+        the same propagation, so a fit step that needs both pays for one.
 
         The state's derivatives come from one propagation of ``with_sensitivities`` (Van Loan's block
         exponential); they need ∂A, ∂B (and ∂C, ∂D for the channel rows) by each parameter, which come
@@ -156,7 +170,7 @@ class _Setup:
         p, q = self.rows(model)
         d_models = [self._model_derivative(params, name) for name in params]
         moved = replace(edge, t50_s=values.get(edge_parameter, edge.t50_s))
-        xs, _, u = edge_response(with_sensitivities(model, [d.A for d in d_models], [d.B for d in d_models]),
+        xs, u = edge_states(with_sensitivities(model, [d.A for d in d_models], [d.B for d in d_models]),
                                  self.times, moved)
         n, columns = len(model.states), xs.shape[1]
         basis = np.empty((len(u), columns + 2))
@@ -176,7 +190,7 @@ class _Setup:
         out = np.empty((len(self.mapping) * len(u), len(values)))
         for c in range(len(self.mapping)):
             np.matmul(basis, weights[:, c, :], out=out[c * len(u):(c + 1) * len(u)])
-        return out
+        return self._channels(model, xs[:, :n], u), out
 
     def _model_derivative(self, params: Mapping[str, float], name: str) -> StateSpace:
         """|p|·∂A/∂p, |p|·∂B/∂p, … for p = ``name`` (as a StateSpace of derivatives), by central differences
@@ -270,14 +284,22 @@ def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = Non
     if any(m.stimulus for m in setup.mapping) and edge.resolved(dt):
         free[EDGE_PARAMETER] = Free(edge.t50_s, False, dt, "s")
 
+    last: dict[str, Any] = {}
+
+    def evaluated(values: dict[str, float]) -> tuple[np.ndarray, np.ndarray]:
+        """(residuals, Jacobian) at ``values`` from one propagation; the solver asks for the residuals of
+        a point and then, when it takes the step, for its Jacobian, so the pair of the last point is kept."""
+        key = tuple(values.items())
+        if last.get("key") != key:
+            predicted, jacobian = setup.response_and_sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
+            last.update(key=key, pair=(((setup.measured - predicted) / weights).ravel(), jacobian))
+        return last["pair"]
+
     def residuals_of(values: dict[str, float]) -> np.ndarray:
-        params = {k: v for k, v in values.items() if k != EDGE_PARAMETER}
-        moved = replace(edge, t50_s=values.get(EDGE_PARAMETER, edge.t50_s))
-        _, predicted, _ = setup.predict(setup.model(params), moved)
-        return ((setup.measured - predicted) / weights).ravel()
+        return evaluated(values)[0]
 
     def jacobian_of(values: dict[str, float]) -> np.ndarray:
-        return setup.sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
+        return evaluated(values)[1]
 
     hold_order = (*spec.fit.hold, *DEFAULT_HOLD.get(spec.model, ()))
     warm = {k: v for k, v in (warm_start or {}).items() if k != EDGE_PARAMETER}  # the edge is this record's own

@@ -267,9 +267,12 @@ def fit_parameters(residuals_of: Callable[[dict[str, float]], np.ndarray],
         return fun
 
     jac0 = _coordinate_jacobian(jacobian_of, coords, coords.encode(start))
-    s = np.linalg.svd(jac0, compute_uv=False)
+    # J = QR with Q's columns orthonormal: R has J's singular values and right singular vectors, and so has
+    # every choice of its columns, so the rank test decomposes p × p matrices instead of m × p ones.
+    factor = np.linalg.qr(jac0, mode="r")
+    s = np.linalg.svd(factor, compute_uv=False)
     rel = (s / s[0]).tolist() if s[0] > 0 else [0.0] * len(s)
-    keep, held = _hold_unidentifiable(jac0, coords, hold_order, start)
+    keep, held = _hold_unidentifiable(factor, coords, hold_order, start)
     if not keep:
         raise FitError(f"fit: no free parameter is identifiable from the mapped channels: {held}")
     sub = coords.subset(keep)

@@ -79,7 +79,16 @@ def steady_state(model: StateSpace, u: float) -> np.ndarray:
 
 
 def edge_response(model: StateSpace, times: np.ndarray, edge: Edge) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(states, outputs, EMF) at uniformly spaced ``times`` for the edge, starting from rest.
+    """(states, outputs, EMF) at uniformly spaced ``times`` for the edge, starting from rest (``edge_states``
+    and the model's outputs from them)."""
+    x, u = edge_states(model, times, edge)
+    return x, x @ model.C.T + np.outer(u, model.D[:, 0]), u
+
+
+def edge_states(model: StateSpace, times: np.ndarray, edge: Edge) -> tuple[np.ndarray, np.ndarray]:
+    """(states, EMF) at uniformly spaced ``times`` for the edge, starting from rest: what the comparator
+    needs, which builds its channels from the states itself (the model's own outputs would be work thrown
+    away on every step of a fit).
 
     Exact up to rounding: the pre-edge part is the steady state, each corner of the ramp is reached with a
     fractional first-order-hold step, and the uniform stretches are propagated with one discretisation.
@@ -118,8 +127,7 @@ def edge_response(model: StateSpace, times: np.ndarray, edge: Edge) -> tuple[np.
         if in_ramp_end < n:
             x[in_ramp_end] = step(state, times[in_ramp_end] - edge.end_s, edge.after_v, edge.after_v)
             x[in_ramp_end:] = propagate(disc(dt), u[in_ramp_end:], x[in_ramp_end])
-    y = x @ model.C.T + np.outer(u, model.D[:, 0])
-    return x, y, u
+    return x, u
 
 
 def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.ndarray,
@@ -136,7 +144,7 @@ def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.nd
     dt = times[1] - times[0]
 
     def cost(t50: float) -> float:
-        x, _, u = edge_response(model, times, replace(edge, t50_s=t50))
+        x, u = edge_states(model, times, replace(edge, t50_s=t50))
         return float(np.sum((measured - x @ c_row - d_value * u) ** 2))
 
     nearest, span = int(np.argmin(np.abs(times - edge.t50_s))), int(np.ceil(search_s / dt))
@@ -145,7 +153,7 @@ def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.nd
     # and starts at rest), so one response on a grid padded by the search span serves every candidate.
     n = len(times)
     padded = times[0] + (np.arange(n + 2 * span) - span) * dt
-    x, _, u = edge_response(model, padded, replace(edge, t50_s=float(times[nearest])))
+    x, u = edge_states(model, padded, replace(edge, t50_s=float(times[nearest])))
     predicted = x @ c_row + d_value * u
     costs = [float(np.sum((measured - predicted[span - s:span - s + n]) ** 2)) for s in shifts]
     best = float(times[nearest + shifts[int(np.argmin(costs))]])  # exactly on a sample, no rounding drift

@@ -234,11 +234,12 @@ def test_sync_sends_each_segment_once_and_verified(kind: str, fleet: dict[str, A
 
 
 def big_store(folder: Path, bench: str) -> Path:
-    """A data directory with one finished segment of several MiB (so an upload takes several chunks)."""
+    """A data directory with one finished segment of 19 MB: more than one part of an S3 upload
+    (``transfer.PART_BYTES``), and many chunks on a share."""
     data = folder / "data"
     data.mkdir(parents=True)
     with RecordStore(data / "soak.h5", fsync=False) as store:
-        for seed in range(2):
+        for seed in range(6):
             record = make_record(seed, n_channels=2, n_samples=200_000)
             record.bench_id = bench
             store.append(record)

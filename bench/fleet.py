@@ -2,11 +2,14 @@
 
     python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--rounds 3]
 
-1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records) is
-   sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder, by ``acqd sync``
-   (chunked upload to a temporary key, read back and hashed, moved, catalog rewritten) and by a plain
-   ``put_file`` of the same files through the same fsspec client, rounds alternating, each to a fresh
-   prefix. Printed: MB/s of each and sync ÷ plain (the median over the rounds).
+1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records, 3
+   to a segment) is sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder by
+   ``acqd sync`` (one pass: hashed and sent; on S3 checked against the parts' and the object's ETags, on
+   the share fsynced and its size checked; the catalog rewritten after each segment), by ``acqd sync
+   --verify readback``, and by a plain ``put_file`` of the same files through the same fsspec client (on
+   the share also followed by an fsync of each copy, the part of the sync's cost that durability takes).
+   Each round runs the sides in another order, each to a fresh prefix. Printed: MB/s of each and its
+   ratio to the plain ``put_file`` (the median of the per-round ratios).
 2. Fleet compare. ``--records`` records of the closed-form series-RLC step response with noise (1500
    samples, two channels, R fitted) are stored in segments of ``--segment-records`` and synced to a
    ``file://`` archive. ``fleet compare``'s work (every task, every row) is timed on a LocalCluster of 1
@@ -40,8 +43,10 @@ from acqd.compare import compare_spec, parse_dut_table  # noqa: E402
 from acqd.fleet.analysis import archived_segments, cluster, compare_task, run_per_segment  # noqa: E402
 from acqd.fleet.archive import open_archive  # noqa: E402
 from acqd.fleet.sync import sync  # noqa: E402
+from acqd.fleet.transfer import VERIFY_READBACK, VERIFY_UPLOAD  # noqa: E402
 from acqd.record import Channel, Record, Stimulus, TimeBase  # noqa: E402
 from acqd.store import RecordStore, open_records  # noqa: E402
+from acqd.store.naming import fsync_file  # noqa: E402
 
 L_H, C_F, RS_OHM = 3.3e-3, 100e-9, 50.0
 DUT = {"model": "series_rlc", "serial": "BENCH-0001", "r_ohm": 22.0, "l_h": L_H, "c_f": C_F,
@@ -102,20 +107,26 @@ def moto_server() -> tuple[subprocess.Popen, str]:
     return proc, "s3://bench"
 
 
-def sync_round(data: Path, base: str, round_no: int) -> tuple[float, float]:
-    """(seconds of acqd sync, seconds of a plain put_file of the same segments), each to a fresh prefix."""
-    archive = open_archive(f"{base}/sync-{round_no}")
+def timed_sync(data: Path, url: str, verify: str) -> float:
+    archive = open_archive(url)
     start = time.perf_counter()
-    report = sync(data, archive)
-    synced = time.perf_counter() - start
+    report = sync(data, archive, verify=verify)
+    seconds = time.perf_counter() - start
     assert len(report.uploaded) == len(list(data.glob("soak.0*.h5")))
-    plain = open_archive(f"{base}/plain-{round_no}")
+    return seconds
+
+
+def timed_plain(data: Path, url: str, fsync: bool) -> float:
+    """A plain ``put_file`` of each segment through the same client (on a share, ``fsync`` each copy too)."""
+    plain = open_archive(url)
     start = time.perf_counter()
     for path in sorted(data.glob("soak.0*.h5")):
         key = plain.key("bench-s", "soak", path.name)
         plain.parent_ready(key)
         plain.fs.put_file(str(path), key)
-    return synced, time.perf_counter() - start
+        if fsync:
+            fsync_file(Path(key))
+    return time.perf_counter() - start
 
 
 def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Generator) -> None:
@@ -126,12 +137,22 @@ def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Gener
     try:
         share = (folder / "share").as_uri()
         for name, base in (("file://", share), ("S3 (moto, 127.0.0.1)", s3)):
-            pairs = [sync_round(data, base, k) for k in range(rounds)]
-            ratio = statistics.median(p / s for s, p in pairs)
+            sides = {"acqd sync": lambda url: timed_sync(data, url, VERIFY_UPLOAD),
+                     "acqd sync --verify readback": lambda url: timed_sync(data, url, VERIFY_READBACK),
+                     "plain put_file": lambda url: timed_plain(data, url, fsync=False)}
+            if base == share:
+                sides["plain put_file + fsync"] = lambda url: timed_plain(data, url, fsync=True)
+            seconds = {side: [] for side in sides}
+            for k in range(rounds):  # each round in another order, each side to a fresh prefix
+                order = list(sides)[k % len(sides):] + list(sides)[:k % len(sides)]
+                for j, side in enumerate(order):
+                    seconds[side].append(sides[side](f"{base}/round-{k}-{j}"))
+            plain = seconds["plain put_file"]
             mb = total / 1e6
-            print(f"sync to {name}: {mb:.0f} MB, acqd sync {mb / statistics.median(s for s, _ in pairs):.0f} MB/s, "
-                  f"plain put_file {mb / statistics.median(p for _, p in pairs):.0f} MB/s; "
-                  f"sync ÷ plain {ratio:.2f} (median of {rounds} rounds)")
+            print(f"sync to {name}: {mb:.0f} MB in {len(list(data.glob('soak.0*.h5')))} segments, {rounds} rounds")
+            for side, times in seconds.items():
+                ratio = statistics.median(p / t for p, t in zip(plain, times))
+                print(f"  {side}: {mb / statistics.median(times):.0f} MB/s, ÷ plain put_file {ratio:.2f} (median)")
     finally:
         proc.terminate()
         proc.wait(timeout=10)

@@ -80,6 +80,15 @@ class Archive:
         except FileNotFoundError:
             return None
 
+    def sizes_under(self, bench_id: str) -> dict[str, int]:
+        """The size of every object under the bench's folder, by key, from one listing (not a request per
+        segment)."""
+        try:
+            found = self.fs.find(self.key(bench_id), detail=True)
+        except FileNotFoundError:
+            return {}
+        return {path: int(info["size"]) for path, info in found.items() if info.get("type", "file") == "file"}
+
     def benches(self) -> list[str]:
         """Every bench with a catalog in the archive."""
         found = self.fs.glob(self.key("*", CATALOG))

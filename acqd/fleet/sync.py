@@ -11,8 +11,8 @@ What makes it safe to run at any time, as often as one likes, and to kill:
   to its final key, where an object appears only whole, when its upload completes. So a file or object at
   a final name is always a complete segment; a kill leaves at most a temporary file (removed by the next
   sync) or a complete object not yet listed.
-* The bench's catalog is rewritten (whole, by a move) after each segment. A kill between the move and the
-  catalog leaves a final object the catalog does not list: the next sync checks it against the local file
+* The bench's catalog is rewritten whole (by one PUT, or a move on a share) once a second while segments
+  go, and at the end. A kill before it leaves a final object the catalog does not list: the next sync checks it against the local file
   (its ETag on S3, its SHA-256 read back elsewhere) and adopts it when it matches.
 * A segment is skipped when the catalog lists it with the local file's SHA-256 and the object has its
   size; so a second sync uploads nothing. A catalog entry with the same name but another SHA-256 is never
@@ -38,10 +38,14 @@ from ..store.naming import StorePaths, finished_segments, sync_directory
 from ..store.overview import is_overview, write_overview
 from ..store.segment import SegmentView
 from .archive import HASH_CHUNK_BYTES, INCOMING, Archive, ArchiveError, reaching
-from .transfer import (VERIFY_UPLOAD, etag_problem, local_hashes, rename_on_share,
+from .transfer import (VERIFY_READBACK, VERIFY_UPLOAD, etag_problem, local_hashes, rename_on_share,
                        send_and_read_back, send_to_s3, send_to_share)
 
 SYNC_LOCK = "sync.lock"
+# The catalog is rewritten at most this often during a sync, and at its end: a whole catalog per segment
+# cost a request as large as the catalog for every small segment. A kill in between leaves verified objects
+# it does not list yet, which the next sync checks and adopts.
+CATALOG_EVERY_S = 1.0
 Log = Callable[..., Any]
 
 
@@ -167,43 +171,63 @@ def _sync_bench(archive: Archive, bench_id: str, segments: list[LocalSegment], r
     with reaching(archive, f"reading {bench_id}'s catalog"):
         archive.fs.invalidate_cache()
         catalog = archive.read_catalog(bench_id)
-        _remove_leftovers(archive, bench_id)
+        present = archive.sizes_under(bench_id)
+        _remove_leftovers(archive, bench_id, present)
     listed = {(e["campaign"], e["segment"]): e for e in catalog["segments"]}
-    for seg in segments:
-        key = archive.key(bench_id, seg.campaign, seg.path.name)
-        entry = listed.get((seg.campaign, seg.path.name))
-        with reaching(archive, f"checking {key}"):
-            state, seg = _state(archive, seg, key, entry, verify, recheck)
-        if state == "archived":
-            report.already += 1
-        else:
-            if state == "missing":
-                with reaching(archive, f"uploading {key}"):
-                    seg = _upload(archive, seg, key, token, verify)
-                report.bytes_uploaded += seg.bytes
-            entry = listed[(seg.campaign, seg.path.name)] = seg.entry(f"{bench_id}/{seg.campaign}/{seg.path.name}")
-            catalog["segments"] = sorted(listed.values(), key=lambda e: (e["campaign"], e["segment"]))
-            with reaching(archive, f"writing {bench_id}'s catalog"):
-                archive.write_catalog(bench_id, catalog, token)
-            if state == "missing":
-                report.uploaded.append(entry)
-                if log:
-                    log("sync_upload", bench=bench_id, campaign=seg.campaign, segment=seg.path.name, key=key,
-                        records=seg.records, bytes=seg.bytes, sha256=seg.sha256)
+    unwritten, written_at = False, time.monotonic()
+
+    def write_catalog() -> None:
+        catalog["segments"] = sorted(listed.values(), key=lambda e: (e["campaign"], e["segment"]))
+        with reaching(archive, f"writing {bench_id}'s catalog"):
+            archive.write_catalog(bench_id, catalog, token)
+
+    try:
+        for seg in segments:
+            key = archive.key(bench_id, seg.campaign, seg.path.name)
+            entry = listed.get((seg.campaign, seg.path.name))
+            with reaching(archive, f"checking {key}"):
+                state, seg = _state(archive, seg, key, present.get(key), entry, verify, recheck)
+            if state == "archived":
+                report.already += 1
             else:
-                report.adopted += 1
-                if log:
-                    log("sync_adopted", bench=bench_id, campaign=seg.campaign, segment=seg.path.name, key=key)
-        report.synced.append(seg)
+                if state == "missing":
+                    with reaching(archive, f"uploading {key}"):
+                        seg = _upload(archive, seg, key, token, verify)
+                    report.bytes_uploaded += seg.bytes
+                entry = listed[(seg.campaign, seg.path.name)] = seg.entry(f"{bench_id}/{seg.campaign}/{seg.path.name}")
+                unwritten = True
+                if time.monotonic() - written_at >= CATALOG_EVERY_S:
+                    write_catalog()
+                    unwritten, written_at = False, time.monotonic()
+                _note(report, log, state, bench_id, seg, key, entry)
+            report.synced.append(seg)
+    finally:  # a failure part-way still lists what was verified before it (a kill leaves it to adoption)
+        if unwritten:
+            write_catalog()
 
 
-def _state(archive: Archive, seg: LocalSegment, key: str, entry: dict[str, Any] | None, verify: str,
-           recheck: bool) -> tuple[str, LocalSegment]:
-    """``archived`` (listed and present), ``unlisted`` (a complete object the catalog lacks) or ``missing``,
+def _note(report: SyncReport, log: Log | None, state: str, bench_id: str, seg: LocalSegment, key: str,
+          entry: dict[str, Any]) -> None:
+    """Count a segment sent or adopted, and log it."""
+    if state == "missing":
+        report.uploaded.append(entry)
+        if log:
+            log("sync_upload", bench=bench_id, campaign=seg.campaign, segment=seg.path.name, key=key,
+                records=seg.records, bytes=seg.bytes, sha256=seg.sha256)
+    else:
+        report.adopted += 1
+        if log:
+            log("sync_adopted", bench=bench_id, campaign=seg.campaign, segment=seg.path.name, key=key)
+
+
+def _state(archive: Archive, seg: LocalSegment, key: str, size: int | None, entry: dict[str, Any] | None,
+           verify: str, recheck: bool) -> tuple[str, LocalSegment]:
+    """``archived`` (listed and present), ``unlisted`` (a complete object the catalog lacks) or ``missing``
+    for the segment whose object at ``key`` has ``size`` bytes (None: there is none),
     with the segment (hashed when that was needed to tell); anything at that name with other bytes is
     refused, never overwritten. ``recheck`` checks a listed object against the local file too, as an
-    unlisted one always is (``--prune`` removes nothing on the catalog's word alone)."""
-    size = archive.size(key)
+    unlisted one always is, and on a share by reading it back (``--prune`` removes nothing on the
+    catalog's word alone)."""
     deep = _needs_etag(archive, verify) and (entry is None or recheck) and size == seg.bytes
     if entry is not None:
         seg = seg.hashed(etag=deep)
@@ -215,7 +239,7 @@ def _state(archive: Archive, seg: LocalSegment, key: str, entry: dict[str, Any] 
         return "missing", seg
     if size == seg.bytes and (entry is None or recheck):
         seg = seg.hashed(etag=deep)
-        if _matches(archive, seg, key, verify):
+        if _matches(archive, seg, key, VERIFY_READBACK if archive.local and recheck else verify):
             return ("unlisted" if entry is None else "archived"), seg
     elif size == seg.bytes:
         return "archived", seg
@@ -267,9 +291,9 @@ def _upload(archive: Archive, seg: LocalSegment, key: str, token: str, verify: s
     return replace(seg, sha256=sent.sha256)
 
 
-def _remove_leftovers(archive: Archive, bench_id: str) -> None:
+def _remove_leftovers(archive: Archive, bench_id: str, present: dict[str, int]) -> None:
     """Temporary objects of a sync that was killed (this data directory's lock says none is running)."""
-    for path in archive.fs.glob(archive.key(bench_id, INCOMING, "*")):
+    for path in [p for p in present if p.startswith(archive.key(bench_id, INCOMING) + "/")]:
         archive.fs.rm_file(path)
 
 

@@ -7,8 +7,8 @@ object store) and sent from that same buffer, so the hashes describe exactly the
 
 What "verified" then means (``VERIFY_UPLOAD``, the default):
 
-* **S3.** Each part goes with its ``Content-MD5`` (AWS S3 refuses a part whose bytes do not match it), and
-  the ETag the server answers for it must be our MD5 of that part. After the upload a ``HEAD`` must show
+* **S3.** The ETag the server answers for each part (or for the single ``PUT`` of a file of at most one
+  part) must be our MD5 of the bytes sent in it. After the upload a ``HEAD`` must show
   the object's size and the ETag S3 gives a multipart object: the MD5 of the parts' MD5 digests one after
   another, then ``-`` and the number of parts (for a single ``PUT``, the MD5 of the body). Those ETags are
   computed by the server from the bytes it stored; moto's server, which the tests use, computes them the
@@ -27,10 +27,10 @@ store returns it: the slow, store-agnostic check.
 
 from __future__ import annotations
 
-import base64
 import hashlib
 import os
 from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -116,29 +116,25 @@ def rename_on_share(target: str, key: str) -> None:
 
 # -- S3 ---------------------------------------------------------------------------------------------------
 def send_to_s3(archive: Archive, path: Path, key: str, size: int) -> Sent:
-    """Upload ``path`` to ``key`` part by part with each part's Content-MD5, checking each part's ETag, then
-    the whole object's size and ETag from a HEAD. An upload cut short leaves no object (S3 makes one only at
-    completion); one that fails here is aborted, or removed if it completed with the wrong bytes."""
+    """Upload ``path`` to ``key`` (one PUT, or part by part), checking each request's ETag against the MD5 of
+    what it sent, then the whole object's size and ETag from a HEAD. An upload cut short leaves no object
+    (S3 makes one only at completion); one that fails here is aborted, or removed if it completed with the
+    wrong bytes."""
     bucket, name, _ = archive.fs.split_path(key)
     call = archive.fs.call_s3
     sha, md5s = hashlib.sha256(), []
     if size <= PART_BYTES:  # one PUT: S3's multipart minimum part is 5 MiB, and one request is cheaper
-        body = path.read_bytes()
-        sha.update(body)
-        md5s.append(hashlib.md5(body).digest())
-        answer = call("put_object", Bucket=bucket, Key=name, Body=body, ContentMD5=_b64(md5s[0]))
-        _check_part_etag(archive, key, 1, answer, md5s[0])
+        answer, md5 = _send_hashing(call, path.read_bytes(), sha, "put_object", Bucket=bucket, Key=name)
+        md5s.append(_checked_etag(archive, key, 1, answer, md5))
         faults.step("sync:chunk")
     else:
         upload = call("create_multipart_upload", Bucket=bucket, Key=name)["UploadId"]
         try:
             parts = []
             for number, block in enumerate(_blocks(path, PART_BYTES), 1):
-                sha.update(block)
-                md5s.append(hashlib.md5(block).digest())
-                answer = call("upload_part", Bucket=bucket, Key=name, UploadId=upload, PartNumber=number,
-                              Body=bytes(block), ContentMD5=_b64(md5s[-1]))
-                _check_part_etag(archive, key, number, answer, md5s[-1])
+                answer, md5 = _send_hashing(call, bytes(block), sha, "upload_part", Bucket=bucket, Key=name,
+                                            UploadId=upload, PartNumber=number)
+                md5s.append(_checked_etag(archive, key, number, answer, md5))
                 parts.append({"PartNumber": number, "ETag": answer["ETag"]})
                 faults.step("sync:chunk")
             call("complete_multipart_upload", Bucket=bucket, Key=name, UploadId=upload,
@@ -156,6 +152,17 @@ def send_to_s3(archive: Archive, path: Path, key: str, size: int) -> Sent:
     return sent
 
 
+def _send_hashing(call: Any, body: bytes, sha: Any, method: str, **request: Any) -> tuple[dict[str, Any], bytes]:
+    """Send ``body`` by ``method`` while this thread hashes it (SHA-256 into ``sha``, and its MD5): the
+    request waits on the network and the server, the hashes on this core, so neither waits for the other.
+    Returns the server's answer and the body's MD5 digest."""
+    with ThreadPoolExecutor(1, thread_name_prefix="acqd-sync-send") as pool:
+        answer = pool.submit(call, method, Body=body, **request)
+        sha.update(body)
+        md5 = hashlib.md5(body).digest()
+        return answer.result(), md5
+
+
 def etag_problem(archive: Archive, key: str, size: int, etag: str) -> str:
     """Why the object at ``key`` is not ``size`` bytes with ETag ``etag`` (from a HEAD), or ''."""
     info = archive.fs.info(key, refresh=True)
@@ -168,12 +175,14 @@ def etag_problem(archive: Archive, key: str, size: int, etag: str) -> str:
     return ""
 
 
-def _check_part_etag(archive: Archive, key: str, number: int, answer: dict[str, Any], md5: bytes) -> None:
+def _checked_etag(archive: Archive, key: str, number: int, answer: dict[str, Any], md5: bytes) -> bytes:
+    """``md5``, once the ETag the server answered for that request (part ``number``) is that MD5."""
     found = str(answer.get("ETag", "")).strip('"')
     if found != md5.hex():
         raise ArchiveError(archive.url, f"{key}: part {number} stored with ETag {found}, not the MD5 of what was "
                                         f"sent ({md5.hex()}); a store whose ETag is not an MD5 of the bytes "
                                         "(SSE-KMS, SSE-C) needs --verify readback")
+    return md5
 
 
 def _abort(call: Any, bucket: str, name: str, upload: str) -> None:
@@ -182,10 +191,6 @@ def _abort(call: Any, bucket: str, name: str, upload: str) -> None:
         call("abort_multipart_upload", Bucket=bucket, Key=name, UploadId=upload)
     except Exception:  # noqa: BLE001 - the upload's own error is the one to report
         pass
-
-
-def _b64(digest: bytes) -> str:
-    return base64.b64encode(digest).decode()
 
 
 # -- any store: through the client's writer, read back ----------------------------------------------------

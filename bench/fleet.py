@@ -15,8 +15,11 @@
    ``file://`` archive. Two LocalClusters stay up side by side, of 1 and of 2 worker processes; after a
    first task on each (imports, first calls), each of ``--rounds`` rounds runs every segment's task on
    both, the order alternating. Printed: records/s on each (wall clock), the workers' CPU time per record
-   (``getrusage`` in each worker, which other load on the machine does not inflate), and the median of
-   the per-round 2 ÷ 1 speed-ups. Then, segment by segment, the same comparisons in this process (records
+   (``getrusage`` in each worker, which other load on the machine does not inflate) and the cores they kept
+   busy, the median of the per-round 2 ÷ 1 speed-ups, and the speed-up the CPU time per record gives if
+   each worker has a core of its own (2 × CPU per record on 1 worker ÷ on 2). On a machine shared with
+   other sessions, Linux's autogroup scheduling gives one session's processes together one share of the
+   cores, so a second worker may get no more CPU than the first had alone: the "cores busy" column says. Then, segment by segment, the same comparisons in this process (records
    already read from the local store) and as one task on the 1-worker cluster (reading the archive),
    interleaved because this machine's speed drifts: the per-record cost in wall and in CPU time. The load
    average is printed before and after, because other processes on the machine take cores from the
@@ -164,13 +167,14 @@ def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Gener
 
 
 def in_process(data: Path, first: int, last: int, spec) -> tuple[float, float]:
-    """(wall, CPU) seconds to compare records ``first..last`` of the local store in this process."""
+    """(wall, CPU) seconds to compare records ``first..last`` of the local store in this thread (its own CPU
+    time: this process also runs the two clusters' schedulers, in threads of their own)."""
     with open_records(data / "night.h5") as reader:
         records = [reader.read(i) for i in range(first, last + 1)]
-    wall, cpu = time.perf_counter(), time.process_time()
+    wall, cpu = time.perf_counter(), time.thread_time()
     for record in records:
         compare_spec(record, spec).to_dict()
-    return time.perf_counter() - wall, time.process_time() - cpu
+    return time.perf_counter() - wall, time.thread_time() - cpu
 
 
 def worker_cpu_s() -> float:
@@ -211,13 +215,16 @@ def bench_compare(folder: Path, records: int, per_segment: int, rounds: int, rng
             for n in ((1, 2) if k % 2 == 0 else (2, 1)):
                 runs[n].append(timed_compare(clients[n], refs, options))
                 assert runs[n][-1][2] == records
+        cpu_ms = {}
         for n, timed in runs.items():
             rate = statistics.median(rows / wall for wall, _, rows in timed)
-            cpu_ms = statistics.median(1e3 * cpu / rows for _, cpu, rows in timed)
-            print(f"  {n} worker(s): {rate:.1f} records/s, the workers' CPU {cpu_ms:.1f} ms a record (medians of "
-                  f"{rounds} rounds)")
+            cpu_ms[n] = statistics.median(1e3 * cpu / rows for _, cpu, rows in timed)
+            cores = statistics.median(cpu / wall for wall, cpu, _ in timed)
+            print(f"  {n} worker(s): {rate:.1f} records/s, the workers' CPU {cpu_ms[n]:.1f} ms a record, "
+                  f"{cores:.2f} cores busy (medians of {rounds} rounds)")
         speedups = [one[0] / two[0] for one, two in zip(runs[1], runs[2])]
-        print(f"  2 workers ÷ 1: {statistics.median(speedups):.2f}× (rounds {min(speedups):.2f}–{max(speedups):.2f})")
+        print(f"  2 workers ÷ 1: {statistics.median(speedups):.2f}× (rounds {min(speedups):.2f}–{max(speedups):.2f}); "
+              f"with a core for each worker, from the CPU time per record: {2 * cpu_ms[1] / cpu_ms[2]:.2f}×")
         walls, cpus = [], []
         for ref in refs[:max(rounds, 3)]:  # per-record cost, interleaved segment by segment
             here_wall, here_cpu = in_process(data, ref.first_index, ref.first_index + ref.records - 1, spec)

@@ -143,7 +143,8 @@ def fleet(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         # b3 names itself on the command line, b1 and b2 in their profiles
         profile = write_profile(folder / "bench.toml", bench, named=bench != "b3")
         argv = [sys.executable, "-m", "acqd", "daemon", "--plain", str(profile), "-d", str(folder / "data"),
-                "--sync", archive.as_uri(), *(["--bench-id", "b3"] if bench == "b3" else [])]
+                "--sync", archive.as_uri(), *(["--bench-id", "b3"] if bench == "b3" else []),
+                *(["--sync-verify", "readback"] if bench == "b2" else [])]  # b2 reads each copy back
         running.append(subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True))
         data[bench] = folder / "data"
     for proc in running:

@@ -40,8 +40,9 @@ def add_verify(parser: argparse.ArgumentParser, option: str) -> None:
 def register(sub: argparse._SubParsersAction) -> None:
     p = add_command(sub, "sync", help="send the data directory's finished segments to an archive, verified",
                     description="Copy every finished segment of the data directory (never the live .part) to "
-                                "the archive at URL as <bench_id>/<campaign>/<segment file>, each read back and "
-                                "checked against its SHA-256 before it is listed in the bench's catalog.json. A "
+                                "the archive at URL as <bench_id>/<campaign>/<segment file>, each hashed as it is "
+                                "sent and verified (--verify) before it is listed, with its SHA-256, in the "
+                                "bench's catalog.json. A "
                                 "second sync sends nothing; a sync that was killed is finished by the next one. "
                                 "Local files are never deleted, except by --prune.")
     add_archive(p)

@@ -1,6 +1,6 @@
 """Fleet benchmark: ``acqd sync`` against a plain upload, and ``acqd fleet compare`` on 1 and 2 workers.
 
-    python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--rounds 3]
+    python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--sync-rounds 8] [--rounds 3]
 
 1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records, 3
    to a segment) is sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder by
@@ -8,8 +8,8 @@
    the share fsynced and its size checked; the catalog rewritten at most once a second), by ``acqd sync
    --verify readback``, and by a plain ``put_file`` of the same files through the same fsspec client (on
    the share also followed by an fsync of each copy, the part of the sync's cost that durability takes).
-   Each round runs the sides in another order, each to a fresh prefix. Printed: MB/s of each and its
-   ratio to the plain ``put_file`` (the median of the per-round ratios).
+   Each of ``--sync-rounds`` rounds runs the sides in another order, each to a fresh prefix. Printed: MB/s
+   of each and its ratio to the plain ``put_file`` (the median of the per-round ratios).
 2. Fleet compare. ``--records`` records of the closed-form series-RLC step response with noise (1500
    samples, two channels, R fitted) are stored in segments of ``--segment-records`` and synced to a
    ``file://`` archive. Two LocalClusters stay up side by side, of 1 and of 2 worker processes; after a
@@ -242,11 +242,12 @@ def main() -> None:
     parser.add_argument("--records", type=int, default=2000)
     parser.add_argument("--segment-records", type=int, default=200)
     parser.add_argument("--sync-mb", type=float, default=64.0)
-    parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--rounds", type=int, default=3, help="rounds of fleet compare on 1 and 2 workers")
+    parser.add_argument("--sync-rounds", type=int, default=8, help="rounds of the sync sides (a second or two each)")
     args = parser.parse_args()
     rng = np.random.default_rng(14)
     with tempfile.TemporaryDirectory(prefix="acqd-bench-fleet-") as tmp:
-        bench_sync(Path(tmp), args.sync_mb, args.rounds, rng)
+        bench_sync(Path(tmp), args.sync_mb, args.sync_rounds, rng)
         bench_compare(Path(tmp), args.records, args.segment_records, args.rounds, rng)
 
 

@@ -22,7 +22,6 @@ What makes it safe to run at any time, as often as one likes, and to kill:
 
 from __future__ import annotations
 
-import hashlib
 import secrets
 import time
 from collections.abc import Callable, Iterable
@@ -37,8 +36,8 @@ from ..store.lockfile import release_lock, take_lock
 from ..store.naming import StorePaths, finished_segments, sync_directory
 from ..store.overview import is_overview, write_overview
 from ..store.segment import SegmentView
-from .archive import HASH_CHUNK_BYTES, INCOMING, Archive, ArchiveError, reaching
-from .transfer import (VERIFY_READBACK, VERIFY_UPLOAD, etag_problem, local_hashes, rename_on_share,
+from .archive import INCOMING, Archive, ArchiveError, reaching
+from .transfer import (VERIFY_READBACK, VERIFY_UPLOAD, etag_problem, file_sha256, local_hashes, rename_on_share,
                        send_and_read_back, send_to_s3, send_to_share)
 
 SYNC_LOCK = "sync.lock"
@@ -88,14 +87,6 @@ class SyncReport:
     seconds: float = 0.0
     synced: list[LocalSegment] = field(default_factory=list)  # every local segment now verified in the archive
     pruned: list[Path] = field(default_factory=list)  # local segments removed by ``prune``
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as f:
-        while chunk := f.read(HASH_CHUNK_BYTES):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def describe_segment(campaign: str, path: Path, fallback_bench_id: str) -> LocalSegment:

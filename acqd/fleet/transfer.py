@@ -79,6 +79,14 @@ def _blocks(path: Path, block_bytes: int) -> Iterator[memoryview]:
                 return
 
 
+def file_sha256(path: Path) -> str:
+    """The file's SHA-256, read through one reused buffer (a listed segment checked against its catalog entry)."""
+    digest = hashlib.sha256()
+    for block in _blocks(path, HASH_CHUNK_BYTES):
+        digest.update(block)
+    return digest.hexdigest()
+
+
 def local_hashes(path: Path) -> Sent:
     """The file's SHA-256 and the ETag its upload in ``PART_BYTES`` parts gets, in one read."""
     sha, md5s = hashlib.sha256(), []
@@ -125,7 +133,11 @@ def send_to_s3(archive: Archive, path: Path, key: str, size: int) -> Sent:
     sha, md5s = hashlib.sha256(), []
     if size <= PART_BYTES:  # one PUT: S3's multipart minimum part is 5 MiB, and one request is cheaper
         answer, md5 = _send_hashing(call, path.read_bytes(), sha, "put_object", Bucket=bucket, Key=name)
-        md5s.append(_checked_etag(archive, key, 1, answer, md5))
+        try:
+            md5s.append(_checked_etag(archive, key, 1, answer, md5))
+        except ArchiveError:
+            archive.fs.rm_file(key)  # the PUT made an object, and not of these bytes
+            raise
         faults.step("sync:chunk")
     else:
         upload = call("create_multipart_upload", Bucket=bucket, Key=name)["UploadId"]

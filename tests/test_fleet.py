@@ -515,6 +515,9 @@ def test_prune_removes_only_old_segments_verified_in_the_archive(kind: str, flee
         assert part.exists() and recent.exists() and not old0.exists()
         for path in (old0, old1, old_newest):  # what was removed is in the archive, byte for byte
             assert read_object(url, f"{bench}/night/{path.name}") == kept_bytes[path]
+        pruned = [e for e in read_runlog(data / "runlog.jsonl") if e["event"] == "sync_pruned"]
+        assert sorted(e["segment"] for e in pruned) == sorted(p.name for p in (old0, old1, old_newest))
+        assert {e["sha256"] for e in pruned} == {sha256_of(kept_bytes[p]) for p in (old0, old1, old_newest)}
         live.append(aged_record(10, bench, 0))  # the writer carries on, its indices after every one given out
     with open_records(data / "night.h5") as reader:
         assert [s.index for s in reader.index()] == [2, 4, 5]

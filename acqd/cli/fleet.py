@@ -6,6 +6,8 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from pathlib import Path
+from typing import Any
 
 from rich.table import Table
 from rich.text import Text
@@ -116,8 +118,13 @@ def sync_command(args: argparse.Namespace) -> int:
     from ..fleet.sync import sync
 
     archive = open_archive(args.url, args.endpoint_url)
-    report = sync(args.data_dir, archive, fallback_bench_id=args.bench_id or "", verify=args.verify,
-                  prune_days=args.prune)
+    runlog = _prune_log(args.data_dir) if args.prune is not None else None  # what --prune removes is logged
+    try:
+        report = sync(args.data_dir, archive, fallback_bench_id=args.bench_id or "", verify=args.verify,
+                      prune_days=args.prune, log=runlog.write if runlog else None)
+    finally:
+        if runlog:
+            runlog.close()
     if args.json:
         sys.stdout.write(json.dumps({"url": args.url, "uploaded": report.uploaded, "already": report.already,
                                      "adopted": report.adopted, "bytes_uploaded": report.bytes_uploaded,
@@ -137,6 +144,17 @@ def sync_command(args: argparse.Namespace) -> int:
         screen.print(Text(f"{len(report.pruned)} local segment(s) removed: verified in the archive, last record "
                           f"more than {args.prune} day(s) old"))
     return 0
+
+
+def _prune_log(data_dir: Path) -> Any:
+    """The data directory's run log, where ``--prune`` records each segment it removes (appended line by
+    line, so a daemon writing the same log meanwhile loses nothing)."""
+    from ..campaign.runlog import RunLog
+    from ..campaign.status import RUNLOG
+
+    if not data_dir.is_dir():
+        raise ConfigError(str(data_dir), "", "no such data directory")
+    return RunLog(data_dir / RUNLOG)
 
 
 def fleet_ls_command(args: argparse.Namespace) -> int:

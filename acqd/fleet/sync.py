@@ -12,8 +12,9 @@ What makes it safe to run at any time, as often as one likes, and to kill:
   a final name is always a complete segment; a kill leaves at most a temporary file (removed by the next
   sync) or a complete object not yet listed.
 * The bench's catalog is rewritten whole (by one PUT, or a move on a share) once a second while segments
-  go, and at the end. A kill before it leaves a final object the catalog does not list: the next sync checks it against the local file
-  (its ETag on S3, its SHA-256 read back elsewhere) and adopts it when it matches.
+  go, and at the end. A kill before it leaves a final object the catalog does not list: the next sync
+  checks it against the local file (its ETag on S3; its size on a share, where only a verified copy is
+  renamed into place; its SHA-256 read back with ``--verify readback``) and adopts it when it matches.
 * A segment is skipped when the catalog lists it with the local file's SHA-256 and the object has its
   size; so a second sync uploads nothing. A catalog entry with the same name but another SHA-256 is never
   overwritten, nor is a file on a share: that is an error naming both (two benches given one bench id,

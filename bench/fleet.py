@@ -1,28 +1,39 @@
 """Fleet benchmark: ``acqd sync`` against a plain upload, and ``acqd fleet compare`` on 1 and 2 workers.
 
-    python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--rounds 3]
+    python bench/fleet.py [--records 2000] [--segment-records 200] [--sync-mb 64] [--sync-rounds 8] [--rounds 3]
 
-1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records) is
-   sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder, by ``acqd sync``
-   (chunked upload to a temporary key, read back and hashed, moved, catalog rewritten) and by a plain
-   ``put_file`` of the same files through the same fsspec client, rounds alternating, each to a fresh
-   prefix. Printed: MB/s of each and sync ÷ plain (the median over the rounds).
+1. Sync throughput. A data directory of finished segments (``--sync-mb`` MB in all, 3.2 MB records, 3
+   to a segment) is sent to moto's S3 server on 127.0.0.1 (started here) and to a ``file://`` folder by
+   ``acqd sync`` (one pass: hashed and sent; on S3 checked against the parts' and the object's ETags, on
+   the share fsynced and its size checked; the catalog rewritten at most once a second), by ``acqd sync
+   --verify readback``, and by a plain ``put_file`` of the same files through the same fsspec client (on
+   the share also followed by an fsync of each copy, the part of the sync's cost that durability takes).
+   Each of ``--sync-rounds`` rounds runs the sides in another order, each to a fresh prefix. Printed: MB/s
+   of each and its ratio to the plain ``put_file`` (the median of the per-round ratios).
 2. Fleet compare. ``--records`` records of the closed-form series-RLC step response with noise (1500
    samples, two channels, R fitted) are stored in segments of ``--segment-records`` and synced to a
-   ``file://`` archive. ``fleet compare``'s work (every task, every row) is timed on a LocalCluster of 1
-   and of 2 worker processes (cluster start-up excluded and printed apart). Then, segment by segment for
-   ``--rounds`` segments, the same comparisons in this process (records already read from the local
-   store) and as one task on the 1-worker cluster (reading the archive), interleaved because this
-   machine's speed drifts. Printed: records/s on 1 and 2 workers and their ratio, and the median per-record
-   cost of the task ÷ in-process.
+   ``file://`` archive. Two LocalClusters stay up side by side, of 1 and of 2 worker processes; after a
+   first task on each (imports, first calls), each of ``--rounds`` rounds runs every segment's task on
+   both, the order alternating. Printed: records/s on each (wall clock), the workers' CPU time per record
+   (``getrusage`` in each worker, which other load on the machine does not inflate) and the cores they kept
+   busy, the median of the per-round 2 ÷ 1 speed-ups, and the speed-up the CPU time per record gives if
+   each worker has a core of its own (2 × CPU per record on 1 worker ÷ on 2). On a machine shared with
+   other sessions, Linux's autogroup scheduling gives one session's processes together one share of the
+   cores, so a second worker may get no more CPU than the first had alone: the "cores busy" column says. Then, segment by segment, the same comparisons in this process (records
+   already read from the local store) and as one task on the 1-worker cluster (reading the archive),
+   interleaved because this machine's speed drifts: the per-record cost in wall and in CPU time. The load
+   average is printed before and after, because other processes on the machine take cores from the
+   workers.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import math
 import os
+import resource
 import socket
 import statistics
 import subprocess
@@ -40,8 +51,10 @@ from acqd.compare import compare_spec, parse_dut_table  # noqa: E402
 from acqd.fleet.analysis import archived_segments, cluster, compare_task, run_per_segment  # noqa: E402
 from acqd.fleet.archive import open_archive  # noqa: E402
 from acqd.fleet.sync import sync  # noqa: E402
+from acqd.fleet.transfer import VERIFY_READBACK, VERIFY_UPLOAD  # noqa: E402
 from acqd.record import Channel, Record, Stimulus, TimeBase  # noqa: E402
 from acqd.store import RecordStore, open_records  # noqa: E402
+from acqd.store.naming import fsync_file  # noqa: E402
 
 L_H, C_F, RS_OHM = 3.3e-3, 100e-9, 50.0
 DUT = {"model": "series_rlc", "serial": "BENCH-0001", "r_ohm": 22.0, "l_h": L_H, "c_f": C_F,
@@ -102,20 +115,26 @@ def moto_server() -> tuple[subprocess.Popen, str]:
     return proc, "s3://bench"
 
 
-def sync_round(data: Path, base: str, round_no: int) -> tuple[float, float]:
-    """(seconds of acqd sync, seconds of a plain put_file of the same segments), each to a fresh prefix."""
-    archive = open_archive(f"{base}/sync-{round_no}")
+def timed_sync(data: Path, url: str, verify: str) -> float:
+    archive = open_archive(url)
     start = time.perf_counter()
-    report = sync(data, archive)
-    synced = time.perf_counter() - start
+    report = sync(data, archive, verify=verify)
+    seconds = time.perf_counter() - start
     assert len(report.uploaded) == len(list(data.glob("soak.0*.h5")))
-    plain = open_archive(f"{base}/plain-{round_no}")
+    return seconds
+
+
+def timed_plain(data: Path, url: str, fsync: bool) -> float:
+    """A plain ``put_file`` of each segment through the same client (on a share, ``fsync`` each copy too)."""
+    plain = open_archive(url)
     start = time.perf_counter()
     for path in sorted(data.glob("soak.0*.h5")):
         key = plain.key("bench-s", "soak", path.name)
         plain.parent_ready(key)
         plain.fs.put_file(str(path), key)
-    return synced, time.perf_counter() - start
+        if fsync:
+            fsync_file(Path(key))
+    return time.perf_counter() - start
 
 
 def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Generator) -> None:
@@ -126,25 +145,55 @@ def bench_sync(folder: Path, megabytes: float, rounds: int, rng: np.random.Gener
     try:
         share = (folder / "share").as_uri()
         for name, base in (("file://", share), ("S3 (moto, 127.0.0.1)", s3)):
-            pairs = [sync_round(data, base, k) for k in range(rounds)]
-            ratio = statistics.median(p / s for s, p in pairs)
+            sides = {"acqd sync": lambda url: timed_sync(data, url, VERIFY_UPLOAD),
+                     "acqd sync --verify readback": lambda url: timed_sync(data, url, VERIFY_READBACK),
+                     "plain put_file": lambda url: timed_plain(data, url, fsync=False)}
+            if base == share:
+                sides["plain put_file + fsync"] = lambda url: timed_plain(data, url, fsync=True)
+            seconds = {side: [] for side in sides}
+            for k in range(rounds):  # each round in another order, each side to a fresh prefix
+                order = list(sides)[k % len(sides):] + list(sides)[:k % len(sides)]
+                for j, side in enumerate(order):
+                    seconds[side].append(sides[side](f"{base}/round-{k}-{j}"))
+            plain = seconds["plain put_file"]
             mb = total / 1e6
-            print(f"sync to {name}: {mb:.0f} MB, acqd sync {mb / statistics.median(s for s, _ in pairs):.0f} MB/s, "
-                  f"plain put_file {mb / statistics.median(p for _, p in pairs):.0f} MB/s; "
-                  f"sync ÷ plain {ratio:.2f} (median of {rounds} rounds)")
+            print(f"sync to {name}: {mb:.0f} MB in {len(list(data.glob('soak.0*.h5')))} segments, {rounds} rounds")
+            for side, times in seconds.items():
+                ratio = statistics.median(p / t for p, t in zip(plain, times))
+                print(f"  {side}: {mb / statistics.median(times):.0f} MB/s, ÷ plain put_file {ratio:.2f} (median)")
     finally:
         proc.terminate()
         proc.wait(timeout=10)
 
 
-def in_process(data: Path, first: int, last: int, spec) -> float:
-    """Seconds to compare records ``first..last`` of the local store in this process."""
+def in_process(data: Path, first: int, last: int, spec) -> tuple[float, float]:
+    """(wall, CPU) seconds to compare records ``first..last`` of the local store in this thread (its own CPU
+    time: this process also runs the two clusters' schedulers, in threads of their own)."""
     with open_records(data / "night.h5") as reader:
         records = [reader.read(i) for i in range(first, last + 1)]
-    start = time.perf_counter()
+    wall, cpu = time.perf_counter(), time.thread_time()
     for record in records:
         compare_spec(record, spec).to_dict()
-    return time.perf_counter() - start
+    return time.perf_counter() - wall, time.thread_time() - cpu
+
+
+def worker_cpu_s() -> float:
+    """This process's CPU time (run on each worker through ``Client.run``)."""
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
+
+
+def timed_compare(client, refs, options) -> tuple[float, float, int]:
+    """(wall seconds, the workers' CPU seconds, rows) of ``fleet compare``'s tasks over ``refs``."""
+    cpu = sum(client.run(worker_cpu_s).values())
+    start = time.perf_counter()
+    parts = run_per_segment(client, compare_task, refs, **options)
+    wall = time.perf_counter() - start
+    return wall, sum(client.run(worker_cpu_s).values()) - cpu, sum(len(p) for p in parts)
+
+
+def load() -> str:
+    return "load average " + ", ".join(f"{x:.1f}" for x in os.getloadavg())
 
 
 def bench_compare(folder: Path, records: int, per_segment: int, rounds: int, rng: np.random.Generator) -> None:
@@ -156,29 +205,36 @@ def bench_compare(folder: Path, records: int, per_segment: int, rounds: int, rng
     refs = archived_segments(open_archive(url))
     options = {"url": url, "endpoint_url": None, "dut_json": json.dumps(DUT), "source": "bench [dut]"}
     spec = parse_dut_table(DUT, "bench [dut]")
-    rates = {}
-    for workers in (1, 2):
-        start = time.perf_counter()
-        with cluster(None, workers) as client:
-            up = time.perf_counter() - start
-            start = time.perf_counter()
-            parts = run_per_segment(client, compare_task, refs, **options)
-            seconds = time.perf_counter() - start
-            rows = sum(len(p) for p in parts)
-            assert rows == records
-            rates[workers] = rows / seconds
-            print(f"fleet compare, {workers} worker(s): {rows} records in {seconds:.1f} s, {rates[workers]:.1f} "
-                  f"records/s (cluster start-up {up:.1f} s apart)")
-            if workers == 1:  # per-record cost, interleaved with the in-process comparator segment by segment
-                ratios = []
-                for ref in refs[:rounds]:
-                    here = in_process(data, ref.first_index, ref.first_index + ref.records - 1, spec)
-                    start = time.perf_counter()
-                    run_per_segment(client, compare_task, [ref], **options)
-                    ratios.append((time.perf_counter() - start) / here)
-                print(f"per-record cost, 1 worker ÷ in-process (the same segment, {len(ratios)} interleaved rounds): "
-                      f"median {statistics.median(ratios):.2f}, rounds {min(ratios):.2f}–{max(ratios):.2f}")
-    print(f"2 workers ÷ 1: {rates[2] / rates[1]:.2f}×")
+    print(f"fleet compare: {records} records in {len(refs)} segments; {load()}")
+    with contextlib.ExitStack() as stack:
+        clients = {n: stack.enter_context(cluster(None, n)) for n in (1, 2)}  # both up: rounds interleave
+        for client in clients.values():
+            run_per_segment(client, compare_task, refs[:1], **options)  # imports and first-call costs, apart
+        runs: dict[int, list[tuple[float, float, int]]] = {1: [], 2: []}
+        for k in range(rounds):  # each round runs every segment on 1 and on 2 workers, the order alternating
+            for n in ((1, 2) if k % 2 == 0 else (2, 1)):
+                runs[n].append(timed_compare(clients[n], refs, options))
+                assert runs[n][-1][2] == records
+        cpu_ms = {}
+        for n, timed in runs.items():
+            rate = statistics.median(rows / wall for wall, _, rows in timed)
+            cpu_ms[n] = statistics.median(1e3 * cpu / rows for _, cpu, rows in timed)
+            cores = statistics.median(cpu / wall for wall, cpu, _ in timed)
+            print(f"  {n} worker(s): {rate:.1f} records/s, the workers' CPU {cpu_ms[n]:.1f} ms a record, "
+                  f"{cores:.2f} cores busy (medians of {rounds} rounds)")
+        speedups = [one[0] / two[0] for one, two in zip(runs[1], runs[2])]
+        print(f"  2 workers ÷ 1: {statistics.median(speedups):.2f}× (rounds {min(speedups):.2f}–{max(speedups):.2f}); "
+              f"with a core for each worker, from the CPU time per record: {2 * cpu_ms[1] / cpu_ms[2]:.2f}×")
+        walls, cpus = [], []
+        for ref in refs[:max(rounds, 3)]:  # per-record cost, interleaved segment by segment
+            here_wall, here_cpu = in_process(data, ref.first_index, ref.first_index + ref.records - 1, spec)
+            there_wall, there_cpu, _ = timed_compare(clients[1], [ref], options)
+            walls.append(there_wall / here_wall)
+            cpus.append(there_cpu / here_cpu)
+        print(f"  per-record cost, a 1-worker task ÷ in-process on the same segment ({len(walls)} interleaved "
+              f"rounds): wall {statistics.median(walls):.2f} (rounds {min(walls):.2f}–{max(walls):.2f}), CPU "
+              f"{statistics.median(cpus):.2f} (rounds {min(cpus):.2f}–{max(cpus):.2f})")
+    print(f"  {load()}")
 
 
 def main() -> None:
@@ -186,11 +242,12 @@ def main() -> None:
     parser.add_argument("--records", type=int, default=2000)
     parser.add_argument("--segment-records", type=int, default=200)
     parser.add_argument("--sync-mb", type=float, default=64.0)
-    parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--rounds", type=int, default=3, help="rounds of fleet compare on 1 and 2 workers")
+    parser.add_argument("--sync-rounds", type=int, default=8, help="rounds of the sync sides (a second or two each)")
     args = parser.parse_args()
     rng = np.random.default_rng(14)
     with tempfile.TemporaryDirectory(prefix="acqd-bench-fleet-") as tmp:
-        bench_sync(Path(tmp), args.sync_mb, args.rounds, rng)
+        bench_sync(Path(tmp), args.sync_mb, args.sync_rounds, rng)
         bench_compare(Path(tmp), args.records, args.segment_records, args.rounds, rng)
 
 

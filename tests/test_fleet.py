@@ -143,7 +143,8 @@ def fleet(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         # b3 names itself on the command line, b1 and b2 in their profiles
         profile = write_profile(folder / "bench.toml", bench, named=bench != "b3")
         argv = [sys.executable, "-m", "acqd", "daemon", "--plain", str(profile), "-d", str(folder / "data"),
-                "--sync", archive.as_uri(), *(["--bench-id", "b3"] if bench == "b3" else [])]
+                "--sync", archive.as_uri(), *(["--bench-id", "b3"] if bench == "b3" else []),
+                *(["--sync-verify", "readback"] if bench == "b2" else [])]  # b2 reads each copy back
         running.append(subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True))
         data[bench] = folder / "data"
     for proc in running:
@@ -234,11 +235,12 @@ def test_sync_sends_each_segment_once_and_verified(kind: str, fleet: dict[str, A
 
 
 def big_store(folder: Path, bench: str) -> Path:
-    """A data directory with one finished segment of several MiB (so an upload takes several chunks)."""
+    """A data directory with one finished segment of 19 MB: more than one part of an S3 upload
+    (``transfer.PART_BYTES``), and many chunks on a share."""
     data = folder / "data"
     data.mkdir(parents=True)
     with RecordStore(data / "soak.h5", fsync=False) as store:
-        for seed in range(2):
+        for seed in range(6):
             record = make_record(seed, n_channels=2, n_samples=200_000)
             record.bench_id = bench
             store.append(record)
@@ -421,3 +423,129 @@ def test_fleet_compare_gives_one_table_on_one_and_two_workers(fleet, local_clust
     assert row["r_ohm"] == here["fit"]["values"]["r_ohm"] and row["verdict"] == here["verdict"]
     assert [row["r_ohm_ci95_low"], row["r_ohm_ci95_high"]] == here["fit"]["ci95"]["r_ohm"]
     assert row["serial"] == SERIALS["b3"] and row["v_c_nrmse"] == here["channels"][0]["nrmse"]
+
+
+# -- what "verified" rests on -----------------------------------------------------------------------------
+def s3_etag_of(data: bytes, part_bytes: int) -> str:
+    """The ETag S3 gives an object uploaded in parts of ``part_bytes``: the MD5 of the parts' MD5 digests
+    one after another, "-", the part count; for a single PUT the MD5 of the body (common practice: the
+    AWS CLI's and SDKs' check; MD5 as RFC 1321 defines it, through hashlib)."""
+    parts = [data[i:i + part_bytes] for i in range(0, len(data), part_bytes)]
+    if len(parts) == 1:
+        return hashlib.md5(data).hexdigest()
+    return hashlib.md5(b"".join(hashlib.md5(p).digest() for p in parts)).hexdigest() + f"-{len(parts)}"
+
+
+def s3_key(url: str, key: str) -> tuple[str, str]:
+    bucket, _, prefix = url.removeprefix("s3://").partition("/")
+    return bucket, f"{prefix}/{key}"
+
+
+def test_an_unlisted_object_with_other_bytes_is_sent_again_not_adopted(fleet, request, tmp_path, capsys) -> None:
+    """A sync killed after its upload completed leaves an object the catalog does not list; if those bytes
+    are then not the segment's (same size, one byte changed), the next sync must not adopt it: the object's
+    ETag, computed by the server, is not the local file's."""
+    url = archive_url("s3", fleet, request)
+    data = big_store(tmp_path, "tampered")
+    (segment,) = sorted(data.glob("soak.0*.h5"))
+    bucket, key = s3_key(url, f"tampered/soak/{segment.name}")
+    env = {**os.environ, "ACQD_STORE_KILL_AT": "sync:uploaded"}
+    proc = subprocess.run([sys.executable, "-m", "acqd", "sync", url, "-d", str(data)], env=env,
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr
+    original = segment.read_bytes()
+    head = boto3.client("s3").head_object(Bucket=bucket, Key=key)
+    assert head["ETag"].strip('"') == s3_etag_of(original, 16 << 20)  # two parts of 16 MiB and less
+    other = bytearray(original)
+    other[len(other) // 2] ^= 0xFF
+    boto3.client("s3").put_object(Bucket=bucket, Key=key, Body=bytes(other))
+    report = run_json(capsys, "sync", url, "-d", str(data), "--json")
+    assert (len(report["uploaded"]), report["adopted"]) == (1, 0)
+    assert read_object(url, f"tampered/soak/{segment.name}") == original
+
+
+@pytest.mark.parametrize("kind", ["file", "s3"])
+def test_verify_readback_sends_and_reads_back(kind: str, fleet, request, tmp_path, capsys) -> None:
+    url = archive_url(kind, fleet, request) + "/readback"
+    data = big_store(tmp_path, "rb")
+    (segment,) = sorted(data.glob("soak.0*.h5"))
+    report = run_json(capsys, "sync", url, "-d", str(data), "--verify", "readback", "--json")
+    assert [e["sha256"] for e in report["uploaded"]] == [sha256_of(segment.read_bytes())]
+    assert read_object(url, f"rb/soak/{segment.name}") == segment.read_bytes()
+    again = run_json(capsys, "sync", url, "-d", str(data), "--verify", "readback", "--json")
+    assert again["uploaded"] == [] and again["already"] == 1
+    capsys.readouterr()
+    assert main(["sync", url, "-d", str(data), "--verify", "twice"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--verify" in err and "upload, readback" in err, err
+
+
+# -- prune ------------------------------------------------------------------------------------------------
+def aged_record(seed: int, bench: str, days_ago: float) -> Any:
+    record = make_record(seed)
+    record.bench_id = bench
+    record.utc = time.strftime("%Y-%m-%dT%H:%M:%S+00:00", time.gmtime(time.time() - days_ago * 86400))
+    return record
+
+
+def aged_store(data: Path, bench: str, days_ago: list[float]) -> list[Path]:
+    """A store of one record per finished segment, each taken ``days_ago`` before now; its segments."""
+    data.mkdir(parents=True, exist_ok=True)
+    with RecordStore(data / "night.h5", fsync=False, rotate_records=1) as store:
+        for seed, age in enumerate(days_ago):
+            store.append(aged_record(seed, bench, age))
+    return sorted(data.glob("night.0*.h5"))
+
+
+@pytest.mark.parametrize("kind", ["file", "s3"])
+def test_prune_removes_only_old_segments_verified_in_the_archive(kind: str, fleet, request, tmp_path,
+                                                                 capsys) -> None:
+    url = archive_url(kind, fleet, request)
+    bench = f"prune-{kind}"
+    data = tmp_path / "data"
+    old0, old1, recent, old_newest = aged_store(data, bench, [40, 35, 2, 50])
+    kept_bytes = {p: p.read_bytes() for p in (old0, old1, recent, old_newest)}
+    with RecordStore(data / "night.h5", fsync=False) as live:  # a writer appending, as the daemon would
+        live.append(aged_record(9, bench, 0))
+        (part,) = data.glob("*.part")
+        report = run_json(capsys, "sync", url, "-d", str(data), "--prune", "30", "--json")
+        # the live .part is never sent nor removed; the newest finished segment is old but goes too here,
+        # since the live one after it carries the store's numbering on
+        assert sorted(report["pruned"]) == sorted(map(str, (old0, old1, old_newest)))
+        assert part.exists() and recent.exists() and not old0.exists()
+        for path in (old0, old1, old_newest):  # what was removed is in the archive, byte for byte
+            assert read_object(url, f"{bench}/night/{path.name}") == kept_bytes[path]
+        pruned = [e for e in read_runlog(data / "runlog.jsonl") if e["event"] == "sync_pruned"]
+        assert sorted(e["segment"] for e in pruned) == sorted(p.name for p in (old0, old1, old_newest))
+        assert {e["sha256"] for e in pruned} == {sha256_of(kept_bytes[p]) for p in (old0, old1, old_newest)}
+        live.append(aged_record(10, bench, 0))  # the writer carries on, its indices after every one given out
+    with open_records(data / "night.h5") as reader:
+        assert [s.index for s in reader.index()] == [2, 4, 5]
+    import h5py
+    with h5py.File(data / "night.h5", "r") as overview:  # rewritten over the segments left
+        assert sorted(overview["segments"]) == ["000002", "000004"]
+    # with no writer, the newest finished segment stays whatever its age: the next writer numbers from it
+    newest = sorted(data.glob("night.0*.h5"))[-1]
+    report = run_json(capsys, "sync", url, "-d", str(data), "--prune", "0", "--json")
+    assert report["pruned"] == [str(recent)] and newest.exists()
+
+
+@pytest.mark.parametrize("kind", ["file", "s3"])
+def test_prune_keeps_a_segment_whose_archived_copy_changed(kind: str, fleet, request, tmp_path, capsys) -> None:
+    url = archive_url(kind, fleet, request)
+    bench = f"prune-changed-{kind}"
+    data = tmp_path / "data"
+    segments = aged_store(data, bench, [40, 39])
+    assert main(["sync", url, "-d", str(data)]) == 0
+    archived = bytearray(segments[0].read_bytes())
+    archived[len(archived) // 2] ^= 0xFF  # the archived copy damaged after it was verified, same size
+    if kind == "file":
+        (Path(url.removeprefix("file://")) / bench / "night" / segments[0].name).write_bytes(bytes(archived))
+    else:
+        bucket, key = s3_key(url, f"{bench}/night/{segments[0].name}")
+        boto3.client("s3").put_object(Bucket=bucket, Key=key, Body=bytes(archived))
+    capsys.readouterr()
+    assert main(["sync", url, "-d", str(data), "--prune", "30"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and segments[0].name in err and "never replaced" in err, err
+    assert all(p.exists() for p in segments)

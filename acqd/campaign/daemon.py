@@ -125,9 +125,11 @@ def stop_on_signals(stop: StopFlag) -> Iterator[None]:
 
 class Daemon:
     def __init__(self, profiles: Sequence[Path], data_dir: Path, console: Console, *, live: bool,
-                 bench_id: str = "", sync_url: str | None = None, endpoint_url: str | None = None) -> None:
+                 bench_id: str = "", sync_url: str | None = None, endpoint_url: str | None = None,
+                 sync_verify: str = "upload") -> None:
         self.profiles, self.data_dir, self.console, self.live = list(profiles), Path(data_dir), console, live
         self.bench_id, self.sync_url, self.endpoint_url = bench_id, sync_url, endpoint_url
+        self.sync_verify = sync_verify
         self.stop = StopFlag()
         self._removed: set[str] = set()  # campaigns whose jobs were removed once finished
 
@@ -180,7 +182,8 @@ class Daemon:
         from ..fleet import start_background_sync
 
         return start_background_sync(self.data_dir, self.sync_url, lambda event, **fields: runlog.write(event, **fields),
-                                     bench_id=self.bench_id, endpoint_url=self.endpoint_url)
+                                     bench_id=self.bench_id, endpoint_url=self.endpoint_url,
+                                     verify=self.sync_verify)
 
     def _schedule_and_wait(self, runners: list[CampaignRunner]) -> None:
         scheduler = build_scheduler(self.data_dir / FILENAME, len(runners))

@@ -15,6 +15,7 @@ from rich.text import Text
 from ..errors import ConfigError
 from .common import (SAFETY_NOTE, add_bench_id, add_command, add_data_dir, add_figures, add_json, add_last, add_store,
                      console)
+from .fleet import add_verify
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -31,6 +32,7 @@ def register(sub: argparse._SubParsersAction) -> None:
                                                  "thread (see acqd sync); acquisition never waits for it")
     p.add_argument("--endpoint-url", metavar="URL", help="with --sync: an S3-compatible store's endpoint, in "
                                                          "place of AWS_ENDPOINT_URL or the client's configuration")
+    add_verify(p, "--sync-verify")
     p.set_defaults(func=daemon_command)
 
     p = add_command(sub, "status", help="every campaign of a data directory: next slot, counts, last verdicts",
@@ -63,7 +65,7 @@ def daemon_command(args: argparse.Namespace) -> int:
     screen = console()
     return Daemon(args.profiles, args.data_dir, screen,
                   live=screen.is_terminal and not args.plain, bench_id=args.bench_id or "",
-                  sync_url=args.sync, endpoint_url=args.endpoint_url).run()
+                  sync_url=args.sync, endpoint_url=args.endpoint_url, sync_verify=args.sync_verify).run()
 
 
 def status_command(args: argparse.Namespace) -> int:

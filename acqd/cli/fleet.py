@@ -6,6 +6,8 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from pathlib import Path
+from typing import Any
 
 from rich.table import Table
 from rich.text import Text
@@ -23,16 +25,35 @@ def add_archive(parser: argparse.ArgumentParser) -> None:
                              "configuration (credentials always come from the environment or that configuration)")
 
 
+def add_verify(parser: argparse.ArgumentParser, option: str) -> None:
+    """How an upload is verified (``acqd sync --verify``, ``acqd daemon --sync-verify``)."""
+    def mode(text: str) -> str:
+        from ..fleet.transfer import VERIFY_MODES
+
+        if text not in VERIFY_MODES:
+            raise ConfigError(parser.prog, option, f"{text!r}; give one of {', '.join(VERIFY_MODES)}")
+        return text
+    parser.add_argument(option, metavar="HOW", type=mode, default="upload",
+                        help="upload (default): S3's MD5 ETags of what was sent, on a share the size after fsync; "
+                             "readback: read the object back and hash it (for a store whose ETag is not an MD5, "
+                             "e.g. SSE-KMS or SSE-C)")
+
+
 def register(sub: argparse._SubParsersAction) -> None:
     p = add_command(sub, "sync", help="send the data directory's finished segments to an archive, verified",
                     description="Copy every finished segment of the data directory (never the live .part) to "
-                                "the archive at URL as <bench_id>/<campaign>/<segment file>, each read back and "
-                                "checked against its SHA-256 before it is listed in the bench's catalog.json. A "
+                                "the archive at URL as <bench_id>/<campaign>/<segment file>, each hashed as it is "
+                                "sent and verified (--verify) before it is listed, with its SHA-256, in the "
+                                "bench's catalog.json. A "
                                 "second sync sends nothing; a sync that was killed is finished by the next one. "
-                                "Local files are never deleted.")
+                                "Local files are never deleted, except by --prune.")
     add_archive(p)
     add_data_dir(p)
     add_bench_id(p, "the bench id for records that carry none (stores written before [bench] bench_id)")
+    add_verify(p, "--verify")
+    p.add_argument("--prune", metavar="DAYS", type=whole_number(p.prog, "--prune", 0),
+                   help="then remove the local segments this sync found verified in the archive whose last "
+                        "record is more than DAYS days old (never the live .part, nor a store's newest segment)")
     add_json(p, "print the sync's report as JSON")
     p.set_defaults(func=sync_command)
 
@@ -97,11 +118,18 @@ def sync_command(args: argparse.Namespace) -> int:
     from ..fleet.sync import sync
 
     archive = open_archive(args.url, args.endpoint_url)
-    report = sync(args.data_dir, archive, fallback_bench_id=args.bench_id or "")
+    runlog = _prune_log(args.data_dir) if args.prune is not None else None  # what --prune removes is logged
+    try:
+        report = sync(args.data_dir, archive, fallback_bench_id=args.bench_id or "", verify=args.verify,
+                      prune_days=args.prune, log=runlog.write if runlog else None)
+    finally:
+        if runlog:
+            runlog.close()
     if args.json:
         sys.stdout.write(json.dumps({"url": args.url, "uploaded": report.uploaded, "already": report.already,
                                      "adopted": report.adopted, "bytes_uploaded": report.bytes_uploaded,
-                                     "seconds": report.seconds}, indent=1) + "\n")
+                                     "seconds": report.seconds, "pruned": [str(p) for p in report.pruned]},
+                                    indent=1) + "\n")
         return 0
     screen = console(wide=True)
     for entry in report.uploaded:
@@ -110,7 +138,23 @@ def sync_command(args: argparse.Namespace) -> int:
     screen.print(Text(f"{len(report.uploaded)} segment(s) sent to {args.url} ({report.bytes_uploaded} bytes, "
                       f"{report.seconds:.2f} s); {report.already} already there"
                       + (f", {report.adopted} found complete and listed" if report.adopted else "")))
+    if args.prune is not None:
+        for path in report.pruned:
+            screen.print(Text(f"removed {path}"))
+        screen.print(Text(f"{len(report.pruned)} local segment(s) removed: verified in the archive, last record "
+                          f"more than {args.prune} day(s) old"))
     return 0
+
+
+def _prune_log(data_dir: Path) -> Any:
+    """The data directory's run log, where ``--prune`` records each segment it removes (appended line by
+    line, so a daemon writing the same log meanwhile loses nothing)."""
+    from ..campaign.runlog import RunLog
+    from ..campaign.status import RUNLOG
+
+    if not data_dir.is_dir():
+        raise ConfigError(str(data_dir), "", "no such data directory")
+    return RunLog(data_dir / RUNLOG)
 
 
 def fleet_ls_command(args: argparse.Namespace) -> int:

@@ -52,6 +52,10 @@ class Archive:
     def local(self) -> bool:
         return "file" in _protocols(self.fs)
 
+    @property
+    def s3(self) -> bool:
+        return "s3" in _protocols(self.fs)
+
     def key(self, *parts: str) -> str:
         """The path of ``parts`` under the archive's root (``/`` separated, as every fsspec store uses)."""
         return "/".join([self.root, *parts]) if self.root else "/".join(parts)
@@ -75,6 +79,15 @@ class Archive:
             return int(self.fs.size(key))
         except FileNotFoundError:
             return None
+
+    def sizes_under(self, bench_id: str) -> dict[str, int]:
+        """The size of every object under the bench's folder, by key, from one listing (not a request per
+        segment)."""
+        try:
+            found = self.fs.find(self.key(bench_id), detail=True)
+        except FileNotFoundError:
+            return {}
+        return {path: int(info["size"]) for path, info in found.items() if info.get("type", "file") == "file"}
 
     def benches(self) -> list[str]:
         """Every bench with a catalog in the archive."""
@@ -100,12 +113,17 @@ class Archive:
         return catalog
 
     def write_catalog(self, bench_id: str, catalog: dict[str, Any], token: str) -> None:
-        """Replace the bench's catalog whole: written beside it under a temporary name, then moved, so a
-        reader sees the old catalog or the new one, never half of one."""
+        """Replace the bench's catalog whole, so that a reader sees the old catalog or the new one, never half
+        of one: on an object store by one PUT (an object is replaced whole when its upload completes), on
+        any other file system written beside it under a temporary name, then moved."""
         key = self.key(bench_id, CATALOG)
+        text = (json.dumps(catalog, indent=1, sort_keys=True) + "\n").encode()
+        if self.s3:
+            self.fs.pipe_file(key, text)
+            return
         temporary = self.key(bench_id, INCOMING, f"{CATALOG}.{token}")
         self.parent_ready(temporary)
-        self.fs.pipe_file(temporary, (json.dumps(catalog, indent=1, sort_keys=True) + "\n").encode())
+        self.fs.pipe_file(temporary, text)
         self.fs.mv(temporary, key)
 
 

@@ -22,6 +22,7 @@ from ..errors import AcqdError
 from ..store.naming import finished_segments
 from .archive import open_archive
 from .sync import sync
+from .transfer import VERIFY_UPLOAD
 
 POLL_S = 2.0
 RETRIES = 4
@@ -40,9 +41,9 @@ class BackgroundSync:
     daemon's run log."""
 
     def __init__(self, data_dir: Path, url: str, log: Callable[..., Any], *, bench_id: str = "",
-                 endpoint_url: str | None = None, poll_s: float = POLL_S, retries: int = RETRIES,
-                 backoff_s: float = BACKOFF_S) -> None:
-        self.data_dir, self.log, self.bench_id = Path(data_dir), log, bench_id
+                 endpoint_url: str | None = None, verify: str = VERIFY_UPLOAD, poll_s: float = POLL_S,
+                 retries: int = RETRIES, backoff_s: float = BACKOFF_S) -> None:
+        self.data_dir, self.log, self.bench_id, self.verify = Path(data_dir), log, bench_id, verify
         self.archive = open_archive(url, endpoint_url)  # a malformed URL is a start-up error
         self.poll_s, self.retries, self.backoff_s = poll_s, retries, backoff_s
         self.synced: set[Path] = set()
@@ -77,7 +78,7 @@ class BackgroundSync:
         for attempt in range(1, retries + 2):
             try:
                 report = sync(self.data_dir, self.archive, fallback_bench_id=self.bench_id, only=pending,
-                              log=self.log)
+                              log=self.log, verify=self.verify)
             except Exception as exc:  # noqa: BLE001 - whatever the archive does, the daemon goes on
                 last = attempt > retries
                 delay = min(self.backoff_s * 2 ** (attempt - 1), MAX_BACKOFF_S)
@@ -86,11 +87,11 @@ class BackgroundSync:
                 if last or self._stop.wait(delay):
                     return  # a stop during the back-off: the loop's last attempt comes next
             else:
-                self.synced.update(report.synced)
+                self.synced.update(s.path for s in report.synced)
                 return
 
 
 def start_background_sync(data_dir: Path, url: str, log: Callable[..., Any], *, bench_id: str = "",
-                          endpoint_url: str | None = None) -> BackgroundSync:
+                          endpoint_url: str | None = None, verify: str = VERIFY_UPLOAD) -> BackgroundSync:
     """The daemon's one entry into this package: a started ``BackgroundSync``; call ``stop()`` at exit."""
-    return BackgroundSync(data_dir, url, log, bench_id=bench_id, endpoint_url=endpoint_url).start()
+    return BackgroundSync(data_dir, url, log, bench_id=bench_id, endpoint_url=endpoint_url, verify=verify).start()

@@ -44,17 +44,19 @@ def is_overview(path: Path) -> bool:
         return False
 
 
-def write_overview(paths: StorePaths) -> None:
+def write_overview(paths: StorePaths, tag: str = "") -> None:
     """Rewrite ``paths.path`` over the finished segments now present; with none, remove a stale one.
 
     Written under a temporary name and renamed, so a reader never opens a half-written overview; not
-    fsynced, because it is derived: after a power cut the next writer rewrites it."""
+    fsynced, because it is derived: after a power cut the next writer rewrites it. ``tag`` goes in the
+    temporary name, for a process other than the store's writer (``acqd sync --prune``), so that two
+    never write one temporary file."""
     finished = [s for s in paths.segments() if s.state == ""]
     if not finished:
         if paths.path.is_file() and is_overview(paths.path):
             paths.path.unlink()
         return
-    temporary = paths.directory / f"{paths.path.name}{_WRITING}"
+    temporary = paths.directory / f"{paths.path.name}{tag}{_WRITING}"
     try:
         with h5py.File(temporary, "w", libver=LIBVER) as out:
             _fill(out, paths, [s.path for s in finished], [s.number for s in finished])

@@ -19,7 +19,7 @@ from pyvisa_py.protocols import hislip as pyvisa_hislip
 
 from acqd.errors import InstrumentError
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, served_beside_the_socket
 
 TYPE = pyvisa_hislip.MESSAGETYPE  # an independent implementation's numbering of the message types
 HEADER = "!2sBBIQ"  # IVI-6.1 §3.1: "HS", message type, control code, message parameter, payload length
@@ -241,17 +241,6 @@ def test_status_query_locks_and_remote_local_through_pyvisa_py(bench, visa):
     assert bench.call(lambda: (bench.generator.remote, bench.generator.local_lockout)) == (True, True)
     client.async_remote_local_control("disableAndGTL")
     assert bench.call(lambda: (bench.generator.remote, bench.generator.local_lockout)) == (False, False)
-
-
-def test_step_test_over_hislip_stores_the_records_the_socket_gives(tmp_path):
-    over_socket = run_and_read(tmp_path / "socket", "socket")
-    over_hislip = run_and_read(tmp_path / "hislip", "hislip")
-    assert len(over_hislip) == len(over_socket) == 1
-    # The same seeded bench through either transport: bit-identical samples (CRC-32, zlib's, over the
-    # float64 samples) and the same read-back settings.
-    assert over_hislip[0].checksum() == over_socket[0].checksum()
-    assert over_hislip[0].settings == over_socket[0].settings
-    assert over_hislip[0].analysis["verdict"] == over_socket[0].analysis["verdict"] == "pass"
 
 
 def test_an_unreachable_hislip_port_is_one_line():

@@ -27,7 +27,7 @@ import pyvisa
 from pyvisa_py.protocols import rpc, vxi11
 
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, served_beside_the_socket
 
 HERE = Path(__file__).resolve().parent
 
@@ -214,13 +214,6 @@ def test_block_bytes_equal_the_socket_transport(bench, visa):
     with Session(vxi(bench)["scope"]) as scope:
         payload = scope.query_block("TRACe? CH1")
     np.testing.assert_array_equal(np.frombuffer(payload, ">f4"), expected)  # pyvisa's decoder on the socket
-
-
-def test_step_test_over_vxi11_stores_the_records_the_socket_gives(tmp_path):
-    over_socket = run_and_read(tmp_path / "socket", "socket")
-    over_vxi11 = run_and_read(tmp_path / "vxi11", "vxi11")
-    assert over_vxi11[0].checksum() == over_socket[0].checksum()  # CRC-32 (zlib) of the samples
-    assert over_vxi11[0].settings == over_socket[0].settings
 
 
 def _namespace_command() -> list[str] | None:

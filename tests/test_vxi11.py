@@ -246,6 +246,8 @@ def test_pyvisa_finds_the_core_channel_through_the_portmapper_on_port_111():
     # python-vxi11, an independent client (its own RPC and VXI-11 code): a query, the status byte with the
     # error-queue bit (SCPI-1999, from memory: bit 2), lock, clear, local/remote, abort, and device_trigger
     # refused as not supported (VXI-11 error 8).
+    # pyvisa's own shell, through the portmapper too: *IDN?, and FREQ? after its FREQ 5000 (NR3).
+    assert seen["pyvisa_shell"][0].startswith("acqd-sim,FG,") and float(seen["pyvisa_shell"][1]) == 5000
     independent = seen["python_vxi11"]
     if independent is None:
         pytest.skip("python-vxi11 not installed (pip install -e '.[test]' brings it)")

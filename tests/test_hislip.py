@@ -195,6 +195,47 @@ def test_device_clear_drops_an_unread_response_and_restarts_message_ids(bench, r
     assert message_id == FIRST_MESSAGE_ID and float(payload) == 1e3  # *RST's 1 kHz: FREQ 5E3 never ran
 
 
+def device_clear(client: RawClient, features: int) -> int:
+    """AsyncDeviceClear, then DeviceClearComplete asking for ``features``; the features granted."""
+    client.send(client.async_, "AsyncDeviceClear", 0, 0)
+    kind, offered, _, _ = client.receive(client.async_)
+    assert (kind, offered) == (TYPE["AsyncDeviceClearAcknowledge"], 0)  # we prefer synchronized mode
+    client.send(client.sync, "DeviceClearComplete", features, 0)
+    kind, granted, _, _ = client.receive(client.sync)
+    assert kind == TYPE["DeviceClearAcknowledge"]
+    return granted
+
+
+def test_overlapped_mode_when_the_client_asks_keeps_queries_from_interrupting(bench, raw):
+    """IVI-6.1 §6.12 (from memory): feature bit 0 of DeviceClearComplete asks for overlapped mode, and
+    DeviceClearAcknowledge says what was granted. Synchronized, a query sent while a reply is pending
+    interrupts it (IEEE 488.2 §6.3.2.3, −410); overlapped, both are answered in order with their IDs."""
+    bench.generator.faults.reply_delay_s = 0.3  # each reply is pending long enough for the next message
+    client = raw(hislip(bench)["generator"])
+    client.initialize()
+
+    def two_queries() -> list[tuple[int, int, bytes]]:
+        """*IDN? and FREQ? sent back to back; what comes back within the replies' delay (type, ID, payload)."""
+        client.send(client.sync, "DataEnd", 0, FIRST_MESSAGE_ID, b"*IDN?\n")
+        client.send(client.sync, "DataEnd", 0, FIRST_MESSAGE_ID + 2, b"FREQ?\n")
+        replies = []
+        while not replies or replies[-1][1] != FIRST_MESSAGE_ID + 2:
+            kind, _, message_id, payload = client.receive(client.sync)
+            replies.append((kind, message_id, payload))
+        return replies
+
+    assert device_clear(client, 0) == 0
+    assert two_queries() == [(TYPE["DataEnd"], FIRST_MESSAGE_ID + 2, b"1E+03\n")]  # *IDN? interrupted
+    assert client.query("SYSTem:ERRor?", FIRST_MESSAGE_ID + 4)[0][2].startswith(b"-410,")
+    assert device_clear(client, 1) == 1  # overlapped, as asked
+    (idn, freq) = two_queries()
+    assert idn[:2] == (TYPE["DataEnd"], FIRST_MESSAGE_ID) and idn[2].startswith(b"acqd-sim,FG,")
+    assert freq == (TYPE["DataEnd"], FIRST_MESSAGE_ID + 2, b"1E+03\n")
+    bench.generator.faults.reply_delay_s = 0.0
+    assert device_clear(client, 0) == 0  # synchronized again until asked
+    assert client.query("SYSTem:ERRor?", FIRST_MESSAGE_ID)[0][2].startswith(b"0,")
+
+
 def test_a_timeout_leaves_the_scope_busy_and_device_clear_resynchronises(bench):
     bench.scope.faults.trigger_never = True
     with Session(hislip(bench)["scope"], timeout_s=2.0) as scope:

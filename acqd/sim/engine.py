@@ -881,6 +881,7 @@ class MessageExchange:
         self._input_arrived = asyncio.Event()
         self._closed = asyncio.Event()
         self._cleared = asyncio.Event()  # replaced at every clear: a waiter holds the one it started with
+        self.interrupt_queries = True  # False: new input waits its turn behind a pending reply (HiSLIP overlapped mode)
 
     # -- input ---------------------------------------------------------------------------------------
     def receive(self, data: bytes, end: bool = False, tag: Any = None) -> None:
@@ -966,7 +967,7 @@ class MessageExchange:
         quietly on a device clear."""
         task = asyncio.ensure_future(awaitable)
         watchers = [asyncio.ensure_future(self._closed.wait()), asyncio.ensure_future(self._cleared.wait())]
-        if reply_pending:
+        if reply_pending and self.interrupt_queries:
             watchers.append(asyncio.ensure_future(self._input_arrived.wait()))
         try:
             done, _ = await asyncio.wait({task, *watchers}, return_when=asyncio.FIRST_COMPLETED)

@@ -1,5 +1,5 @@
-"""The HiSLIP transport: IVI-6.1 High-Speed LAN Instrument Protocol, synchronized mode
-(``TCPIP0::host::hislip0,port::INSTR``).
+"""The HiSLIP transport: IVI-6.1 High-Speed LAN Instrument Protocol, synchronized mode, overlapped mode
+when the client asks (``TCPIP0::host::hislip0,port::INSTR``).
 
 Written from the specification, IVI-6.1 revision 2.0 (HiSLIP 2.0). The clause numbers cited are from
 memory and so is every value marked so; the message layout (§3.1), the message types (§3.2 table) and
@@ -23,7 +23,13 @@ the control codes are the specification's. What is served:
   (input and output dropped, a blocked ``*OPC?`` abandoned); the server answers AsyncDeviceClearAcknowledge
   and from then on discards Data messages and sends nothing on the synchronous channel until the client's
   DeviceClearComplete there, answered by DeviceClearAcknowledge. Both sides restart message IDs at
-  0xFFFFFF00. Feature bits: 0 (synchronized mode, no encryption) in every acknowledgement.
+  0xFFFFFF00. Feature bits: AsyncDeviceClearAcknowledge offers 0 (we prefer synchronized mode, no
+  encryption); the client's DeviceClearComplete asks, and DeviceClearAcknowledge grants what it asked.
+* **Overlapped mode (§6.12, from memory):** granted when a client asks for it (feature bit 0 of
+  DeviceClearComplete) and kept until the next device clear. Then a program message that arrives while a
+  response is pending waits its turn instead of interrupting the query (no −410): responses go out in
+  order, each with its message ID. pyvisa-py 0.8.1 never asks (it echoes the server's preference), so
+  acqd's sessions run synchronized.
 * **AsyncLock (§6.9):** request (control code 1; message parameter the timeout in ms; payload empty for
   the exclusive lock, else a shared lock's name) and release (control code 0), answered by
   AsyncLockResponse 0 failure, 1 success (exclusive), 2 success shared, 3 error (release without a lock).
@@ -50,7 +56,7 @@ read is the response as Data messages up to the pause and the DataEnd after it (
 the pause abandons the rest). ``HislipServer.faults`` (``HislipFaults``) adds this transport's own: a
 FatalError in answer to the next program message.
 
-Not served: overlapped mode, the 2.0 secure connection and authentication messages (StartTLS, SASL;
+Not served: the 2.0 secure connection and authentication messages (StartTLS, SASL;
 answered with Error 1), GetDescriptors, AsyncServiceRequest (no SRQ is ever raised), Interrupted.
 """
 
@@ -77,6 +83,7 @@ PROLOGUE = b"HS"
 INITIAL_MESSAGE_ID = 0xFFFF_FF00
 MAX_MESSAGE_BYTES = MessageExchange.MAX_MESSAGE_BYTES
 RMT_DELIVERED = 0x01
+FEATURE_OVERLAPPED = 0x01  # feature bit 0 of the device-clear messages: overlapped mode (§6.12, from memory)
 DISCARD_CHUNK = 1 << 16
 
 
@@ -378,7 +385,9 @@ class HislipServer:
             elif header.type == Type.DEVICE_CLEAR_COMPLETE:
                 session.clearing = False
                 session.unread = False
-                writer.write(pack(Type.DEVICE_CLEAR_ACKNOWLEDGE, 0))
+                overlapped = bool(header.control & FEATURE_OVERLAPPED)  # the client's request, granted
+                session.exchange.interrupt_queries = not overlapped
+                writer.write(pack(Type.DEVICE_CLEAR_ACKNOWLEDGE, FEATURE_OVERLAPPED if overlapped else 0))
             elif header.type == Type.TRIGGER:
                 pass  # DT0: no device trigger (IEEE 488.2 §5.? capability codes, from memory)
             elif header.type == Type.FATAL_ERROR:

@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 import pyvisa
 
-from acqd.benchsession import open_bench
+from acqd.benchsession import Replay, open_bench
 from acqd.cli import main
 from acqd.errors import InstrumentError
 from acqd.judge import make_judge
@@ -284,6 +284,8 @@ def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path, 
             assert a.checksum() == b.checksum()
             assert a.analysis["verdict"] == b.analysis["verdict"] == "pass"
             assert a.analysis["fit"]["values"] == b.analysis["fit"]["values"]
+    with open_bench(load_profile(path), Replay(tmp_path / "records.h5")) as replayed:  # what --replay opens
+        assert RESOURCE_MARK[transport] in replayed.scope.resource  # served over the profile's transport
     assert main(["run", str(path), "--replay", str(tmp_path / "records.h5"), "--records", "0,x"]) == 2
     assert "--records" in capsys.readouterr().err
     assert main(["run", str(path), "--records", "0"]) == 2  # a selection without a replay file means nothing

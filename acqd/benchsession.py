@@ -36,19 +36,29 @@ class Replay:
     records: Sequence[int] | None = None
 
 
-def simulated_bench(profile: Profile) -> Any:
-    """A not-yet-started simulated bench built from the profile's [bench.simulated] table."""
-    from .sim.bench import SimBench, SimBenchConfig  # the simulated bench is only imported when asked for
+def _simulated_config(profile: Profile) -> Any:
+    """The profile's [bench.simulated] table, validated (``sim.bench.SimBenchConfig``)."""
+    from .sim.bench import SimBenchConfig  # the simulated bench is only imported when asked for
 
     units = len(profile.batch.units) if profile.batch is not None else None
-    config = SimBenchConfig.from_mapping(profile.bench.simulated or {}, profile.source, profile.text, units)
-    return SimBench(config)
+    return SimBenchConfig.from_mapping(profile.bench.simulated or {}, profile.source, profile.text, units)
 
 
-def replay_bench(replay: Replay) -> Any:
+def simulated_bench(profile: Profile) -> Any:
+    """A not-yet-started simulated bench built from the profile's [bench.simulated] table."""
+    from .sim.bench import SimBench
+
+    return SimBench(_simulated_config(profile))
+
+
+def replay_bench(replay: Replay, profile: Profile) -> Any:
+    """A not-yet-started replay bench, served over the transport the profile's [bench.simulated] names
+    (the raw socket without one), so a regression run takes the client path of the run it replays."""
+    from .sim.bench import Serving
     from .sim.replay import ReplayBench
 
-    return ReplayBench(replay.path, replay.records)
+    transport = _simulated_config(profile).transport if profile.bench.simulated else "socket"
+    return ReplayBench(replay.path, replay.records, serving=Serving((transport,)))
 
 
 def _simulated_resource(plan: InstrumentPlan, driver: Driver, identities: dict[str, str], profile: Profile) -> str:
@@ -76,7 +86,7 @@ def open_bench(profile: Profile, replay: Replay | None = None) -> Iterator[Bench
     with ExitStack() as stack:
         sim = None
         if replay is not None or profile.bench.kind == "simulated":
-            sim = replay_bench(replay) if replay is not None else simulated_bench(profile)
+            sim = replay_bench(replay, profile) if replay is not None else simulated_bench(profile)
             stack.enter_context(sim)
             plan = plans[0]  # every simulated instrument is asked once, however many roles look for one
             identities = {r: identify(r, backend=plan.backend, timeout_s=plan.timeout_s)

@@ -2,7 +2,8 @@
 
 ``sim_bench(config_or_table, **keys)`` starts a bench (servers on ports the OS picks) and the fixture stops
 it after the test; ``visa(resource)`` opens a pyvisa session with the bench's line terminations and closes
-it after the test. Both are factories, so a test can start several benches or sessions.
+it after the test. Both are factories, so a test can start several benches or sessions. ``transport``
+runs a test once per transport the simulated bench serves.
 """
 
 from __future__ import annotations
@@ -19,10 +20,17 @@ from typing import Any  # noqa: E402
 
 import pytest  # noqa: E402
 
-from acqd.sim.bench import SimBench, SimBenchConfig
+from acqd.sim.bench import TRANSPORTS, SimBench, SimBenchConfig  # noqa: E402
 
 # Front-end imperfections off: exact plant values through the 8-bit ADC only (quantisation stays on).
 QUIET: dict[str, Any] = {"noise_v_rms": 0.0, "jitter_s": 0.0, "bandwidth_hz": 0.0, "edge_time_s": 0.0}
+
+
+@pytest.fixture(params=TRANSPORTS)
+def transport(request: pytest.FixtureRequest) -> str:
+    """Each transport the simulated bench serves (raw socket, HiSLIP, VXI-11 without a portmapper): a test
+    that takes it runs once per transport, through pyvisa-py's client for each."""
+    return request.param
 
 
 @pytest.fixture

@@ -19,7 +19,7 @@ from pyvisa_py.protocols import hislip as pyvisa_hislip
 
 from acqd.errors import InstrumentError
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, served_beside_the_socket
 
 TYPE = pyvisa_hislip.MESSAGETYPE  # an independent implementation's numbering of the message types
 HEADER = "!2sBBIQ"  # IVI-6.1 §3.1: "HS", message type, control code, message parameter, payload length
@@ -195,6 +195,47 @@ def test_device_clear_drops_an_unread_response_and_restarts_message_ids(bench, r
     assert message_id == FIRST_MESSAGE_ID and float(payload) == 1e3  # *RST's 1 kHz: FREQ 5E3 never ran
 
 
+def device_clear(client: RawClient, features: int) -> int:
+    """AsyncDeviceClear, then DeviceClearComplete asking for ``features``; the features granted."""
+    client.send(client.async_, "AsyncDeviceClear", 0, 0)
+    kind, offered, _, _ = client.receive(client.async_)
+    assert (kind, offered) == (TYPE["AsyncDeviceClearAcknowledge"], 0)  # we prefer synchronized mode
+    client.send(client.sync, "DeviceClearComplete", features, 0)
+    kind, granted, _, _ = client.receive(client.sync)
+    assert kind == TYPE["DeviceClearAcknowledge"]
+    return granted
+
+
+def test_overlapped_mode_when_the_client_asks_keeps_queries_from_interrupting(bench, raw):
+    """IVI-6.1 §6.12 (from memory): feature bit 0 of DeviceClearComplete asks for overlapped mode, and
+    DeviceClearAcknowledge says what was granted. Synchronized, a query sent while a reply is pending
+    interrupts it (IEEE 488.2 §6.3.2.3, −410); overlapped, both are answered in order with their IDs."""
+    bench.generator.faults.reply_delay_s = 0.3  # each reply is pending long enough for the next message
+    client = raw(hislip(bench)["generator"])
+    client.initialize()
+
+    def two_queries() -> list[tuple[int, int, bytes]]:
+        """*IDN? and FREQ? sent back to back; what comes back within the replies' delay (type, ID, payload)."""
+        client.send(client.sync, "DataEnd", 0, FIRST_MESSAGE_ID, b"*IDN?\n")
+        client.send(client.sync, "DataEnd", 0, FIRST_MESSAGE_ID + 2, b"FREQ?\n")
+        replies = []
+        while not replies or replies[-1][1] != FIRST_MESSAGE_ID + 2:
+            kind, _, message_id, payload = client.receive(client.sync)
+            replies.append((kind, message_id, payload))
+        return replies
+
+    assert device_clear(client, 0) == 0
+    assert two_queries() == [(TYPE["DataEnd"], FIRST_MESSAGE_ID + 2, b"1E+03\n")]  # *IDN? interrupted
+    assert client.query("SYSTem:ERRor?", FIRST_MESSAGE_ID + 4)[0][2].startswith(b"-410,")
+    assert device_clear(client, 1) == 1  # overlapped, as asked
+    (idn, freq) = two_queries()
+    assert idn[:2] == (TYPE["DataEnd"], FIRST_MESSAGE_ID) and idn[2].startswith(b"acqd-sim,FG,")
+    assert freq == (TYPE["DataEnd"], FIRST_MESSAGE_ID + 2, b"1E+03\n")
+    bench.generator.faults.reply_delay_s = 0.0
+    assert device_clear(client, 0) == 0  # synchronized again until asked
+    assert client.query("SYSTem:ERRor?", FIRST_MESSAGE_ID)[0][2].startswith(b"0,")
+
+
 def test_a_timeout_leaves_the_scope_busy_and_device_clear_resynchronises(bench):
     bench.scope.faults.trigger_never = True
     with Session(hislip(bench)["scope"], timeout_s=2.0) as scope:
@@ -241,17 +282,6 @@ def test_status_query_locks_and_remote_local_through_pyvisa_py(bench, visa):
     assert bench.call(lambda: (bench.generator.remote, bench.generator.local_lockout)) == (True, True)
     client.async_remote_local_control("disableAndGTL")
     assert bench.call(lambda: (bench.generator.remote, bench.generator.local_lockout)) == (False, False)
-
-
-def test_step_test_over_hislip_stores_the_records_the_socket_gives(tmp_path):
-    over_socket = run_and_read(tmp_path / "socket", "socket")
-    over_hislip = run_and_read(tmp_path / "hislip", "hislip")
-    assert len(over_hislip) == len(over_socket) == 1
-    # The same seeded bench through either transport: bit-identical samples (CRC-32, zlib's, over the
-    # float64 samples) and the same read-back settings.
-    assert over_hislip[0].checksum() == over_socket[0].checksum()
-    assert over_hislip[0].settings == over_socket[0].settings
-    assert over_hislip[0].analysis["verdict"] == over_socket[0].analysis["verdict"] == "pass"
 
 
 def test_an_unreachable_hislip_port_is_one_line():

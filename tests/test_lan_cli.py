@@ -1,8 +1,10 @@
 """``acqd sim --transport``: the simulated bench served over the raw socket, HiSLIP and VXI-11 at once, each
-resource answering through pyvisa-py; ports in use and wrong values as one line; ``acqd identify`` over each.
+resource answering through pyvisa-py; ports in use and wrong values as one line; ``acqd identify`` over each;
+pyvisa's own shell (``pyvisa-shell``) as an independent client on every transport.
 
-References: pyvisa-py's clients for each transport (its resource-string parser and protocols); IEEE 488.2
-§10.14 (from memory) for the ``*IDN?`` reply, the same instrument whatever carries it.
+References: pyvisa-py's clients for each transport (its resource-string parser and protocols); pyvisa's
+shell, a program of pyvisa's own; IEEE 488.2 §10.14 (from memory) for the ``*IDN?`` reply, the same
+instrument whatever carries it.
 """
 
 from __future__ import annotations
@@ -12,8 +14,10 @@ import socket
 import pytest
 
 from acqd.cli import main
+from acqd.sim.bench import TRANSPORTS, Serving, SimBench
 from lanbench import served_beside_the_socket
 from served import serving
+from visashell import run_shell, session_script
 
 
 @pytest.mark.timeout(60)
@@ -64,3 +68,22 @@ def test_acqd_identify_names_the_same_driver_over_each_transport(quiet_table, ca
             assert out.startswith(f"{resource}: acqd-sim,DIG,")
             printed[over] = out.split("\n", 1)[1]  # the driver line, the same whatever carries *IDN?
     assert printed[transport] == printed["socket"] and "scpi-digitiser" in printed["socket"]
+
+
+@pytest.mark.timeout(90)
+def test_pyvisa_shell_opens_queries_and_closes_on_every_transport():
+    """One pyvisa-shell session opens the generator over each transport in turn (VXI-11 without a portmapper
+    here; tests/vxi11_netns.py does it through the portmapper on port 111)."""
+    with SimBench(serving=Serving(TRANSPORTS)) as bench:
+        frequencies_hz = [2000 + 1000 * n for n in range(len(TRANSPORTS))]  # each session sets its own
+        scripts = [session_script(bench.resources_by_transport[t]["generator"], f)
+                   for t, f in zip(TRANSPORTS, frequencies_hz)]
+        replies, printed = run_shell([line for script in scripts for line in script])
+    # Per transport: the *IDN? reply (acqd-sim's, IEEE 488.2 §10.14's four fields) and FREQ? after that
+    # session's FREQ (the instrument's NR3 form, SCPI-1999 Vol 1 §7.2.1.3, from memory).
+    assert len(replies) == 2 * len(TRANSPORTS), printed
+    for idn, frequency, set_hz in zip(replies[::2], replies[1::2], frequencies_hz, strict=True):
+        assert idn.startswith("acqd-sim,FG,") and len(idn.split(",")) == 4
+        assert float(frequency) == set_hz
+    assert printed.count("has been opened") == printed.count("has been closed") == len(TRANSPORTS)
+    assert "VI_ERROR" not in printed

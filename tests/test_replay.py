@@ -3,7 +3,8 @@
 Records are taken on the simulated bench by the step test through the real roles, written to a real HDF5
 store, served by ``ReplayBench`` and acquired again by the same client code. What comes back must be the
 stored record bit for bit: ``np.array_equal`` on every channel (math channels are computed again by the
-client) and equal CRC-32 checksums (zlib's CRC-32 over the float64 samples, ``Record.checksum``).
+client) and equal CRC-32 checksums (zlib's CRC-32 over the float64 samples, ``Record.checksum``). The
+core replay tests run once per transport the replay bench serves (``transport``: socket, HiSLIP, VXI-11).
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ from acqd.errors import ConfigError, InstrumentError
 from acqd.instruments import open_instrument
 from acqd.profile import Profile, load_profile
 from acqd.record import Record
-from acqd.sim.bench import SimBench, SimBenchConfig
+from acqd.sim.bench import Serving, SimBench, SimBenchConfig
 from acqd.sim.replay import ReplayBench
 from acqd.steptest import run_step_test
 from acqd.store import RecordStore, open_records
@@ -132,11 +133,12 @@ def night(tmp_path_factory) -> tuple[Path, list[Record]]:
 
 @pytest.fixture
 def replay():
-    """Factory: ``replay(path, records=None)`` → a started ReplayBench, stopped after the test."""
+    """Factory: ``replay(path, records=None, transport="socket")`` → a started ReplayBench serving over
+    ``transport``, stopped after the test."""
     benches: list[ReplayBench] = []
 
-    def start(path: Path, records: list[int] | None = None) -> ReplayBench:
-        bench = ReplayBench(path, records).start()
+    def start(path: Path, records: list[int] | None = None, transport: str = "socket") -> ReplayBench:
+        bench = ReplayBench(path, records, serving=Serving((transport,))).start()
         benches.append(bench)
         return bench
 
@@ -177,9 +179,9 @@ def one_line(exc: BaseException) -> str:
 
 # --- the records come back ---------------------------------------------------------------------------------
 
-def test_the_step_test_on_replay_gives_back_each_record_bit_for_bit(night, replay, opened, tmp_path):
+def test_the_step_test_on_replay_gives_back_each_record_bit_for_bit(night, replay, opened, tmp_path, transport):
     path, records = night
-    bench = replay(path)
+    bench = replay(path, transport=transport)
     gen = opened(bench.resources["generator"], "scpi-generator")
     scope = opened(bench.resources["scope"], "scpi-digitiser")
     profile = write_profile(tmp_path)
@@ -201,9 +203,9 @@ def test_identity_is_one_the_digitiser_driver_accepts(night, replay, visa):
 
 
 def test_selected_records_in_the_order_given_then_the_acquisition_never_completes(night, replay, opened, visa,
-                                                                                  tmp_path):
+                                                                                  tmp_path, transport):
     path, records = night
-    bench = replay(path, [2, 0])
+    bench = replay(path, [2, 0], transport)
     scope = opened(bench.resources["scope"], "scpi-digitiser")
     profile = write_profile(tmp_path)
     configure_like(scope, records[0], profile)

@@ -1,5 +1,8 @@
 """The main job end to end: profile → simulated bench over real TCP (pyvisa-py) → step test → HDF5 store.
 
+The core step-test and replay tests run once per transport (the ``transport`` fixture: raw socket, HiSLIP,
+VXI-11), and a record taken over each must equal the raw socket's bit for bit on the same seeded bench.
+
 References named beside each check: IEEE 181-2011 (the 50 % reference level instant of a transition),
 common practice (averaging N captures divides uncorrelated noise by √N), Ohm's law, and h5dump (Debian
 hdf5-tools, an HDF5 1.10 reader independent of h5py).
@@ -19,21 +22,26 @@ import numpy as np
 import pytest
 import pyvisa
 
-from acqd.benchsession import open_bench
+from acqd.benchsession import Replay, open_bench
 from acqd.cli import main
 from acqd.errors import InstrumentError
 from acqd.judge import make_judge
 from acqd.profile import load_profile
+from acqd.record import Record
 from acqd.steptest import run_step_test
 from acqd.store import RecordStore, open_records
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "profiles" / "demo-bridge-filter.toml"
+# How a VISA resource string names each transport (the VISA resource syntax, as pyvisa parses it).
+RESOURCE_MARK = {"socket": "::SOCKET", "hislip": "::hislip", "vxi11": "::inst"}
 
 
-def profile_file(tmp_path: Path, *replacements: tuple[str, str], name: str = "p.toml") -> Path:
+def profile_file(tmp_path: Path, *replacements: tuple[str, str], name: str = "p.toml",
+                 transport: str = "socket") -> Path:
+    """The demo profile with ``replacements``, storing in ``tmp_path``, its bench served over ``transport``."""
     text = DEMO.read_text()
-    for old, new in replacements:
+    for old, new in (*replacements, ("[bench.simulated]\n", f'[bench.simulated]\ntransport = "{transport}"\n')):
         assert old in text, f"demo profile changed: {old!r} not found"
         text = text.replace(old, new, 1)
     text = text.replace('file = "data/kt9-demo.h5"', f'file = "{tmp_path / "records.h5"}"')
@@ -48,8 +56,17 @@ def output_commands(log: list) -> list[str]:
     return [t for t in texts if t.startswith("OUTP") and "?" not in t and "LOAD" not in t]
 
 
-def test_stored_record_equals_what_the_scope_served(tmp_path: Path) -> None:
-    profile = load_profile(profile_file(tmp_path))
+@pytest.fixture(scope="module")
+def socket_record(tmp_path_factory: pytest.TempPathFactory) -> Record:
+    """The demo step test over the raw socket: what every transport must give bit for bit (same seed)."""
+    profile = load_profile(profile_file(tmp_path_factory.mktemp("reference")))
+    with open_bench(profile) as bench:
+        (record,) = run_step_test(profile, bench.generator, bench.scope)
+    return record
+
+
+def test_stored_record_equals_what_the_scope_served(tmp_path: Path, transport: str, socket_record: Record) -> None:
+    profile = load_profile(profile_file(tmp_path, transport=transport))
     with open_bench(profile) as bench:
         (record,) = run_step_test(profile, bench.generator, bench.scope)
         # Read the scope's last record again over a separate, plain pyvisa session: pyvisa's own
@@ -77,6 +94,11 @@ def test_stored_record_equals_what_the_scope_served(tmp_path: Path) -> None:
     assert stored.settings["scope"]["n_samples"] == profile.acquisition.samples
     assert stored.profile_sha256 == profile.sha256 and stored.profile_text == profile.text
     assert stored.stimulus.edge_time_s > 0  # read back from the generator, not assumed
+    # Whatever carries the bytes, the seeded bench gives the same record: equal CRC-32 (zlib's, over the
+    # float64 samples) and the same read-back settings and identities.
+    assert RESOURCE_MARK[transport] in bench.scope.resource
+    assert stored.checksum() == socket_record.checksum()
+    assert stored.settings == socket_record.settings and stored.identities == socket_record.identities
 
 
 @pytest.mark.parametrize("edge", ["rising", "falling"])
@@ -102,8 +124,8 @@ def test_trigger_is_at_t0_with_the_baseline_before_it(tmp_path: Path, edge: str)
     assert abs(np.mean(v_c[pre + 200:pre + 400]) - before) > 0.05
 
 
-def test_both_edges_give_two_records(tmp_path: Path) -> None:
-    profile = load_profile(profile_file(tmp_path, ('edge = "rising"', 'edge = "both"')))
+def test_both_edges_give_two_records(tmp_path: Path, transport: str) -> None:
+    profile = load_profile(profile_file(tmp_path, ('edge = "rising"', 'edge = "both"'), transport=transport))
     with open_bench(profile) as bench:
         records = run_step_test(profile, bench.generator, bench.scope)
     assert [r.stimulus.edge for r in records] == ["rising", "falling"]
@@ -172,9 +194,10 @@ def test_stimulus_over_the_driver_limit_never_reaches_the_wire(tmp_path: Path,
     assert not list(tmp_path.glob("records*")), "no record file is created for a refused run"
 
 
-def test_output_off_after_an_error(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+def test_output_off_after_an_error(tmp_path: Path, capsys: pytest.CaptureFixture, transport: str) -> None:
     # A trigger level outside the stimulus never fires: the wait times out and the run fails cleanly.
-    path = profile_file(tmp_path, ("averages = 1", "averages = 1\ntrigger_level_v = 1.8\ntimeout_s = 0.5"))
+    path = profile_file(tmp_path, ("averages = 1", "averages = 1\ntrigger_level_v = 1.8\ntimeout_s = 0.5"),
+                        transport=transport)
     profile = load_profile(path)
     with open_bench(profile) as bench:
         with pytest.raises(InstrumentError, match="acquisition not complete within 0.5 s"):
@@ -241,10 +264,11 @@ def test_run_summary_counts_failures(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert "0 record(s) stored" in out and "2 step test(s) not acquired" in out
 
 
-def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path,
-                                                                capsys: pytest.CaptureFixture) -> None:
-    """Record → replay → re-acquire: the same samples bit for bit and the same verdicts (issue 5)."""
-    path = profile_file(tmp_path, ('edge = "rising"', 'edge = "both"'))
+def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path, capsys: pytest.CaptureFixture,
+                                                                transport: str) -> None:
+    """Record → replay → re-acquire: the same samples bit for bit and the same verdicts (issue 5); the
+    replay is served over the profile's transport too."""
+    path = profile_file(tmp_path, ('edge = "rising"', 'edge = "both"'), transport=transport)
     assert main(["run", str(path), "--count", "2"]) == 0
     again = tmp_path / "again.h5"
     assert main(["run", str(path), "--replay", str(tmp_path / "records.h5"), "--count", "2",
@@ -260,6 +284,8 @@ def test_replay_round_trip_gives_identical_samples_and_verdicts(tmp_path: Path,
             assert a.checksum() == b.checksum()
             assert a.analysis["verdict"] == b.analysis["verdict"] == "pass"
             assert a.analysis["fit"]["values"] == b.analysis["fit"]["values"]
+    with open_bench(load_profile(path), Replay(tmp_path / "records.h5")) as replayed:  # what --replay opens
+        assert RESOURCE_MARK[transport] in replayed.scope.resource  # served over the profile's transport
     assert main(["run", str(path), "--replay", str(tmp_path / "records.h5"), "--records", "0,x"]) == 2
     assert "--records" in capsys.readouterr().err
     assert main(["run", str(path), "--records", "0"]) == 2  # a selection without a replay file means nothing

@@ -4,12 +4,15 @@ every connection (and refuses new ones) for a while, as a pulled cable or a rebo
 Checked on what reached the simulated generator (its command log over real TCP): the run backs off and
 reconnects instead of using up its step tests, the first command after the generator answers again
 (beyond the *IDN? that proves who answers) is the output switched off, and a bench that never comes back
-or step tests that keep failing stop the run after the stated number of attempts. Reference for the
+or step tests that keep failing stop the run after the stated number of attempts. The reconnection is
+checked over each transport: the raw socket, HiSLIP (both channels through the one proxied port) and
+VXI-11 (its core channel; pyvisa-py never opens the abort channel). Reference for the
 proxy's behaviour: POSIX sockets (a closed peer reads as end of file; shutdown(2) ends both directions).
 """
 
 from __future__ import annotations
 
+import re
 import socket
 import threading
 import time
@@ -18,6 +21,7 @@ from pathlib import Path
 import pytest
 
 from acqd.cli import main, run
+from acqd.sim.bench import TRANSPORTS
 from test_run import output_commands, profile_file
 
 SIM_BENCH = """[bench.simulated]
@@ -87,16 +91,29 @@ class CuttableProxy:
         self.cut()
 
 
-def _port(resource: str) -> int:
-    return int(resource.split("::")[2])
+# The TCP port in each transport's resource string, and the same resource on another port (VISA resource
+# syntax as pyvisa parses it; HiSLIP's two channels share its one port, VXI-11 without a portmapper names
+# its core channel's).
+PORT_IN = {"socket": r"::(\d+)::SOCKET$", "hislip": r"::hislip\d+,(\d+)::INSTR$", "vxi11": r",(\d+)::inst\d+::INSTR$"}
+
+
+def _port(resource: str, transport: str = "socket") -> int:
+    return int(re.search(PORT_IN[transport], resource).group(1))
+
+
+def _on_port(resource: str, transport: str, port: int) -> str:
+    match = re.search(PORT_IN[transport], resource)
+    return resource[:match.start(1)] + str(port) + resource[match.end(1):]
 
 
 @pytest.fixture
-def linked(tmp_path: Path, sim_bench):
-    """A simulated bench, the generator behind a cuttable proxy, and a 'visa' profile that uses both."""
-    bench = sim_bench(seed=9)
-    proxy = CuttableProxy(("127.0.0.1", _port(bench.resources["generator"])))
-    via_proxy = f"TCPIP0::127.0.0.1::{proxy.port}::SOCKET"
+def linked(tmp_path: Path, sim_bench, request):
+    """A simulated bench, the generator behind a cuttable proxy, and a 'visa' profile that uses both; over
+    the transport ``request.param`` names when the test is parametrised (the raw socket otherwise)."""
+    transport = getattr(request, "param", "socket")
+    bench = sim_bench(seed=9, transport=transport)
+    proxy = CuttableProxy(("127.0.0.1", _port(bench.resources["generator"], transport)))
+    via_proxy = _on_port(bench.resources["generator"], transport, proxy.port)
     path = profile_file(tmp_path, ('kind = "simulated"', 'kind = "visa"'),
                         ('driver = "scpi-generator"', f'driver = "scpi-generator"\nresource = "{via_proxy}"\ntimeout_s = 1.0'),
                         ('driver = "scpi-digitiser"',
@@ -127,6 +144,7 @@ def _cut_after_output_on(bench, proxy: CuttableProxy, outage_s: float) -> dict[s
     return times
 
 
+@pytest.mark.parametrize("linked", TRANSPORTS, indirect=True)
 def test_a_dropped_link_is_reconnected_and_the_output_switched_off_first(linked, capsys) -> None:
 
     bench, proxy, profile = linked

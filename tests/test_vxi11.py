@@ -27,7 +27,7 @@ import pyvisa
 from pyvisa_py.protocols import rpc, vxi11
 
 from acqd.visa import InstrumentTimeout, Session
-from lanbench import block_faults_recover, run_and_read, served_beside_the_socket
+from lanbench import block_faults_recover, served_beside_the_socket
 
 HERE = Path(__file__).resolve().parent
 
@@ -216,13 +216,6 @@ def test_block_bytes_equal_the_socket_transport(bench, visa):
     np.testing.assert_array_equal(np.frombuffer(payload, ">f4"), expected)  # pyvisa's decoder on the socket
 
 
-def test_step_test_over_vxi11_stores_the_records_the_socket_gives(tmp_path):
-    over_socket = run_and_read(tmp_path / "socket", "socket")
-    over_vxi11 = run_and_read(tmp_path / "vxi11", "vxi11")
-    assert over_vxi11[0].checksum() == over_socket[0].checksum()  # CRC-32 (zlib) of the samples
-    assert over_vxi11[0].settings == over_socket[0].settings
-
-
 def _namespace_command() -> list[str] | None:
     """``unshare -rn`` (a user and network namespace, as an unprivileged user may make where the kernel
     allows), else ``unshare -n`` as root; None when neither works here."""
@@ -253,6 +246,8 @@ def test_pyvisa_finds_the_core_channel_through_the_portmapper_on_port_111():
     # python-vxi11, an independent client (its own RPC and VXI-11 code): a query, the status byte with the
     # error-queue bit (SCPI-1999, from memory: bit 2), lock, clear, local/remote, abort, and device_trigger
     # refused as not supported (VXI-11 error 8).
+    # pyvisa's own shell, through the portmapper too: *IDN?, and FREQ? after its FREQ 5000 (NR3).
+    assert seen["pyvisa_shell"][0].startswith("acqd-sim,FG,") and float(seen["pyvisa_shell"][1]) == 5000
     independent = seen["python_vxi11"]
     if independent is None:
         pytest.skip("python-vxi11 not installed (pip install -e '.[test]' brings it)")

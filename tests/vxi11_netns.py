@@ -1,5 +1,6 @@
 """Run inside a network namespace of the test's own (``unshare -rn``): loopback up, the simulated bench's
-VXI-11 server with its portmapper on port 111, and pyvisa-py finding the core channel through it.
+VXI-11 server with its portmapper on port 111, and pyvisa-py, pyvisa's shell (``pyvisa-shell``) and
+python-vxi11 finding the core channel through it.
 
 Prints one JSON line of what it saw; the test (test_vxi11.py) checks it. Nothing outside the namespace is
 touched: it has its own loopback and its own port 111.
@@ -59,6 +60,7 @@ def main() -> int:
 
     from acqd.sim.bench import Serving, SimBench
     from acqd.visa import Session
+    from visashell import run_shell, session_script  # pyvisa's shell, in this namespace too
 
     bench = SimBench(serving=Serving(("vxi11",), portmapper_port=rpc.PMAP_PORT)).start()
     try:
@@ -76,6 +78,7 @@ def main() -> int:
         with Session(bench.resources["scope"]) as scope:
             seen["scope_idn"] = scope.identity
         seen["python_vxi11"] = independent_client()
+        seen["pyvisa_shell"] = run_shell(session_script(bench.resources["generator"], 5000))[0]
     finally:
         bench.stop()
     print(json.dumps(seen))

@@ -280,6 +280,10 @@ class ServedBench:
         """``{"socket": {"generator": ..., ...}, "hislip": {...}}``: every resource string served."""
         return {transport: server.resources for transport, server in self._servers.items()}
 
+    def transport_server(self, transport: str) -> TransportServer:
+        """The server of one transport served (a test switches that transport's own faults through it)."""
+        return self._servers[transport]
+
     @property
     def instruments(self) -> dict[str, SCPIInstrument]:
         return dict(self._instruments)

@@ -550,12 +550,14 @@ class Faults:
     drop_mid_block: bool = False        # a reply holding a block is cut half-way and the connection closed
     garble_block_header: bool = False   # the block header's digit count is replaced by a non-digit
     trigger_never: bool = False         # an armed acquisition never sees its trigger
+    short_read: bool = False            # every reply comes in two parts, short_read_pause_s apart
+    short_read_pause_s: float = SHORT_READ_PAUSE_S  # longer than a client's timeout: a stall mid-reply
     plan: Any = None                    # acqd.sim.faults.FaultPlan: random faults at stated rates
 
     def hit(self, kind: str) -> bool:
         """Whether fault ``kind`` (acqd.sim.faults.KINDS) strikes now: switched on here, or drawn by the plan."""
         switched = {"cut_block": self.drop_mid_block, "garble_block": self.garble_block_header,
-                    "trigger_never": self.trigger_never}.get(kind, False)
+                    "trigger_never": self.trigger_never, "short_read": self.short_read}.get(kind, False)
         return switched or (self.plan is not None and self.plan.draw(kind))
 
     def delay_s(self, kind: str) -> float:
@@ -847,13 +849,14 @@ class Response:
 
     ``tag`` is what the transport passed with the program message that produced it (HiSLIP: the message
     ID). Fault injection: ``cut_at`` says to send only that many bytes and then drop the connection (0 with
-    no data: the connection reset between messages); ``pause_at`` to send the reply in two writes split there,
-    ``SHORT_READ_PAUSE_S`` apart (a transport that frames its messages may send it whole)."""
+    no data: the connection reset between messages); ``pause_at`` to send the reply in two parts split there,
+    ``pause_s`` apart (each transport its own way: two TCP writes, two HiSLIP messages, a short VXI-11 read)."""
 
     data: bytes
     tag: Any = None
     cut_at: int | None = None
     pause_at: int | None = None
+    pause_s: float = SHORT_READ_PAUSE_S
 
 
 class DeviceCleared(Exception):
@@ -878,6 +881,7 @@ class MessageExchange:
         self._input_arrived = asyncio.Event()
         self._closed = asyncio.Event()
         self._cleared = asyncio.Event()  # replaced at every clear: a waiter holds the one it started with
+        self.interrupt_queries = True  # False: new input waits its turn behind a pending reply (HiSLIP overlapped mode)
 
     # -- input ---------------------------------------------------------------------------------------
     def receive(self, data: bytes, end: bool = False, tag: Any = None) -> None:
@@ -963,7 +967,7 @@ class MessageExchange:
         quietly on a device clear."""
         task = asyncio.ensure_future(awaitable)
         watchers = [asyncio.ensure_future(self._closed.wait()), asyncio.ensure_future(self._cleared.wait())]
-        if reply_pending:
+        if reply_pending and self.interrupt_queries:
             watchers.append(asyncio.ensure_future(self._input_arrived.wait()))
         try:
             done, _ = await asyncio.wait({task, *watchers}, return_when=asyncio.FIRST_COMPLETED)
@@ -992,7 +996,7 @@ class MessageExchange:
             data = data[:block_at + 1] + b"?" + data[block_at + 2:]
         cut_at = block_at + (len(data) - block_at) // 2 if block_at is not None and faults.hit("cut_block") else None
         pause_at = len(data) // 2 if cut_at is None and len(data) > 1 and faults.hit("short_read") else None
-        return Response(data, tag, cut_at, pause_at)
+        return Response(data, tag, cut_at, pause_at, faults.short_read_pause_s)
 
 
 def _first_block_offset(replies: list[Reply], parts: list[bytes]) -> int | None:

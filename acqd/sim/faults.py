@@ -7,7 +7,8 @@ sequence repeatable (each instrument draws its own stream from it). The chances:
 reply_delay       each reply       it waits ``reply_delay_s`` (default 2 s) first: a slow instrument, or a
                                    late reply when that is over the client's timeout
 slow_opc          each ``*OPC?``   its reply waits ``reply_delay_s`` too: an operation that takes long
-short_read        each reply       it is sent in two TCP segments a moment apart (a correct client reads on)
+short_read        each reply       it is sent in two parts a moment apart (a correct client reads on): two
+                                   TCP segments, HiSLIP Data then DataEnd, a VXI-11 read short of END
 cut_block         each block reply cut half-way, the connection closed
 garble_block      each block reply the header's digit count replaced by a non-digit
 trigger_never     each arming      the acquisition never sees its trigger

@@ -1,5 +1,5 @@
-"""The HiSLIP transport: IVI-6.1 High-Speed LAN Instrument Protocol, synchronized mode
-(``TCPIP0::host::hislip0,port::INSTR``).
+"""The HiSLIP transport: IVI-6.1 High-Speed LAN Instrument Protocol, synchronized mode, overlapped mode
+when the client asks (``TCPIP0::host::hislip0,port::INSTR``).
 
 Written from the specification, IVI-6.1 revision 2.0 (HiSLIP 2.0). The clause numbers cited are from
 memory and so is every value marked so; the message layout (§3.1), the message types (§3.2 table) and
@@ -23,7 +23,13 @@ the control codes are the specification's. What is served:
   (input and output dropped, a blocked ``*OPC?`` abandoned); the server answers AsyncDeviceClearAcknowledge
   and from then on discards Data messages and sends nothing on the synchronous channel until the client's
   DeviceClearComplete there, answered by DeviceClearAcknowledge. Both sides restart message IDs at
-  0xFFFFFF00. Feature bits: 0 (synchronized mode, no encryption) in every acknowledgement.
+  0xFFFFFF00. Feature bits: AsyncDeviceClearAcknowledge offers 0 (we prefer synchronized mode, no
+  encryption); the client's DeviceClearComplete asks, and DeviceClearAcknowledge grants what it asked.
+* **Overlapped mode (§6.12, from memory):** granted when a client asks for it (feature bit 0 of
+  DeviceClearComplete) and kept until the next device clear. Then a program message that arrives while a
+  response is pending waits its turn instead of interrupting the query (no −410): responses go out in
+  order, each with its message ID. pyvisa-py 0.8.1 never asks (it echoes the server's preference), so
+  acqd's sessions run synchronized.
 * **AsyncLock (§6.9):** request (control code 1; message parameter the timeout in ms; payload empty for
   the exclusive lock, else a shared lock's name) and release (control code 0), answered by
   AsyncLockResponse 0 failure, 1 success (exclusive), 2 success shared, 3 error (release without a lock).
@@ -44,7 +50,13 @@ the control codes are the specification's. What is served:
 * **Trigger:** numbered like Data; the simulated instruments have no device trigger (IEEE 488.2 DT0), so
   it does nothing else.
 
-Not served: overlapped mode, the 2.0 secure connection and authentication messages (StartTLS, SASL;
+Faults: the instrument's own (``engine.Faults``, the fault table) act here as on every transport; a
+block cut half-way is a DataEnd whose header announces more than comes, then both channels close; a short
+read is the response as Data messages up to the pause and the DataEnd after it (a device clear during
+the pause abandons the rest). ``HislipServer.faults`` (``HislipFaults``) adds this transport's own: a
+FatalError in answer to the next program message.
+
+Not served: the 2.0 secure connection and authentication messages (StartTLS, SASL;
 answered with Error 1), GetDescriptors, AsyncServiceRequest (no SRQ is ever raised), Interrupted.
 """
 
@@ -71,6 +83,7 @@ PROLOGUE = b"HS"
 INITIAL_MESSAGE_ID = 0xFFFF_FF00
 MAX_MESSAGE_BYTES = MessageExchange.MAX_MESSAGE_BYTES
 RMT_DELIVERED = 0x01
+FEATURE_OVERLAPPED = 0x01  # feature bit 0 of the device-clear messages: overlapped mode (§6.12, from memory)
 DISCARD_CHUNK = 1 << 16
 
 
@@ -162,16 +175,27 @@ def pack(kind: Type, control: int = 0, parameter: int = 0, payload: bytes = b"")
     return HEADER.pack(PROLOGUE, kind, control, parameter, len(payload)) + payload
 
 
-def data_messages(data: bytes, message_id: int, max_message_bytes: int | None) -> Iterator[bytes | memoryview]:
-    """A response as Data messages and a final DataEnd, each at most ``max_message_bytes`` with its header."""
+def data_messages(data: bytes, message_id: int, max_message_bytes: int | None,
+                  last: Type = Type.DATA_END) -> Iterator[bytes | memoryview]:
+    """A response as Data messages and a final ``last`` (DataEnd: END), each at most ``max_message_bytes``
+    with its header."""
     view = memoryview(data)
     step = len(view) if max_message_bytes is None else max(1, max_message_bytes - HEADER.size)
     while len(view) > step:
         yield HEADER.pack(PROLOGUE, Type.DATA, 0, message_id, step)
         yield view[:step]
         view = view[step:]
-    yield HEADER.pack(PROLOGUE, Type.DATA_END, 0, message_id, len(view))
+    yield HEADER.pack(PROLOGUE, last, 0, message_id, len(view))
     yield view
+
+
+@dataclass
+class HislipFaults:
+    """Faults of the HiSLIP transport itself, switched from a test (``HislipServer.faults``); the
+    instruments' own faults (``engine.Faults``) act on every transport alike."""
+
+    fatal_error_next: bool = False  # the next program message is answered with FatalError 0, both channels
+                                    # closed; the switch then goes off (one session lost, not every reconnect)
 
 
 @dataclass
@@ -246,6 +270,7 @@ class _Session:
         self.exchange = MessageExchange(instrument, self.respond)
         self.client_max_bytes: int | None = None  # until the client says (AsyncMaximumMessageSize)
         self.clearing = False  # between AsyncDeviceClear and DeviceClearComplete
+        self.cleared = asyncio.Event()  # set, and replaced, at every device clear (a paused response waits on it)
         self.unread = False  # a response was sent and the client has not said RMT-delivered since
         self.ended = asyncio.Event()
 
@@ -258,7 +283,18 @@ class _Session:
             await self.sync.drain()
             self.abort()
             raise ConnectionLost
-        self.sync.writelines(data_messages(response.data, message_id, self.client_max_bytes))
+        data = response.data
+        if response.pause_at is not None:  # a short read: Data messages now, the rest after the pause
+            cleared = self.cleared
+            self.sync.writelines(data_messages(data[:response.pause_at], message_id, self.client_max_bytes,
+                                               last=Type.DATA))
+            await self.sync.drain()
+            try:
+                await asyncio.wait_for(cleared.wait(), response.pause_s)
+                return  # a device clear meanwhile abandons the rest of the response (§6.12)
+            except TimeoutError:
+                data = data[response.pause_at:]
+        self.sync.writelines(data_messages(data, message_id, self.client_max_bytes))
         self.unread = True
         await self.sync.drain()
 
@@ -276,6 +312,7 @@ class HislipServer:
                  port: int = DEFAULT_PORT) -> None:
         self.instruments = dict(instruments)
         self._listener = Listener(self._connection, host, port, what="hislip")
+        self.faults = HislipFaults()
         self._devices: dict[str, _Device] = {}  # by sub-address; made in the serving loop (asyncio.Condition)
         self._sessions: dict[int, _Session] = {}
         self._next_id = 0
@@ -338,6 +375,9 @@ class HislipServer:
                 if session.async_writer is None:
                     await _fatal(writer, Fatal.CHANNELS_NOT_ESTABLISHED, "open the asynchronous channel first")
                 payload = await _payload(header, reader, writer)
+                if self.faults.fatal_error_next:
+                    self.faults.fatal_error_next = False
+                    await _fatal(writer, Fatal.UNIDENTIFIED, "injected fault: the session is lost")
                 if header.control & RMT_DELIVERED:
                     session.unread = False
                 if payload is not None and not session.clearing:
@@ -345,7 +385,9 @@ class HislipServer:
             elif header.type == Type.DEVICE_CLEAR_COMPLETE:
                 session.clearing = False
                 session.unread = False
-                writer.write(pack(Type.DEVICE_CLEAR_ACKNOWLEDGE, 0))
+                overlapped = bool(header.control & FEATURE_OVERLAPPED)  # the client's request, granted
+                session.exchange.interrupt_queries = not overlapped
+                writer.write(pack(Type.DEVICE_CLEAR_ACKNOWLEDGE, FEATURE_OVERLAPPED if overlapped else 0))
             elif header.type == Type.TRIGGER:
                 pass  # DT0: no device trigger (IEEE 488.2 §5.? capability codes, from memory)
             elif header.type == Type.FATAL_ERROR:
@@ -376,6 +418,8 @@ class HislipServer:
             kind = header.type
             if kind == Type.ASYNC_DEVICE_CLEAR:
                 session.clearing = True
+                session.cleared.set()
+                session.cleared = asyncio.Event()
                 session.exchange.device_clear()
                 writer.write(pack(Type.ASYNC_DEVICE_CLEAR_ACKNOWLEDGE, 0))
             elif kind == Type.ASYNC_STATUS_QUERY:

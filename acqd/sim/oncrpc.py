@@ -43,6 +43,10 @@ class DropConnection(Exception):
     """A procedure gives no reply and the connection is closed (fault injection: a link lost mid-reply)."""
 
 
+class NoReply(Exception):
+    """A procedure sends no reply and the connection stays open (fault injection: an RPC that times out)."""
+
+
 class GarbageArgs(Exception):
     """The arguments do not decode as the procedure's (GARBAGE_ARGS)."""
 
@@ -158,7 +162,8 @@ def rpc_mismatch(xid: int) -> bytes:
 
 
 async def answer(call: bytes, programs: Mapping[int, Program]) -> bytes | None:
-    """The reply to one call record, or None for a record that is not a call (nothing to answer)."""
+    """The reply to one call record, or None for a record that is not a call or a procedure that gives no
+    reply (nothing to answer)."""
     args = XdrReader(call)
     try:
         xid, kind = args.uint(), args.uint()
@@ -185,6 +190,8 @@ async def answer(call: bytes, programs: Mapping[int, Program]) -> bytes | None:
         results = await procedure(args)
     except GarbageArgs:
         return accepted(xid, AcceptStatus.GARBAGE_ARGS)
+    except NoReply:
+        return None
     return accepted(xid, AcceptStatus.SUCCESS, results)
 
 

@@ -11,7 +11,7 @@ import asyncio
 import functools
 from collections.abc import Mapping
 
-from .engine import SHORT_READ_PAUSE_S, ConnectionLost, MessageExchange, Response, SCPIInstrument
+from .engine import ConnectionLost, MessageExchange, Response, SCPIInstrument
 from .serving import Listener, ack_promptly
 
 
@@ -75,7 +75,7 @@ async def _send(writer: asyncio.StreamWriter, response: Response) -> None:
     if response.pause_at is not None:  # a short read: the client sees the reply arrive in two parts
         writer.write(data[:response.pause_at])
         await writer.drain()
-        await asyncio.sleep(SHORT_READ_PAUSE_S)
+        await asyncio.sleep(response.pause_s)
         data = data[response.pause_at:]
     writer.write(data)
     await writer.drain()

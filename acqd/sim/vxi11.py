@@ -21,6 +21,11 @@ error codes) is followed; clause numbers below are from memory. What is served:
   waiting up to ``lock_timeout`` when they set flag 0x01).
 * **Query interrupted**: a device_write while a response is still unread discards it and queues −410
   (IEEE 488.2 §6.3.2.3; VXI-11 keeps the output queue until read, unlike a raw socket).
+* **Faults**: the instrument's own (``engine.Faults``, the fault table) as on every transport; a block
+  cut half-way is read up to the cut, then the connection drops; a short read is a device_read that ends
+  at the pause without END, the rest readable after it (device_clear drops it). ``Vxi11Server.faults``
+  (``Vxi11Faults``) adds this transport's own: core-channel calls that get no reply (an RPC timeout) and an
+  abort channel that resets every connection.
 * **Portmapper** (``oncrpc``): on port 111 (clients ask there) when the server is given one; the
   resources then read ``TCPIP0::host::inst0::INSTR``. Without it, ``TCPIP0::host,PORT::inst0::INSTR``
   names the core channel's port (pyvisa-py then skips the portmapper).
@@ -36,8 +41,8 @@ from dataclasses import dataclass, field
 from enum import IntEnum
 
 from .engine import MessageExchange, Response, SCPIInstrument
-from .oncrpc import PORTMAPPER_PROGRAM, PORTMAPPER_VERSION, DropConnection, Program, XdrReader, XdrWriter, portmapper, \
-    serve_connection
+from .oncrpc import PORTMAPPER_PROGRAM, PORTMAPPER_VERSION, DropConnection, NoReply, Procedure, Program, XdrReader, \
+    XdrWriter, portmapper, serve_connection
 from .serving import Listener
 
 CORE_PROGRAM, CORE_VERSION = 0x0607AF, 1
@@ -64,6 +69,16 @@ class Error(IntEnum):
 
 # The links made on the core-channel connection being served (each connection is served in a task of its own).
 _LINKS_OF_CONNECTION: contextvars.ContextVar[set[int]] = contextvars.ContextVar("links_of_connection")
+
+
+@dataclass
+class Vxi11Faults:
+    """Faults of the VXI-11 transport itself, switched from a test (``Vxi11Server.faults``); the
+    instruments' own faults (``engine.Faults``) act on every transport alike."""
+
+    silent_calls: int = 0  # this many core-channel calls more get no reply at all (the client's RPC times
+                           # out); the procedure is not run, so a response waits on in the link
+    abort_channel_lost: bool = False  # the abort channel refuses connections (its listener is stopped)
 
 
 class Aborted(Exception):
@@ -97,11 +112,22 @@ class _Link:
         self.readable = asyncio.Event()
         self.aborted = asyncio.Event()
         self.cut_at: int | None = None  # fault: this many more bytes are read, then the connection drops
+        self.rest: asyncio.Task | None = None  # fault: the second part of a short-read response, on its way
         self.running = asyncio.ensure_future(self.exchange.run())
 
     async def _respond(self, response: Response) -> None:
-        self.unread += response.data
+        data = response.data
+        if response.pause_at is not None:  # a short read: a device_read ends at the pause without END
+            self.rest = asyncio.ensure_future(self._arrive_later(data[response.pause_at:], response.pause_s))
+            data = data[:response.pause_at]
+        self.unread += data
         self.cut_at = response.cut_at
+        self.readable.set()
+
+    async def _arrive_later(self, data: bytes, pause_s: float) -> None:
+        await asyncio.sleep(pause_s)
+        self.rest = None
+        self.unread += data
         self.readable.set()
 
     def take(self, count: int, termchar: int | None) -> tuple[bytes, int]:
@@ -116,7 +142,7 @@ class _Link:
             self.cut_at -= size
         data = bytes(self.unread[:size])
         del self.unread[:size]
-        reason = (REASON_END if not self.unread else 0) | (REASON_REQCNT if size == count else 0)
+        reason = (REASON_END if not self.unread and self.rest is None else 0) | (REASON_REQCNT if size == count else 0)
         if termchar is not None and data.endswith(bytes([termchar])):
             reason |= REASON_CHR
         if not self.unread:
@@ -127,6 +153,9 @@ class _Link:
         self.unread.clear()
         self.cut_at = None
         self.readable.clear()
+        if self.rest is not None:
+            self.rest.cancel()
+            self.rest = None
 
     async def until(self, event: asyncio.Event, timeout_s: float) -> bool:
         """Wait for ``event`` up to ``timeout_s``; False on timeout, Aborted on device_abort."""
@@ -143,6 +172,7 @@ class _Link:
         return waiting in done
 
     async def close(self) -> None:
+        self.drop_unread()
         self.exchange.end_of_input()
         await asyncio.gather(self.running, return_exceptions=True)
         self.device.release(self.id)
@@ -170,16 +200,18 @@ class Vxi11Server:
         self._devices: dict[str, _Device] = {}
         self._links: dict[int, _Link] = {}
         self._next_link = 0
+        self.faults = Vxi11Faults()
         core = {10: self._create_link, 11: self._write, 12: self._read, 13: self._read_stb, 14: self._trigger,
                 15: self._clear, 16: self._remote, 17: self._local, 18: self._lock, 19: self._unlock,
                 20: self._not_supported, 22: self._not_supported, 23: self._destroy_link,
                 25: self._not_supported, 26: self._not_supported}
+        core = {number: self._unless_silent(procedure) for number, procedure in core.items()}
         self._core = Listener(functools.partial(self._serve_core, {CORE_PROGRAM: Program(CORE_PROGRAM, CORE_VERSION,
                                                                                          core)}),
                               host, port, what="vxi11")
-        self._abort = Listener(functools.partial(self._serve, {ABORT_PROGRAM: Program(ABORT_PROGRAM, ABORT_VERSION,
-                                                                                      {1: self._device_abort})}), host,
-                               what="vxi11 abort channel")
+        self._abort = Listener(functools.partial(self._serve_abort, {
+            ABORT_PROGRAM: Program(ABORT_PROGRAM, ABORT_VERSION, {1: self._device_abort})}), host,
+            what="vxi11 abort channel")
         self._portmapper = None if portmapper_port is None else Listener(
             functools.partial(self._serve, {PORTMAPPER_PROGRAM: portmapper(self._mappings)}), host, portmapper_port,
             what="portmapper")
@@ -215,6 +247,23 @@ class Vxi11Server:
     async def _serve(programs: Mapping[int, Program], reader: asyncio.StreamReader,
                      writer: asyncio.StreamWriter) -> None:
         await serve_connection(reader, writer, programs)
+
+    async def _serve_abort(self, programs: Mapping[int, Program], reader: asyncio.StreamReader,
+                           writer: asyncio.StreamWriter) -> None:
+        """The abort channel; under the ``abort_channel_lost`` fault each connection is reset at once."""
+        if self.faults.abort_channel_lost:
+            writer.transport.abort()
+            return
+        await serve_connection(reader, writer, programs)
+
+    def _unless_silent(self, procedure: Procedure) -> Procedure:
+        """``procedure``, or no reply at all while the ``silent_calls`` fault lasts (the client's RPC times out)."""
+        async def call(args: XdrReader) -> bytes:
+            if self.faults.silent_calls > 0:
+                self.faults.silent_calls -= 1
+                raise NoReply
+            return await procedure(args)
+        return call
 
     async def _serve_core(self, programs: Mapping[int, Program], reader: asyncio.StreamReader,
                           writer: asyncio.StreamWriter) -> None:
@@ -263,7 +312,7 @@ class Vxi11Server:
             return XdrWriter().int(Error.PARAMETER).uint(0).encoded()
         if not await unlocked(link, flags, lock_timeout_ms / 1000):
             return XdrWriter().int(Error.LOCKED_BY_ANOTHER_LINK).uint(0).encoded()
-        if link.unread:
+        if link.unread or link.rest is not None:
             link.drop_unread()
             link.device.instrument.push_error(-410, "a new message arrived before the response was read")
         link.exchange.receive(data, end=bool(flags & FLAG_END))

@@ -144,6 +144,7 @@ def fill(disk: Path) -> Path:
 def soak(args: argparse.Namespace, disk: Path | None) -> None:
     rng = random.Random(args.seed)
     work = Path(args.work or tempfile.mkdtemp(prefix="acqd-soak-"))
+    work.mkdir(parents=True, exist_ok=True)
     store_dir = disk or work
     table = {"seed": 9, "noise_v_rms": 0.002, "faults": {**RATES, "seed": args.seed}}
     bench = SimBench(SimBenchConfig.from_mapping(table, "bench/soak.py")).start()

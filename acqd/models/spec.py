@@ -17,7 +17,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
-from .netlist import Netlist, NetlistError, netlist_model
+from .netlist import MAX_MAGNITUDE, Netlist, NetlistError, netlist_model
 from .statespace import StateSpace
 
 ModelBuilder = Callable[..., StateSpace]
@@ -30,11 +30,6 @@ BUILDERS: dict[str, ModelBuilder] = {
     "second_order": second_order,
     "netlist": netlist_model,
 }
-
-
-# A part's value beyond any real one (1e15 ohm is a good insulator; 1e15 F or H no part at all): larger ones
-# overflow the exact discretisation (a 1e300 ohm resistor failed in an SVD, and inside the simulated scope).
-MAX_MAGNITUDE = 1e15
 
 
 @dataclass(frozen=True)

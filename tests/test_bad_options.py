@@ -14,7 +14,6 @@ before it opens); Linux proc(5) (nothing can be created under /proc); IEEE 754 b
 from __future__ import annotations
 
 import os
-from pathlib import Path
 
 import pytest
 

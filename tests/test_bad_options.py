@@ -47,6 +47,13 @@ WHOLE_OPTIONS = (("run", "--count"), ("show", "--record"), ("export", "--record"
 NUMBER_OPTIONS = (("identify", "--timeout-s"), ("compare", "--nrmse-max"), ("compare", "--parameter-pct"),
                   ("compare", "--settling-band-pct"), ("compare", "--low"), ("compare", "--high"),
                   ("compare", "--edge-time"), ("compare", "--source-resistance"))
+# (base, option) → values that are not among those allowed: native code by path, unknown names, bad lists
+WORD_OPTIONS = {("identify", "--backend"): ("./libsomething.so", "/usr/lib/libc.so.6", "@nothing", ""),
+                ("sim", "--transport"): ("telnet", ""), ("sim", "--host"): ("::1", "192.0.2.7", "no host here"),
+                ("compare", "--model"): ("no_such_model",), ("compare", "--weighting"): ("loud",),
+                ("compare", "--edge"): ("up",), ("compare", "--load"): ("75_ohm",),
+                ("compare", "--map"): ("v_c", "=v_c"), ("compare", "--param"): ("r_ohm", "r_ohm=nan"),
+                ("compare", "--overshoot"): ("v_c=60:45x",), ("report", "--full"): ("x", "0-99999999999")}
 # (base, option, what the option names): paths a command writes
 OUT_OPTIONS = (("run", "--out", "file"), ("export", "--out", "file"), ("report", "--out", "file"),
                ("drift", "--figures", "folder"), ("compare", "--figures", "folder"))
@@ -81,6 +88,9 @@ def _cases() -> dict[str, tuple[list[str], tuple[str, ...]]]:
     for base, option in NUMBER_OPTIONS:
         for name, value in NOT_FINITE.items():
             cases[f"{base} {option} {name}"] = (_set(BASES[base], option, value), (option,))
+    for (base, option), values in WORD_OPTIONS.items():
+        for value in values:
+            cases[f"{base} {option} {value!r}"] = (_set(BASES[base], option, value), (option,))
     for base, option, kind in OUT_OPTIONS:
         for name, value in _bad_paths(kind).items():
             suffix = {"run": ".h5", "export": ".csv", "report": ".html"}.get(base, "") if "{" not in value else ""

@@ -117,7 +117,34 @@ def _cases() -> dict[str, tuple[str, tuple[str, ...]]]:
     cases["a surplus key at the top"] = ("surplus_key = 1\n" + DEMO.read_text(), ("surplus_key",))
     for table in REQUIRED_TABLES:
         cases[f"[{table}] missing"] = (_without_table(table), (table.rsplit(".", 1)[-1],))
-    return cases
+    return {**cases, **_single_cases()}
+
+
+def _single_cases() -> dict[str, tuple[str, tuple[str, ...]]]:
+    """Mistakes a key-by-key walk cannot make: keys that exclude each other, files and folders they name."""
+    demo = DEMO.read_text()
+    return {
+        "a command log in a missing folder": (demo.replace("seed = 9", 'seed = 9\ncommand_log = "/no-such-folder/g.log"'),
+                                              ("bench.simulated.command_log", "does not exist")),
+        "a library path as a backend": (demo.replace('driver = "scpi-digitiser"',
+                                                     'driver = "scpi-digitiser"\nbackend = "/usr/lib/libvisa.so"'),
+                                        ("bench.scope.backend", "@py")),
+        "levels and an amplitude": (demo.replace("high_v = 1.0", "high_v = 1.0\namplitude_vpp = 1.0"),
+                                    ("stimulus.amplitude_vpp", "not both")),
+        "a resource on the simulated bench": (demo.replace('driver = "scpi-generator"', 'driver = "scpi-generator"\n'
+                                                           'resource = "TCPIP0::127.0.0.1::5025::SOCKET"'),
+                                              ("bench.generator.resource", "simulated")),
+        "a visa bench without resources": (demo.replace('kind = "simulated"', 'kind = "visa"'),
+                                           ("resource", "required")),
+        "a netlist file that is not there": (demo.replace('model = "series_rlc"\nr_ohm = 22.4',
+                                                          'model = "netlist"\nnetlist_file = "none.cir"\nr_ohm = 22.4'),
+                                             ("netlist_file", "none.cir")),
+        "a store that is not .h5": (demo.replace('file = "data/kt9-demo.h5"', 'file = "records.csv"'),
+                                    ("output.file", ".h5")),
+        "the same table twice": (demo + "\n[limits]\nmax_level_v = 1.0\n", ("not valid TOML",)),
+        "a math channel named as a captured one": (demo.replace("[math.i_l]", "[math.v_c]"), ("math.v_c",)),
+        "two channels of one name": (demo.replace('name = "v_rl"', 'name = "v_src"'), ("acquisition.channels",)),
+    }
 
 
 CASES = _cases()

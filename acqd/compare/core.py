@@ -410,15 +410,16 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "",
                 "duration_s": edge.duration_s, "timing": timing}
     record_info = {"index": record.index, "utc": record.utc, "channels": record.channel_names,
                    "dut": dict(spec.identity), "profile_sha256": record.profile_sha256}
-    thinned = [f"compared on every {every}th sample ({samples_per_channel:,} per channel; a comparison "
-               f"uses at most {MAX_COMPARED_SAMPLES:,})"] if every > 1 else []
+    thinned = [f"compared on one sample in {every} ({samples_per_channel:,} per channel; a comparison uses at "
+               f"most {MAX_COMPARED_SAMPLES:,})"] if every > 1 else []
     return CompareResult(record_info, spec.model, dict(setup.nominal), parameters, stimulus, channels, fit,
                          verdict, clipping_warnings(record, [m.channel for m in setup.mapping])
                          + _warnings(channels, spans) + notes + thinned, traces=traces)
 
 
 # The fit's dense Jacobian (samples × channels × unknowns, with the solver's copies) is what a long record
-# costs: 1.2 GiB for 1e6 samples of three channels, 10.6 GiB at the 1e7 a record may have. Beyond this many
+# costs: `acqd compare` of 1e6 samples of three channels peaked at 1.2 GiB (bench/memory.py), and issue 10's
+# probe saw 10.6 GiB at the 1e7 a record may have. Beyond this many
 # samples per channel a record is compared on every k-th one (the t = 0 sample kept), so a comparison's
 # memory stays bounded; the fitted values' intervals widen by about √k, and they say so.
 MAX_COMPARED_SAMPLES = 250_000

@@ -13,8 +13,8 @@ store (`ACQD_STORE_KILL_AT`, a random step and occurrence), and once the store's
 `--disk-mib` in a private mount namespace, when this runs as root or with user namespaces - is filled and,
 after the run that meets it, freed. At the end every record is read back (its CRC-32 checked) and set
 against what the runs acknowledged. With ``--daemon-kills``, ``acqd daemon`` then runs a back-to-back
-campaign of ``--daemon-slots`` one-record slots on the same bench, SIGKILLed that many times at random
-moments and restarted each time, and its store, ledger and run log are checked the same way.
+campaign of ``--daemon-slots`` one-record slots on the same bench, SIGKILLed that many times (each at a
+random moment 0.5-5 s after that start's first slot began) and restarted each time, and its store, ledger and run log are checked the same way.
 
 It prints: records acknowledged, present and verifying, lost, duplicated, corrupt; faults injected by kind
 and step tests not acquired; how each run ended; and the generator's output after each run ended.
@@ -35,6 +35,7 @@ import subprocess
 import sys
 import tempfile
 import threading
+import time
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -151,28 +152,49 @@ def start_daemon(profile: Path, data: Path) -> subprocess.Popen:
 
 def daemon_phase(args: argparse.Namespace, rng: random.Random, bench: SimBench, run_profile: Path,
                  data: Path) -> dict[str, object]:
-    """``--daemon-kills`` SIGKILLs of ``acqd daemon`` at random moments, each followed by a restart, then a
-    last start that finishes the campaign; then every record and slot checked against what the daemon's
+    """``--daemon-kills`` SIGKILLs of ``acqd daemon``, each 0.5-5 s after that start's first slot began and
+    followed by a restart, then a last start that finishes the campaign; then every record and slot checked against what the daemon's
     run log acknowledged (a "record" event is written once the record is durable)."""
     profile = daemon_profile(run_profile, args.daemon_slots)
     kills, output_after_kill, finished_early = 0, Counter(), False
     while kills < args.daemon_kills:
         proc = start_daemon(profile, data)
-        try:
-            proc.wait(timeout=rng.uniform(2.0, 8.0))
+        if not wait_for_a_slot(proc, data) or _ended_within(proc, rng.uniform(0.5, 5.0)):
             finished_early = True  # the campaign ended before every kill was made
             break
-        except subprocess.TimeoutExpired:
-            proc.send_signal(signal.SIGKILL)
-            proc.wait()
-            kills += 1
-            output_after_kill["on" if bench.generator.settings.output_on else "off"] += 1
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        kills += 1
+        output_after_kill["on" if bench.generator.settings.output_on else "off"] += 1
     last = start_daemon(profile, data)
     _, err = last.communicate(timeout=DAEMON_TIMEOUT_S)
     return {"kills": kills, "finished before the kills were made": finished_early, "last start's status": last.returncode,
             "last start's stderr lines": len(err.strip().splitlines()), **daemon_check(data),
             "generator output after a kill": dict(output_after_kill),
             "generator output after the campaign": "on" if bench.generator.settings.output_on else "off"}
+
+
+def wait_for_a_slot(proc: subprocess.Popen, data: Path) -> bool:
+    """Wait until this daemon has started a slot (its start-up, with the comparator worker's, takes seconds
+    on a loaded machine: a kill before it would test nothing); False if it ended first."""
+    log = data / "runlog.jsonl"
+    started = log.read_text().count('"slot_start"') if log.exists() else 0
+    deadline = time.monotonic() + DAEMON_TIMEOUT_S
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            return False
+        if log.exists() and log.read_text().count('"slot_start"') > started:
+            return True
+        time.sleep(0.1)
+    raise RuntimeError(f"acqd daemon started no slot in {DAEMON_TIMEOUT_S:g} s")
+
+
+def _ended_within(proc: subprocess.Popen, seconds: float) -> bool:
+    try:
+        proc.wait(timeout=seconds)
+        return True
+    except subprocess.TimeoutExpired:
+        return False
 
 
 def daemon_check(data: Path) -> dict[str, object]:

@@ -140,7 +140,7 @@ def prepare(work: Path, key: str) -> None:
     tests = present(tests)
     lines = ["[mutmut]", "source_paths=" + "\n    ".join(paths),
              "pytest_add_cli_args_test_selection=" + "\n    ".join(tests),
-             "pytest_add_cli_args=-p no:cacheprovider",
+             "pytest_add_cli_args=-p no:cacheprovider -n 0",  # mutmut counts tests in its own process
              "also_copy=" + "\n    ".join(item for item in COPIED if item not in ("tests", "pyproject.toml"))]
     (work / "setup.cfg").write_text("\n".join(lines) + "\n", encoding="utf-8")
 

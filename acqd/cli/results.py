@@ -46,12 +46,22 @@ def channel_table(analysis: dict[str, Any]) -> Table:
     return table
 
 
+SINGULAR_CONDITION = 1e15
+"""Above this a Jacobian's condition number is a property of rounding, not of the fit: in binary64
+(eps = 2.2e-16) a matrix that singular has no digits of its own left, and the figure differs between
+BLAS builds (1.8e+16 on one machine, 5.4e+15 on another for the same record)."""
+
+
+def _condition(number: float) -> str:
+    return f"{number:.3g}" if number < SINGULAR_CONDITION else "> 1e15, singular"
+
+
 def fit_lines(fit: dict[str, Any] | None) -> list[str]:
     """``R = 22.49 Ω ± 47 mΩ (95 %: 22.39 Ω … 22.58 Ω; start 22 Ω)``, one line per fitted parameter."""
     if not fit:
         return []
     lines = [f"fit ({fit['weighting']} weighting, residual scale {fit['residual_scale']:.3g}, "
-             f"{fit['evaluations']} evaluations, condition number {fit['condition_number']:.3g}):"]
+             f"{fit['evaluations']} evaluations, condition number {_condition(fit['condition_number'])}):"]
     for name in fit["fitted"]:
         unit = unit_symbol((fit.get("units") or {}).get(name, ""))
         lo, hi = fit["ci95"][name]

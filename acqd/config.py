@@ -20,9 +20,17 @@ from typing import Any
 from .errors import ConfigError
 
 
+MAX_FILE_BYTES = 20_000_000  # a profile or driver file is pages of text; read whole, so it is bounded
+
+
 def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     """(parsed table, original text); unreadable or malformed files give one ConfigError line."""
     path = Path(path)
+    if path.exists() and not path.is_file():  # a FIFO would block the read until a writer comes
+        raise ConfigError(str(path), "", "is not a regular file (a folder, a device or a FIFO); name a TOML file")
+    if path.is_file() and path.stat().st_size > MAX_FILE_BYTES:
+        raise ConfigError(str(path), "", f"is {path.stat().st_size:,} bytes; a TOML file here has at most "
+                                         f"{MAX_FILE_BYTES:,}")
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:

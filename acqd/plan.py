@@ -36,7 +36,7 @@ from .display import si
 from .errors import ConfigError
 from .instruments import find_driver, load_driver
 from .models import Signal, StateSpace
-from .profile import AcquisitionPlan, Profile, load_profile
+from .profile import MAX_WINDOW_S, AcquisitionPlan, Profile, load_profile
 
 SETTLING_MARGIN = 1.5
 MIN_SAMPLES = 2000  # common practice: a few thousand points resolve levels, rise and settling finely
@@ -237,6 +237,12 @@ def _proposals(profile: Profile, channels: list[ChannelPrediction], settling: fl
     fraction = acq.pretrigger_fraction
     slowest = max((c for c in channels if c.settling_s is not None), key=lambda c: c.settling_s)
     window = _ceil2(SETTLING_MARGIN * settling / (1 - fraction))
+    if window > MAX_WINDOW_S:  # a mode that hardly settles: a node reached only through capacitors, say
+        raise ConfigError(profile.source, "dut.model", f"{slowest.name} ({slowest.signal}) settles in "
+                                                       f"{si(settling, 's', 3)}, so the window would be "
+                                                       f"{si(window, 's', 3)}, over the {MAX_WINDOW_S:g} s one "
+                                                       f"capture may last; look for a node without a path to "
+                                                       f"ground but through capacitors")
     interval = _interval_rule(dyn)
     limits = load_driver(find_driver(profile.bench.scope.driver, profile.source)).limits
     samples = max(int(_ceil2(window / interval[0])), MIN_SAMPLES, int(limits["min_samples"]))

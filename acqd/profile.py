@@ -25,6 +25,13 @@ BENCH_KINDS = ("simulated", "visa")
 NETLIST_FILE = "netlist_file"  # a model table's key: the netlist in a file beside the profile
 NETLIST_MAX_BYTES = 1_000_000  # a netlist is a page of text; anything larger is not one
 COUPLINGS = ("dc", "ac")
+# Physical sanity, beyond any bench this drives: a value past these is a typo (1e300 reached the scope as a
+# range it refused, a step test "not acquired", instead of one line about the profile). The instruments'
+# own, narrower limits come from their driver files.
+MAX_VOLTS = 1000.0       # a level, range, offset or trigger level, V
+MAX_FREQUENCY_HZ = 1e10  # the profile's frequency limit, Hz
+MAX_WINDOW_S = 3600.0    # one capture's window, s
+MAX_TIMEOUT_S = 86400.0  # waiting for an instrument or a capture, s
 
 
 @dataclass(frozen=True)
@@ -193,8 +200,8 @@ def _done_profile_table(top: Table) -> None:
 
 
 def _limits(t: Table) -> Limits:
-    limits = Limits(max_level_v=t.number("max_level_v", positive=True, unit="V"),
-                    max_frequency_hz=t.number("max_frequency_hz", positive=True, unit="Hz"))
+    limits = Limits(max_level_v=t.number("max_level_v", positive=True, max=MAX_VOLTS, unit="V"),
+                    max_frequency_hz=t.number("max_frequency_hz", positive=True, max=MAX_FREQUENCY_HZ, unit="Hz"))
     t.done()
     return limits
 
@@ -206,7 +213,7 @@ def _instrument(t: Table, role: str, kind: str) -> InstrumentPlan:
         raise t.error("resource", "missing (required on a visa bench), e.g. 'TCPIP0::192.0.2.10::5025::SOCKET'")
     if kind == "simulated" and resource is not None:
         raise t.error("resource", "not allowed on the simulated bench (it picks its own ports)")
-    plan = InstrumentPlan(role, driver, resource, t.number("timeout_s", 5.0, positive=True, unit="s"),
+    plan = InstrumentPlan(role, driver, resource, t.number("timeout_s", 5.0, positive=True, max=MAX_TIMEOUT_S, unit="s"),
                           t.string("backend", DEFAULT_BACKEND, choices=NAMED_BACKENDS))
     t.done()
     return plan
@@ -369,7 +376,7 @@ def _acquisition(t: Table) -> AcquisitionPlan:
     them from the DUT's model (values given anyway are checked against the proposal, and replaced)."""
     auto = t.boolean("auto", False)
     optional = None if auto else ...
-    window = t.number("window_s", optional, positive=True, unit="s")
+    window = t.number("window_s", optional, positive=True, max=MAX_WINDOW_S, unit="s")
     fraction = t.number("pretrigger_fraction", 0.2, min=0.0, max=0.9)
     samples = t.integer("samples", optional, min=16, max=10_000_000)
     averages = t.integer("averages", 1, min=1, max=10_000)
@@ -384,17 +391,17 @@ def _acquisition(t: Table) -> AcquisitionPlan:
     if len(set(names)) != len(names):
         raise t.error("channels", f"channel names must be unique, got {names}")
     plan = AcquisitionPlan(window, fraction, samples, averages, tuple(channels),
-                           t.number("trigger_level_v", None, unit="V"),
-                           t.number("timeout_s", None, positive=True, unit="s"), auto)
+                           t.number("trigger_level_v", None, min=-MAX_VOLTS, max=MAX_VOLTS, unit="V"),
+                           t.number("timeout_s", None, positive=True, max=MAX_TIMEOUT_S, unit="s"), auto)
     t.done()
     return plan
 
 
 def _channel(t: Table, scope_input: str, auto: bool) -> ChannelPlan:
     plan = ChannelPlan(scope_input, t.string("name", scope_input),
-                       t.number("range_v", None if auto else ..., positive=True,
+                       t.number("range_v", None if auto else ..., positive=True, max=MAX_VOLTS,
                                 unit="V, half the span around offset_v"),
-                       t.number("offset_v", 0.0, unit="V"), t.string("coupling", "dc", choices=COUPLINGS))
+                       t.number("offset_v", 0.0, min=-MAX_VOLTS, max=MAX_VOLTS, unit="V"), t.string("coupling", "dc", choices=COUPLINGS))
     t.done()
     return plan
 

@@ -2,7 +2,7 @@
 disk, then every acknowledged record checked.
 
     python bench/soak.py [--records 1000] [--chunk 25] [--random-kills 30] [--chosen-kills 30]
-                         [--disk-mib MIB] [--seed 1] [--work DIR]
+                         [--daemon-kills 30] [--daemon-slots 400] [--disk-mib MIB] [--seed 1] [--work DIR]
 
 The simulated bench runs in this process (so its fault counts and the generator's output state can be
 read at any moment), behind a `kind = "visa"` profile; `[bench.simulated.faults]`-style rates are set so
@@ -12,7 +12,9 @@ them: `--random-kills` runs are SIGKILLed at a random moment, `--chosen-kills` a
 store (`ACQD_STORE_KILL_AT`, a random step and occurrence), and once the store's disk - a tmpfs of
 `--disk-mib` in a private mount namespace, when this runs as root or with user namespaces - is filled and,
 after the run that meets it, freed. At the end every record is read back (its CRC-32 checked) and set
-against what the runs acknowledged.
+against what the runs acknowledged. With ``--daemon-kills``, ``acqd daemon`` then runs a back-to-back
+campaign of ``--daemon-slots`` one-record slots on the same bench, SIGKILLed that many times (each at a
+random moment 0.5-5 s after that start's first slot began) and restarted each time, and its store, ledger and run log are checked the same way.
 
 It prints: records acknowledged, present and verifying, lost, duplicated, corrupt; faults injected by kind
 and step tests not acquired; how each run ended; and the generator's output after each run ended.
@@ -23,14 +25,17 @@ from __future__ import annotations
 import acqd  # first: it sets the single-threaded BLAS that acqd runs with, before numpy loads  # noqa: F401
 
 import argparse
+import json
 import os
 import random
 import shutil
 import signal
+import sqlite3
 import subprocess
 import sys
 import tempfile
 import threading
+import time
 from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -128,6 +133,107 @@ def check(store: Path, tally: Tally) -> dict[str, int]:
             "duplicated": len(seen) - len(set(seen)) + tally.twice, "corrupt": corrupt}
 
 
+DAEMON_CAMPAIGN = "soak-daemon"
+DAEMON_TIMEOUT_S = 600.0  # the last daemon start finishes the campaign: a bound so a hang ends the soak
+
+
+def daemon_profile(run_profile: Path, slots: int) -> Path:
+    """The run's profile with a back-to-back campaign of ``slots`` one-record slots."""
+    path = run_profile.with_name("soak-daemon.toml")
+    path.write_text(run_profile.read_text() + f'\n[campaign]\nname = "{DAEMON_CAMPAIGN}"\nback_to_back = true\n'
+                                                f"slots = {slots}\n")
+    return path
+
+
+def start_daemon(profile: Path, data: Path) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "acqd", "daemon", "--plain", "--data-dir", str(data), str(profile)],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+
+
+def daemon_phase(args: argparse.Namespace, rng: random.Random, bench: SimBench, run_profile: Path,
+                 data: Path) -> dict[str, object]:
+    """``--daemon-kills`` SIGKILLs of ``acqd daemon``, each 0.5-5 s after that start's first slot began and
+    followed by a restart, then a last start that finishes the campaign; then every record and slot checked against what the daemon's
+    run log acknowledged (a "record" event is written once the record is durable)."""
+    profile = daemon_profile(run_profile, args.daemon_slots)
+    kills, output_after_kill, finished_early = 0, Counter(), False
+    while kills < args.daemon_kills:
+        proc = start_daemon(profile, data)
+        if not wait_for_a_slot(proc, data) or _ended_within(proc, rng.uniform(0.5, 5.0)):
+            finished_early = True  # the campaign ended before every kill was made
+            break
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        kills += 1
+        output_after_kill["on" if bench.generator.settings.output_on else "off"] += 1
+    last = start_daemon(profile, data)
+    _, err = last.communicate(timeout=DAEMON_TIMEOUT_S)
+    return {"kills": kills, "finished before the kills were made": finished_early, "last start's status": last.returncode,
+            "last start's stderr lines": len(err.strip().splitlines()), **daemon_check(data),
+            "generator output after a kill": dict(output_after_kill),
+            "generator output after the campaign": "on" if bench.generator.settings.output_on else "off"}
+
+
+def wait_for_a_slot(proc: subprocess.Popen, data: Path) -> bool:
+    """Wait until this daemon has started a slot (its start-up, with the comparator worker's, takes seconds
+    on a loaded machine: a kill before it would test nothing); False if it ended first."""
+    log = data / "runlog.jsonl"
+    started = log.read_text().count('"slot_start"') if log.exists() else 0
+    deadline = time.monotonic() + DAEMON_TIMEOUT_S
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            return False
+        if log.exists() and log.read_text().count('"slot_start"') > started:
+            return True
+        time.sleep(0.1)
+    raise RuntimeError(f"acqd daemon started no slot in {DAEMON_TIMEOUT_S:g} s")
+
+
+def _ended_within(proc: subprocess.Popen, seconds: float) -> bool:
+    try:
+        proc.wait(timeout=seconds)
+        return True
+    except subprocess.TimeoutExpired:
+        return False
+
+
+def daemon_check(data: Path) -> dict[str, object]:
+    """Acknowledged (run log "record" events) against stored (every record read, CRC-32 checked), and every
+    slot of the ledger accounted for once."""
+    acknowledged: dict[int, tuple[int, int]] = {}
+    for line in (data / "runlog.jsonl").read_text().splitlines():
+        try:
+            event = json.loads(line)
+        except json.JSONDecodeError:
+            continue  # a line a kill cut short
+        if event.get("event") == "record":
+            acknowledged[event["index"]] = (event["slot"], event["step"])
+    stored: dict[int, tuple[int, int]] = {}
+    corrupt = 0
+    with open_records(data / f"{DAEMON_CAMPAIGN}.h5") as reader:
+        for summary in reader.index():
+            try:
+                record = reader.read(summary.index)
+            except AcqdError:
+                corrupt += 1
+                continue
+            tag = record.settings["campaign"]
+            stored[summary.index] = (tag["slot"], tag["step"])
+    conn = sqlite3.connect(f"file:{data / 'campaigns.sqlite'}?mode=ro", uri=True)
+    try:
+        slots = conn.execute("SELECT first_slot, slot, state FROM acqd_slots WHERE campaign = ?",
+                             (DAEMON_CAMPAIGN,)).fetchall()
+    finally:
+        conn.close()
+    accounted = Counter(n for first, last, _ in slots for n in range(first, last + 1))
+    return {"records acknowledged": len(acknowledged), "records present and verifying": len(stored),
+            "lost": sum(1 for i, tag in acknowledged.items() if stored.get(i) != tag),
+            "duplicated": len(stored) - len(set(stored.values())), "corrupt": corrupt,
+            "gaps in the indices": (max(stored) + 1 - len(stored)) if stored else 0,
+            "slots": len(accounted), "slots accounted twice": sum(1 for c in accounted.values() if c > 1),
+            "slot states": dict(Counter(state for _, _, state in slots))}
+
+
 def fill(disk: Path) -> Path:
     """Fill the disk with one file but a few KiB (the next run meets ENOSPC); returns the file."""
     filler = disk / "filler"
@@ -144,6 +250,7 @@ def fill(disk: Path) -> Path:
 def soak(args: argparse.Namespace, disk: Path | None) -> None:
     rng = random.Random(args.seed)
     work = Path(args.work or tempfile.mkdtemp(prefix="acqd-soak-"))
+    work.mkdir(parents=True, exist_ok=True)
     store_dir = disk or work
     table = {"seed": 9, "noise_v_rms": 0.002, "faults": {**RATES, "seed": args.seed}}
     bench = SimBench(SimBenchConfig.from_mapping(table, "bench/soak.py")).start()
@@ -171,6 +278,7 @@ def soak(args: argparse.Namespace, disk: Path | None) -> None:
                 filler.unlink()
                 filled_at = None  # freed once; the next run recovers the store
         figures = check(store_dir / "soak.h5", tally)
+        daemon = daemon_phase(args, rng, bench, profile, store_dir / "daemon") if args.daemon_kills else None
     finally:
         injected = Counter()
         for instrument in bench.instruments.values():
@@ -187,6 +295,10 @@ def soak(args: argparse.Namespace, disk: Path | None) -> None:
     print(f"disk filled and freed: {'yes' if disk is not None else 'no (no tmpfs could be mounted here)'}")
     if stalled >= MAX_STALLED_RUNS:
         print(f"stopped early: {MAX_STALLED_RUNS} runs in a row stored nothing")
+    if daemon is not None:
+        print(f"the daemon ({args.daemon_slots} back-to-back slots on the same bench):")
+        for name, value in daemon.items():
+            print(f"  {name}: {value}")
     if not args.work:
         shutil.rmtree(work, ignore_errors=True)
 
@@ -200,12 +312,16 @@ def main() -> None:
     parser.add_argument("--disk-mib", type=int, default=None,
                         help="tmpfs size for the store (default: room for every record and a segment's copy); "
                              "0: no full disk")
+    parser.add_argument("--daemon-kills", type=int, default=0,
+                        help="then SIGKILL acqd daemon this many times at random moments, restarting it each time")
+    parser.add_argument("--daemon-slots", type=int, default=400, help="slots of the daemon's campaign")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--work", default=None, help="folder for the profile (kept); default a temporary one")
     parser.add_argument("--mounted", default=None, help=argparse.SUPPRESS)  # set inside the namespace
     args = parser.parse_args()
     if args.disk_mib is None:
-        args.disk_mib = int((args.records * 1.3 + 2 * args.chunk) * RECORD_MIB) + 16
+        daemon_records = args.daemon_slots if args.daemon_kills else 0
+        args.disk_mib = int((args.records * 1.3 + 2 * args.chunk + daemon_records) * RECORD_MIB) + 16
     if args.mounted is not None:
         soak(args, Path(args.mounted))
     elif args.disk_mib and shutil.which("unshare"):

@@ -269,7 +269,7 @@ def test_progress_bar_on_a_terminal(night, tmp_path):
     (["report", "{store}", "-o", "{tmp}/x.html", "-p", "{tmp}/p.toml"], "--profile: only with --recompute"),
     (["report", "{store}", "-o", "{tmp}/x.html", "--full", "99"], "--full: record 99 is not among"),
     (["report", "{store}", "-o", "{tmp}/x.html", "--full", "2-1"], "--full: '2-1'"),
-    (["report", "{store}", "-o", "{tmp}"], "is a folder; name the HTML file"),
+    (["report", "{store}", "-o", "{tmp}"], "is a folder; name the file to write"),
     (["report", "{store}", "-o", "{tmp}/x.html", "--last", "0"], "--last: must be 1 or more"),
     (["report", "{tmp}/none.h5", "-o", "{tmp}/x.html"], "no such record store"),
 ])

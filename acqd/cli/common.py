@@ -12,6 +12,7 @@ option (argparse lets an exception that is not a ``ValueError`` or ``TypeError``
 from __future__ import annotations
 
 import argparse
+import math
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -121,17 +122,79 @@ def add_command(sub: argparse._SubParsersAction, name: str, help: str, descripti
     return sub.add_parser(name, help=help, description=description)
 
 
-def whole_number(command: str, option: str, minimum: int) -> Callable[[str], int]:
-    """An argparse ``type`` for a whole number ≥ ``minimum`` that fails as one ``acqd: error:`` line."""
+# Every count, index and port a command line gives is at most this: a 400-digit --count ran "forever".
+MAX_WHOLE_NUMBER = 1_000_000_000
+SHOWN_CHARS = 60  # of a value quoted in an error line, so a 400-digit number stays one short line
+
+
+def _shown(text: str) -> str:
+    return repr(text) if len(text) <= SHOWN_CHARS else repr(text[:SHOWN_CHARS - 3] + "...")
+
+
+def whole_number(command: str, option: str, minimum: int,
+                 maximum: int = MAX_WHOLE_NUMBER) -> Callable[[str], int]:
+    """An argparse ``type`` for a whole number from ``minimum`` to ``maximum`` that fails as one
+    ``acqd: error:`` line."""
     def parse(text: str) -> int:
+        if len(text) > SHOWN_CHARS:
+            raise ConfigError(command, option, f"{_shown(text)} is longer than any number allowed here "
+                                               f"(at most {maximum:,})")
         try:
             value = int(text)
         except ValueError:
             raise ConfigError(command, option, f"{text!r} is not a whole number") from None
         if value < minimum:
             raise ConfigError(command, option, f"must be {minimum} or more, not {value}")
+        if value > maximum:
+            raise ConfigError(command, option, f"must be at most {maximum:,}, not {value}")
         return value
     return parse
+
+
+def finite_number(command: str, option: str, text: str) -> float:
+    """``text`` as a finite float, or one ``acqd: error:`` line (``nan`` and ``inf`` are floats to Python)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise ConfigError(command, option, f"{_shown(text)} is not a number") from None
+    if not math.isfinite(value):
+        raise ConfigError(command, option, f"{_shown(text)} is not a finite number")
+    return value
+
+
+def written_file(command: str, option: str) -> Callable[[str], Path]:
+    """An argparse ``type`` for a file a command writes: if it exists it must be a regular file. A device
+    (``/dev/null``), a FIFO or a folder is refused: writing beside it and renaming (as the report does)
+    would replace ``/dev/null`` itself, and opening a FIFO waits for a reader that never comes."""
+    def parse(text: str) -> Path:
+        path = Path(text)
+        if path.is_dir():
+            raise ConfigError(command, option, f"{text} is a folder; name the file to write in it")
+        if path.exists() and not path.is_file():
+            raise ConfigError(command, option, f"{text} is not a regular file (a device, a FIFO or a socket); "
+                                               f"name a file to write")
+        return path
+    return parse
+
+
+def figures_folder(command: str, option: str) -> Callable[[str], Path]:
+    """An argparse ``type`` for a folder of figures: made if missing, but never a file that exists."""
+    def parse(text: str) -> Path:
+        path = Path(text)
+        if path.exists() and not path.is_dir():
+            raise ConfigError(command, option, f"{text} is not a folder; name a folder for the figures "
+                                               f"(it is made if missing)")
+        return path
+    return parse
+
+
+def made_folder(folder: Path, command: str, option: str) -> Path:
+    """``folder`` made (with its parents) before any work is done, or one line saying why it cannot be."""
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ConfigError(command, option, f"folder {folder} cannot be made ({exc.strerror})") from None
+    return folder
 
 
 def add_store(parser: argparse.ArgumentParser, help: str = "the record store, e.g. data/night.h5 (or one segment file)"
@@ -145,11 +208,14 @@ def add_record(parser: argparse.ArgumentParser) -> None:
 
 
 def add_out(parser: argparse.ArgumentParser, help: str, required: bool = False) -> None:
-    parser.add_argument("-o", "--out", metavar="FILE", type=Path, required=required, help=help)
+    parser.add_argument("-o", "--out", metavar="FILE", type=written_file(parser.prog, "--out"), required=required,
+                        help=help)
 
 
-def add_figures(parser: argparse.ArgumentParser, help: str) -> None:
-    parser.add_argument("--figures", metavar="DIR", type=Path, help=help)
+def add_figures(parser: argparse.ArgumentParser | argparse._ArgumentGroup, help: str, command: str = "") -> None:
+    """``--figures DIR``; ``command`` names the sub-command when ``parser`` is one of its argument groups."""
+    parser.add_argument("--figures", metavar="DIR", type=figures_folder(command or parser.prog, "--figures"),
+                        help=help)
 
 
 def add_profile(parser: argparse.ArgumentParser, help: str) -> None:

@@ -23,7 +23,8 @@ from ..errors import ConfigError
 from ..models import BUILDERS
 from ..display import edge_label, si
 from ..record import EDGES, LOADS, Record, Stimulus
-from .common import add_command, add_figures, add_json, add_profile, add_record, add_store, chosen_record, console, utc_text
+from .common import (add_command, add_figures, add_json, add_profile, add_record, add_store, chosen_record, console,
+                     finite_number, made_folder, utc_text)
 from .results import renderables
 
 CLI = "acqd compare"
@@ -67,16 +68,13 @@ def register(sub: argparse._SubParsersAction) -> None:
     g.add_argument("--source-resistance", metavar="OHM", help="generator output resistance (default 50)")
     g = p.add_argument_group("output")
     add_json(g, "print the whole result as one JSON object instead of a table")
-    add_figures(g, "write channels.png and trajectory.png into DIR")
+    add_figures(g, "write channels.png and trajectory.png into DIR", command=p.prog)
     p.set_defaults(func=run_compare)
 
 
 # -- parsing option values ----------------------------------------------------------------------------
 def _number(option: str, text: str) -> float:
-    try:
-        return float(text)
-    except ValueError:
-        raise ConfigError(CLI, option, f"{text!r} is not a number") from None
+    return finite_number(CLI, option, text)
 
 
 def _pair(option: str, text: str) -> tuple[str, str]:
@@ -247,6 +245,8 @@ def headline(result: CompareResult, stimulus: Stimulus, label: str) -> str:
 
 
 def run_compare(args: argparse.Namespace) -> int:
+    if args.figures:  # before the fit, so a folder that cannot be made costs no time
+        made_folder(args.figures, CLI, "--figures")
     record = _record(args)
     table = _base_table(args, record)
     _apply_options(table, args)

@@ -18,7 +18,10 @@ from rich.text import Text
 from ..instruments import driver_dirs, list_drivers, match_driver
 from ..instruments.search import ENVIRONMENT
 from ..visa import DEFAULT_BACKEND, NAMED_BACKENDS, identify
-from .common import add_command, console
+from ..errors import ConfigError
+from .common import add_command, console, finite_number
+
+MAX_TIMEOUT_S = 3600.0  # an answer later than an hour is no answer
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -37,8 +40,16 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                          help=f"pyvisa backend by name (default {DEFAULT_BACKEND})")
     library.add_argument("--visa-library", type=Path, metavar="PATH",
                          help="a VISA shared library file to load instead (native code: only from here)")
-    ident.add_argument("--timeout-s", type=float, default=5.0, metavar="S", help="reply timeout in seconds")
+    ident.add_argument("--timeout-s", type=_timeout_s, default=5.0, metavar="S", help="reply timeout in seconds")
     ident.set_defaults(func=_identify)
+
+
+def _timeout_s(text: str) -> float:
+    value = finite_number("acqd identify", "--timeout-s", text)
+    if not 0 < value <= MAX_TIMEOUT_S:
+        raise ConfigError("acqd identify", "--timeout-s", f"must be above 0 and at most {MAX_TIMEOUT_S:g} s, "
+                                                          f"not {value:g}")
+    return value
 
 
 def _limits_text(limits: dict[str, Any]) -> str:

@@ -27,7 +27,8 @@ from ..profile import Profile
 from ..record import Record
 from ..steptest import Applied, check_limits, output_guard, run_step_test
 from ..store import RecordStore
-from .common import SAFETY_NOTE, add_command, add_count, add_out, console, progress_bar, record_line, verdict_text
+from .common import (SAFETY_NOTE, add_command, add_count, add_out, console, made_folder, progress_bar, record_line,
+                     verdict_text, written_file)
 from .sim import parse_selection
 
 
@@ -69,7 +70,7 @@ def run_command(args: argparse.Namespace) -> int:
     if profile.batch is not None:
         return _batch_command(args, profile)
     judge = make_judge(profile)  # validates [dut] before anything is started
-    out = args.out or profile.output.file
+    out = _store_path(args, profile)
     screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
     with sigterm_raises(), open_bench(profile, replay) as bench:
@@ -77,7 +78,6 @@ def run_command(args: argparse.Namespace) -> int:
         _open_switch(bench, screen)
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
-        out.parent.mkdir(parents=True, exist_ok=True)
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
                 progress_bar(screen) as progress, _Keeper(judge, store, progress.console) as keeper, \
                 output_guard(bench.generator):  # left first: the output goes off before the last records are kept
@@ -87,6 +87,18 @@ def run_command(args: argparse.Namespace) -> int:
     if aborted:
         raise InstrumentError("acqd run", aborted)
     return 1 if failed else 0
+
+
+def _store_path(args: argparse.Namespace, profile: Profile) -> Path:
+    """The store to append to, checked and its folder made before the bench is opened: a folder that
+    cannot be made (under /proc) or a device where the store should be is one line, and nothing is sent."""
+    if args.out is not None:
+        where, field, out = "acqd run", "--out", args.out
+    else:
+        where, field, out = profile.source, "output.file", profile.output.file
+        written_file(where, field)(str(out))
+    made_folder(out.parent, where, f"{field} {out}")
+    return out
 
 
 def _step_tests(profile: Profile, bench: Bench, count: int, keeper: _Keeper, progress: Progress) -> tuple[int, str]:
@@ -204,13 +216,12 @@ def _batch_command(args: argparse.Namespace, profile: Profile) -> int:
     if args.replay is not None:
         raise ConfigError("command line", "--replay", "a batch profile steps a switch; replay a single-unit profile")
     judges = unit_judges(profile, profile.batch)
-    out = args.out or profile.output.file
+    out = _store_path(args, profile)
     screen = console(soft_wrap=True)
     results, stored, skipped = [], 0, 0
     with sigterm_raises(), open_bench(profile) as bench:
         _open_switch(bench, screen)
         screen.print(Text(SAFETY_NOTE))
-        out.parent.mkdir(parents=True, exist_ok=True)
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
                 progress_bar(screen) as progress:
             task = progress.add_task(f"{profile.name}: batch {profile.batch.name}",

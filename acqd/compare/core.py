@@ -405,6 +405,8 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "",
     (fitted values of an earlier record, ``fitted_values``) is where a fit's solver begins; the result
     is the same optimum as from the nominal values (see ``fit_parameters``).
     """
+    samples_per_channel = record.timebase.n_samples
+    record, every = _every_kth_sample(record)
     setup = _setup(record, spec, label or (f"record {record.index}" if record.index is not None else "the record"))
     edge = setup.align(setup.model())
     fit = _fit(setup, edge, warm_start) if spec.fit.free else None
@@ -430,9 +432,32 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "",
                 "duration_s": edge.duration_s, "timing": timing}
     record_info = {"index": record.index, "utc": record.utc, "channels": record.channel_names,
                    "dut": dict(spec.identity), "profile_sha256": record.profile_sha256}
+    thinned = [f"compared on one sample in {every} ({samples_per_channel:,} per channel; a comparison uses at "
+               f"most {MAX_COMPARED_SAMPLES:,})"] if every > 1 else []
     return CompareResult(record_info, spec.model, dict(setup.nominal), parameters, stimulus, channels, fit,
                          verdict, clipping_warnings(record, [m.channel for m in setup.mapping])
-                         + _warnings(channels, spans) + notes, traces=traces)
+                         + _warnings(channels, spans) + notes + thinned, traces=traces)
+
+
+# The fit's dense Jacobian (samples × channels × unknowns, with the solver's copies) is what a long record
+# costs: `acqd compare` of 1e6 samples of three channels peaked at 1.2 GiB (bench/memory.py), and issue 10's
+# probe saw 10.6 GiB at the 1e7 a record may have. Beyond this many
+# samples per channel a record is compared on every k-th one (the t = 0 sample kept), so a comparison's
+# memory stays bounded; the fitted values' intervals widen by about √k, and they say so.
+MAX_COMPARED_SAMPLES = 250_000
+
+
+def _every_kth_sample(record: Record) -> tuple[Record, int]:
+    """(``record`` with every k-th sample, k), k the smallest that leaves at most MAX_COMPARED_SAMPLES."""
+    base = record.timebase
+    every = -(-base.n_samples // MAX_COMPARED_SAMPLES)
+    if every == 1:
+        return record, 1
+    first = base.pretrigger_samples % every  # the kept samples fall on t = m·k·dt, the trigger's among them
+    channels = [replace(ch, samples=np.ascontiguousarray(ch.samples[first::every])) for ch in record.channels]
+    timebase = replace(base, sample_interval_s=base.sample_interval_s * every,
+                       pretrigger_samples=base.pretrigger_samples // every, n_samples=len(channels[0].samples))
+    return replace(record, channels=channels, timebase=timebase), every
 
 
 def compare(record: Record, model_spec: Mapping[str, Any], mapping: Mapping[str, Any] | None = None,

@@ -57,6 +57,12 @@ class NetlistError(ValueError):
     """A netlist that cannot become a model; the text names the line or the elements at fault."""
 
 
+# A part's value beyond any real one (1e15 ohm is a good insulator; 1e15 F or H no part at all): larger ones
+# overflow the exact discretisation (a 1e300 ohm resistor failed in an SVD, and inside the simulated scope).
+MAX_MAGNITUDE = 1e15
+MAX_NAME_CHARS = 64  # an element's name, a node's or a value's: they end up in messages, fits and records
+
+
 @dataclass(frozen=True)
 class Element:
     name: str
@@ -123,6 +129,9 @@ def parse_netlist(text: str) -> tuple[Element, ...]:
 def _element(number: int, fields: list[str]) -> Element:
     name, kind = fields[0], fields[0][:1].upper()
     where = f"line {number}: {name}"
+    if too_long := next((f for f in fields if len(f) > MAX_NAME_CHARS), None):
+        raise NetlistError(f"line {number}: {too_long[:20]}...: {len(too_long):,} characters; an element's name, "
+                           f"node or value has at most {MAX_NAME_CHARS}")
     if kind not in KINDS:
         raise NetlistError(f"{where}: unknown element letter {kind!r}; allowed: {', '.join(KINDS)}")
     if kind in "VI":
@@ -149,6 +158,8 @@ def _element(number: int, fields: list[str]) -> Element:
             raise NetlistError(f"{where}: node {node!r} may hold only letters, digits, '_' and '.'")
     if kind in POSITIVE and not value > 0:
         raise NetlistError(f"{where}: the value must be greater than 0, not {value:g}")
+    if abs(value) > MAX_MAGNITUDE:
+        raise NetlistError(f"{where}: the value must be at most {MAX_MAGNITUDE:g} in magnitude, not {value:g}")
     return Element(name, kind, nodes, value, line=number)
 
 

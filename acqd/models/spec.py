@@ -17,7 +17,7 @@ import numpy as np
 
 from ..errors import ConfigError
 from .circuits import parallel_rlc, rc_lowpass, second_order, series_rl, series_rlc
-from .netlist import Netlist, NetlistError, netlist_model
+from .netlist import MAX_MAGNITUDE, Netlist, NetlistError, netlist_model
 from .statespace import StateSpace
 
 ModelBuilder = Callable[..., StateSpace]
@@ -47,6 +47,8 @@ class ParameterInfo:
             return f"must be greater than 0 ({self.unit}), not {value!r}"
         if self.sign == "non_negative" and value < 0:
             return f"must be 0 or more ({self.unit}), not {value!r}"
+        if abs(value) > MAX_MAGNITUDE:
+            return f"must be at most {MAX_MAGNITUDE:g} in magnitude ({self.unit}), not {value!r}"
         return None
 
 
@@ -126,8 +128,9 @@ def _required(name: str) -> list[str]:
 def build_model(spec: Mapping[str, Any], source: str, overrides: Mapping[str, float] | None = None) -> StateSpace:
     """The model a profile table describes; ``overrides`` replaces parameters (the comparator's fits)."""
     name = spec.get("model")
-    if name not in BUILDERS:
-        raise ConfigError(source, "model", f"unknown model {name!r}; allowed: {', '.join(sorted(BUILDERS))}")
+    if not isinstance(name, str) or name not in BUILDERS:
+        shown = repr(name) if len(repr(name)) <= 60 else repr(name)[:57] + "..."
+        raise ConfigError(source, "model", f"unknown model {shown}; allowed: {', '.join(sorted(BUILDERS))}")
     allowed = model_parameters(name)
     params = {k: v for k, v in spec.items() if k != "model"}
     for key in params:

@@ -461,6 +461,8 @@ def _write_whole(path: Path, text: str) -> Path:
     """``text`` to ``path`` through a file beside it and a rename, so no half-written page is ever there."""
     if path.is_dir():
         raise ConfigError(str(path), "", "is a folder; name the HTML file to write (e.g. report.html)")
+    if path.exists() and not path.is_file():  # the rename below would replace a device such as /dev/null
+        raise ConfigError(str(path), "", "is not a regular file (a device, a FIFO or a socket); name the HTML file")
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         part = path.with_name(f".{path.name}.part")

@@ -84,6 +84,11 @@ from .switch import SimSwitch
 TABLE = "bench.simulated"
 DRIFT_TABLE = f"{TABLE}.drift"
 SECONDS_PER_HOUR = 3600.0
+# Physical sanity for the front end's imperfections: beyond these no bench is being imitated, and the plant's
+# arithmetic overflows (a 1e300 s jitter or edge time failed inside the scope's INITiate handler).
+MAX_NOISE_V_RMS = 100.0
+MAX_BANDWIDTH_HZ = 1e12
+MAX_TIME_S = 1.0
 # The demo DUT: a lightly damped series RLC (ζ ≈ 0.17 with the generator's 50 Ω, rings near 10.6 kHz).
 DEMO_DUT: Mapping[str, Any] = MappingProxyType({"model": "series_rlc", "r_ohm": 27.0, "l_h": 3.3e-3,
                                                 "c_f": 68e-9})
@@ -161,15 +166,16 @@ class SimBenchConfig:
         values = dict(
             realtime=table.boolean("realtime", d.realtime),
             seed=table.integer("seed", d.seed, min=0),
-            noise_v_rms=table.number("noise_v_rms", d.noise_v_rms, min=0, unit="V rms"),
-            bandwidth_hz=table.number("bandwidth_hz", d.bandwidth_hz, min=0, unit="Hz; 0 = off"),
-            jitter_s=table.number("jitter_s", d.jitter_s, min=0, unit="s rms"),
+            noise_v_rms=table.number("noise_v_rms", d.noise_v_rms, min=0, max=MAX_NOISE_V_RMS, unit="V rms"),
+            bandwidth_hz=table.number("bandwidth_hz", d.bandwidth_hz, min=0, max=MAX_BANDWIDTH_HZ,
+                                      unit="Hz; 0 = off"),
+            jitter_s=table.number("jitter_s", d.jitter_s, min=0, max=MAX_TIME_S, unit="s rms"),
             quantise=table.boolean("quantise", d.quantise),
             clip=table.boolean("clip", d.clip),
-            edge_time_s=table.number("edge_time_s", d.edge_time_s, min=0, unit="s, 10-90 %"),
+            edge_time_s=table.number("edge_time_s", d.edge_time_s, min=0, max=MAX_TIME_S, unit="s, 10-90 %"),
             command_log=_command_log(table),
             dut=dict(table.table("dut", dict(DEMO_DUT)).data),
-            wiring=dict(table.table("wiring", dict(DEMO_WIRING)).data),
+            wiring=_wiring_texts(table.table("wiring", dict(DEMO_WIRING))),
             drift=DriftConfig.from_table(table.table("drift")) if table.has("drift") else None,
             fixture=FixtureConfig.from_table(table.table("fixture", {}), batch_units)
             if table.has("fixture") or batch_units is not None else None,
@@ -209,6 +215,13 @@ def _command_log(table: Table) -> str | None:
         raise table.error("command_log", f"folder {str(Path(path).parent)!r} does not exist; create it or "
                                          f"give a path in an existing folder")
     return path
+
+
+def _wiring_texts(table: Table) -> dict[str, str]:
+    """Scope input → signal text, each checked as text (bounded, no control character) before it is parsed."""
+    texts = {name: table.string(name) for name in list(table.data)}
+    table.done()
+    return texts
 
 
 def _check_wiring(wiring: Mapping[str, Any], model: StateSpace, source: str) -> None:

@@ -183,7 +183,11 @@ class RecordStore:
 
 
 def _take_lock(paths: StorePaths) -> int:
-    fd = take_lock(paths.lock)
+    try:
+        fd = take_lock(paths.lock)
+    except OSError as exc:  # a folder nothing can be created in (/proc), read-only or full
+        raise ConfigError(str(paths.path), "", f"cannot be written: its lock file {paths.lock} cannot be made "
+                                               f"({exc.strerror})") from None
     if fd is None:
         problem = f"another process is writing this store (it holds {paths.lock})"
         raise ConfigError(str(paths.path), "", problem)

@@ -227,7 +227,8 @@ def _uncertainty(jac: np.ndarray, residuals: np.ndarray, theta: np.ndarray, coor
     for i, (name, lg, scale) in enumerate(zip(coords.names, coords.log, coords.scale)):
         if lg:
             errors[name] = values[name] * se[i]  # delta method: d p = p · d ln p
-            intervals[name] = (float(np.exp(theta[i] - tq * se[i])), float(np.exp(theta[i] + tq * se[i])))
+            with np.errstate(over="ignore"):  # past binary64's range the interval is unbounded: inf, stored as null
+                intervals[name] = (float(np.exp(theta[i] - tq * se[i])), float(np.exp(theta[i] + tq * se[i])))
         else:
             errors[name] = scale * se[i]
             intervals[name] = (values[name] - tq * errors[name], values[name] + tq * errors[name])

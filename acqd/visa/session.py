@@ -45,9 +45,6 @@ NEXT_ERROR = "SYSTem:ERRor?"
 TEXT_CHUNK_BYTES = 1 << 16
 MAX_ERROR_ENTRIES = 100
 
-_CONNECTION_LOST = (constants.StatusCode.error_connection_lost, constants.StatusCode.error_io)
-
-
 class InstrumentTimeout(InstrumentError):
     """No (complete) reply within the timeout; the session has already been drained or reconnected."""
 
@@ -339,8 +336,11 @@ class Session:
                     raise InstrumentError(self.resource, f"connection dropped (closed by the instrument) "
                                                          f"while waiting for the reply to {command}") from None
                 raise InstrumentTimeout(self.resource, f"no reply to {command} within {timeout_s:g} s") from None
-            if exc.error_code in _CONNECTION_LOST:
+            if exc.error_code == constants.StatusCode.error_connection_lost:
                 raise InstrumentError(self.resource, f"connection dropped during {command}") from None
+            if exc.error_code == constants.StatusCode.error_io:  # also a VXI-11 call that timed out, link still up
+                raise InstrumentError(self.resource, f"I/O error during {command} (the connection dropped, or the "
+                                                     f"instrument left a call unanswered)") from None
             raise InstrumentError(self.resource, f"VISA error {exc.abbreviation} during {command}") from None
         except TimeoutError as exc:
             raise InstrumentTimeout(self.resource, str(exc)) from None

@@ -124,9 +124,11 @@ def test_parameter_deviation_is_relative_to_the_nominal_value_and_inclusive(valu
 
 
 def test_parameter_limits_by_name_override_the_default_and_skip_the_edge_instant():
-    fit = fitted({"r_ohm": 27.31, "l_h": 3.3e-3, "t0_s": 1e-6}, {"r_ohm": 22.0, "l_h": 3.0e-3, "t0_s": 0.0},
+    # The edge instant t0 comes first: skipping it must not end the loop over what was fitted.
+    fit = fitted({"t0_s": 1e-6, "r_ohm": 27.31, "l_h": 3.36e-3}, {"t0_s": 0.0, "r_ohm": 22.0, "l_h": 3.0e-3},
                  nuisance=("t0_s",))
-    # R is 24.1 % off (fails "*": ±10 %), L is 10.0 % off and named with ±15 %: passes; t0 is no parameter.
+    # R is 24.1 % off (fails "*": ±10 %); L is 12 % off, so it passes only by its own ±15 %; t0 is no
+    # parameter (a nominal 0, which a check would have to refuse).
     verdict, notes = judge([], fit, Tolerances(parameter_pct={"*": 10.0, "l_h": 15.0}))
     by_name = {c.subject: c for c in verdict.checks}
     assert sorted(by_name) == ["l_h", "r_ohm"] and notes == []
@@ -136,12 +138,13 @@ def test_parameter_limits_by_name_override_the_default_and_skip_the_edge_instant
 
 
 def test_parameter_tolerances_that_cannot_be_applied_are_notes_not_checks():
-    fit = fitted({"r_ohm": 1.0}, {"r_ohm": 0.0}, held_fixed={"l_h": "no sensitivity"})
-    verdict, notes = judge([], fit, Tolerances(parameter_pct={"r_ohm": 5.0, "l_h": 5.0, "c_f": 5.0}))
-    assert verdict.status == "untested" and verdict.checks == []
+    # R's nominal 0 has no relative deviation; the loop goes on to C, which is checked.
+    fit = fitted({"r_ohm": 1.0, "c_f": 100e-9}, {"r_ohm": 0.0, "c_f": 100e-9}, held_fixed={"l_h": "no sensitivity"})
+    verdict, notes = judge([], fit, Tolerances(parameter_pct={"r_ohm": 5.0, "l_h": 5.0, "c_f": 5.0, "gain": 5.0}))
+    assert verdict.status == "pass" and [c.subject for c in verdict.checks] == ["c_f"]
     assert notes == ["tolerances.parameter_pct not checked for r_ohm: its nominal value is 0",
                      "tolerances.parameter_pct.l_h not checked: l_h was not fitted (no sensitivity)",
-                     "tolerances.parameter_pct.c_f not checked: c_f was not fitted"]
+                     "tolerances.parameter_pct.gain not checked: gain was not fitted"]
     _, without_fit = judge([], None, Tolerances(parameter_pct={"*": 5.0}))
     assert without_fit == ["tolerances.parameter_pct is set but nothing was fitted; it was not checked"]
     assert judge([], None, Tolerances())[1] == []  # no parameter tolerance: nothing to say

@@ -36,11 +36,12 @@ def test_the_baseline_needs_sixteen_samples_before_the_trigger():
 
 
 def test_without_a_baseline_the_mad_of_differences_estimates_sigma():
-    # Gaussian white noise on a slow ramp: the differences remove the ramp (a constant shift, which the
-    # median removes) and the estimate is σ within a few per cent for 20000 samples.
+    # Gaussian white noise on a steep ramp (0.05 a sample, more than the noise of a difference, 0.028):
+    # the differences turn the ramp into a constant shift, which subtracting their median removes, and the
+    # estimate is σ within a few per cent for 20000 samples.
     rng = np.random.default_rng(11)
     t = np.arange(20000) * 1e-6
-    y = 0.3 * t / t[-1] + rng.normal(0.0, 0.02, len(t))
+    y = 0.05 * np.arange(len(t)) + rng.normal(0.0, 0.02, len(t))
     assert noise_rms(t, y, -1.0) == pytest.approx(0.02, rel=0.03)
     assert noise_rms(np.zeros(1), np.ones(1), 1.0) == 0.0  # one sample: no difference, no estimate
 
@@ -74,7 +75,7 @@ def test_errors_nrmse_and_where_the_largest_error_is():
     # RMS error = √(mean of squared errors); NRMSE = RMS / (max − min) of the simulated trace (the module's
     # stated basis); the largest |error| and its time; a negative error counts by its size.
     t = np.arange(-100, 900) * 1e-6
-    sim = first_order(t, 1e-4, 0.0, 2.0)
+    sim = first_order(t, 1e-4, 0.0, 0.5)  # a range below 1: NRMSE divides by it, whatever its size
     meas = sim.copy()
     meas[300] -= 0.4
     meas[700] += 0.3
@@ -130,13 +131,29 @@ def test_step_parameters_of_both_traces_and_why_one_is_missing():
 def test_the_settling_band_and_code_step_are_passed_on():
     t = np.arange(-1000, 9000) * 1e-7
     sim = first_order(t, 5e-5)
+    # The samples sit on a 1/64 grid, but the record says its code step is half that (an average of two
+    # captures): the step the record gives is the one used.
     q = 1.0 / 64
     meas = np.round(sim / q) * q
-    wide = channel_result("v", "v", "V", 1.0, 0.0, t, meas, sim, "rising", 0.0, 10.0, code_step=q)
-    narrow = channel_result("v", "v", "V", 1.0, 0.0, t, meas, sim, "rising", 0.0, 2.0, code_step=q)
-    assert wide.measured.settling_band_pct == 10.0 and wide.measured.code_step == q
+    wide = channel_result("v", "v", "V", 1.0, 0.0, t, meas, sim, "rising", 0.0, 10.0, code_step=q / 2)
+    narrow = channel_result("v", "v", "V", 1.0, 0.0, t, meas, sim, "rising", 0.0, 2.0, code_step=q / 2)
+    assert wide.measured.settling_band_pct == 10.0 and wide.measured.code_step == q / 2
     # IEEE Std 181-2011 (from memory): settling duration runs from the 50 % reference level instant (τ·ln 2
     # for a first-order step) to entering the band for good: τ·ln 10 for ±10 %, τ·ln 50 for ±2 %.
     assert wide.simulated.settling_duration_s == pytest.approx(5e-5 * math.log(10 / 2), rel=0.01)
     assert narrow.simulated.settling_duration_s == pytest.approx(5e-5 * math.log(50 / 2), rel=0.01)
-    assert wide.measured.overshoot_uncertainty_pct == pytest.approx(100 * q / wide.measured.amplitude, rel=1e-6)
+    assert wide.measured.overshoot_uncertainty_pct == pytest.approx(100 * q / 2 / wide.measured.amplitude, rel=1e-6)
+    assert channel_result("v", "v", "V", 1.0, 0.0, t, meas, sim, "rising", 0.0, 2.0).measured.code_step == q
+
+
+def test_the_baseline_noise_keeps_noise_from_passing_for_ringing():
+    # A first-order step under white noise (σ = 10 mV, numpy RNG) has no peak and no ringing (it approaches
+    # its final level monotonically); the measured baseline's noise, handed to the step parameters, is what
+    # keeps noise crossings from being counted as lobes.
+    rng = np.random.default_rng(3)
+    t = np.arange(-2000, 18000) * 1e-7
+    sim = first_order(t, 5e-5)
+    ch = channel_result("v", "v", "V", 1.0, 0.0, t, sim + rng.normal(0.0, 0.01, len(t)), sim, "rising", 0.0, 2.0)
+    assert ch.noise_rms == pytest.approx(0.01, rel=0.1)
+    assert ch.measured.peak_time_s is None and ch.measured.damped_frequency_hz is None
+    assert ch.measured.ringing_lobes == 0

@@ -61,6 +61,7 @@ def test_foh_response_to_a_ramp_is_lsims_linear_interpolation():
     _, y_ref, x_ref = signal.lsim((model.A, model.B, model.C, model.D), u, t, interp=True)
     x, y = simulate(model, u, 2e-6, hold="foh")
     assert close(x, x_ref, 1e-7) and close(y, y_ref, 1e-7)
+    assert discretise(model, 2e-6, "foh").dt == 2e-6
     # the same ramp with a zero-order hold is lsim with interp=False
     _, y_zoh, _ = signal.lsim((model.A, model.B, model.C, model.D), u, t, interp=False)
     assert close(simulate(model, u, 2e-6, hold="zoh")[1], y_zoh, 1e-7)
@@ -84,9 +85,10 @@ def test_a_model_checks_its_shapes_and_values_and_keeps_its_own_copy():
         StateSpace(np.array([[np.nan]]), np.ones((1, 1)), np.ones((1, 1)), np.zeros((1, 1)), ("x",), ("u",), ("y",))
     with pytest.raises(ValueError, match="matrix D holds a value that is not finite"):
         StateSpace(a, np.ones((1, 1)), np.ones((1, 1)), np.array([[np.inf]]), ("x",), ("u",), ("y",))
-    model = StateSpace(a, np.ones((1, 1)), np.ones((1, 1)), np.zeros((1, 1)), ("x",), ("u",), ("y",))
-    a[0, 0] = -5.0  # the caller's array changes; the model does not
-    assert model.A[0, 0] == -1.0 and model.A.dtype == float and not model.A.flags.writeable
+    integers = np.array([[-1]])  # integer matrices become float ones
+    model = StateSpace(integers, np.ones((1, 1)), np.ones((1, 1)), np.zeros((1, 1)), ("x",), ("u",), ("y",))
+    integers[0, 0] = -5  # the caller's array changes; the model does not
+    assert model.A[0, 0] == -1.0 and model.A.dtype == np.float64 and not model.A.flags.writeable
 
 
 def test_outputs_by_name_and_unit():
@@ -160,6 +162,9 @@ def test_two_inputs_and_a_jump_on_a_sample_instant():
         disc = discretise(model, 1e-6, hold)
         assert close(propagate(disc, u, np.zeros(1), left), plain(disc, u, np.zeros(1), left)), hold
     assert propagate(discretise(model, 1e-6), u[:1], np.array([0.7])).tolist() == [[0.7]]  # one sample: the start
+    for hold in ("zoh", "foh"):  # two samples: one interval
+        disc = discretise(model, 1e-6, hold)
+        assert close(propagate(disc, u[99:101], np.array([0.7])), plain(disc, u[99:101], np.array([0.7]))), hold
 
 
 def test_sensitivity_states_are_the_derivative_by_the_time_constant():

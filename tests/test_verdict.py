@@ -87,7 +87,7 @@ def test_a_trace_that_never_settles_fails_and_says_within_which_band():
     verdict, _ = judge([channel(measured=step(settling_s=None))], None, limits)
     check = only(verdict.checks, "settling")
     why = " (never stays inside ±5 % within the record)"
-    assert (check.value, check.passed, check.limit) == (None, False, "≤ 300 µs" + why)
+    assert (check.subject, check.value, check.passed, check.limit) == ("v_c", None, False, "≤ 300 µs" + why)
     assert check.reason == f"v_c: settling time is undefined{why}; ≤ 300 µs required"
     assert verdict.status == "fail" and verdict.reasons == [check.reason]
 
@@ -148,6 +148,16 @@ def test_parameter_tolerances_that_cannot_be_applied_are_notes_not_checks():
     _, without_fit = judge([], None, Tolerances(parameter_pct={"*": 5.0}))
     assert without_fit == ["tolerances.parameter_pct is set but nothing was fitted; it was not checked"]
     assert judge([], None, Tolerances())[1] == []  # no parameter tolerance: nothing to say
+
+
+def test_a_unitless_parameter_and_a_nominal_value_as_it_was_set():
+    # ζ has no unit; a nominal value is shown as set, to six significant figures (our convention: a part of
+    # 1.234567 kΩ reads 1.23457 kΩ, not a four-figure reading), trailing zeros dropped.
+    fit = fitted({"zeta": 0.3, "r_ohm": 1234.567}, {"zeta": 0.25, "r_ohm": 1234.567})
+    verdict, _ = judge([], fit, Tolerances(parameter_pct={"*": 30.0}))
+    zeta, r = verdict.checks
+    assert zeta.reason == "ζ: fitted 0.3000 is 20.0 % from nominal 0.25 (within ±30 %)"
+    assert zeta.limit == "nominal 0.25 ±30 %" and r.limit == "nominal 1.23457 kΩ ±30 %"
 
 
 def test_a_parameter_without_a_limit_is_not_checked():

@@ -3,7 +3,8 @@ a second, independent connection (Python's sqlite3 on the same file, as ``acqd s
 would read it), and what survives a SIGKILL of the writing process.
 
 Sources: SQLite's documentation (sqlite.org/wal.html: WAL mode, and that a reader of a WAL database creates
-``-wal`` and ``-shm`` files unless it opens the file immutable; sqlite.org/pragma.html: ``journal_mode``
+``-wal`` and ``-shm`` files unless it opens the file immutable, and sqlite.org/uri.html: an ``immutable``
+connection assumes the file never changes, so it reads no write-ahead log; sqlite.org/pragma.html: ``journal_mode``
 answers ``wal``, ``synchronous`` NORMAL is 1; sqlite.org/lang_insert.html: ``INSERT OR IGNORE`` keeps the row
 already there on a primary-key conflict).
 """
@@ -14,6 +15,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
+import threading
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -163,8 +165,66 @@ def test_a_file_that_is_not_a_database_is_refused_in_one_line(tmp_path: Path):
     for opened in (lambda: Ledger(path), lambda: open_database(path), lambda: open_database(path, readonly=True)):
         with pytest.raises(ConfigError) as err:
             opened()
-        assert err.value.source == str(path) and "is not a usable SQLite database" in err.value.problem
+        assert err.value.source == str(path) and err.value.field == ""
+        assert err.value.problem.startswith("is not a usable SQLite database (")
+        assert err.value.problem.endswith("; move it away or give another --data-dir directory")  # what to do
         assert "\n" not in str(err.value)
+
+
+def test_a_database_whose_tables_do_not_fit_is_refused_in_one_line(tmp_path: Path):
+    # An SQLite file with an acqd_slots table of another shape: CREATE TABLE IF NOT EXISTS leaves it, and
+    # the index on (campaign, state) cannot be made.
+    path = tmp_path / "campaigns.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE acqd_slots (something_else TEXT)")
+    conn.commit()
+    conn.close()
+    with pytest.raises(ConfigError) as err:
+        Ledger(path)
+    assert (err.value.source, err.value.field) == (str(path), "")
+    assert err.value.problem.startswith("is not a usable campaign database (") and "\n" not in str(err.value)
+
+
+def test_a_reader_of_a_running_daemons_database_sees_its_commits(ledger):
+    # Not settled (a writer is running, its last commits are in the -wal file): the read-only connection
+    # must read the log, so it is not immutable.
+    ledger.begin_slot("night", 1, T0, T0)
+    conn = open_database(ledger.path, readonly=True)
+    try:
+        assert conn.execute("SELECT slot, state FROM acqd_slots").fetchall() == [(1, "running")]
+        ledger.end_slot("night", 1, "done", T0, 0)
+        assert conn.execute("SELECT state FROM acqd_slots").fetchall() == [("done",)]  # and later ones
+    finally:
+        conn.close()
+
+
+def in_thread(job) -> None:
+    """Run ``job`` in another thread and re-raise what it raised there."""
+    failures: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            job()
+        except BaseException as exc:  # noqa: BLE001 - handed to the test's thread
+            failures.append(exc)
+
+    thread = threading.Thread(target=run)
+    thread.start()
+    thread.join(timeout=30)
+    if failures:
+        raise failures[0]
+
+
+def test_the_ledger_and_a_reader_serve_other_threads(ledger):
+    # Each campaign's worker thread writes through the one ledger, and the daemon's live view reads from
+    # its refresh thread: sqlite3 connections refuse other threads unless made with check_same_thread=False.
+    in_thread(lambda: ledger.begin_slot("night", 1, T0, T0))
+    assert [s.slot for s in ledger.running_slots("night")] == [1]
+    conn = open_database(ledger.path, readonly=True)
+    try:
+        in_thread(lambda: conn.execute("SELECT * FROM acqd_slots").fetchall())
+    finally:
+        conn.close()
 
 
 def test_a_read_only_connection_cannot_write_and_a_settled_one_leaves_no_wal_files(tmp_path: Path):

@@ -128,6 +128,7 @@ def test_a_step_from_rest_is_the_first_order_closed_form(hold):
     ("two long runs", np.r_[np.zeros(200), np.ones(300)]),
     ("a ramp between runs", np.r_[np.zeros(300), np.linspace(0, 1, 7), np.ones(500), np.full(200, 0.25), [0.5]]),
     ("runs shorter than 64", np.repeat([0.0, 1.0, -0.5, 0.3, 0.9, 0.1], 40)),
+    ("a short pulse back to the first level", np.r_[np.zeros(100), np.ones(10), np.zeros(300)]),
     ("more than 16 runs", np.repeat(np.arange(30) % 3 - 1.0, 70)),
     ("sampled noise", np.random.default_rng(4).normal(size=900)),
 ])

@@ -55,7 +55,8 @@ MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     ),
     # the two 100-fit coverage tests of whole records take minutes per surviving mutant; the 1000-trial
     # binomial coverage test of a small model stays in
-    "fit": (("acqd/compare/fit.py",), ("tests/test_compare_fit.py", "-k", "not 90_of_100 and not band_limited")),
+    "fit": (("acqd/compare/fit.py",), ("tests/test_compare_fit.py", "tests/test_fit_rank.py", "-k",
+                                       "not 90_of_100 and not band_limited")),
     "ieee181": (("acqd/compare/ieee181.py",), ("tests/test_compare_ieee181.py", "tests/test_compare_levels.py")),
     "metrics": (("acqd/compare/metrics.py",), ("tests/test_compare_fit.py", "tests/test_compare_ieee181.py",
                                                "tests/test_metrics.py")),

@@ -1,0 +1,95 @@
+"""Which parameters a fit holds fixed, from Jacobians built by hand whose rank and null space are known.
+
+Reference: linear algebra. A Jacobian J (m × p) has full column rank when no combination of its columns
+vanishes; a vector v with J·v = 0 is a direction along which the residuals do not change, and its entries
+say how much each parameter takes part (the right singular vectors of the zero singular values span that
+null space; numpy.linalg.svd is used only by the code under test, the null vectors below are written out).
+The rule under test, as acqd/compare/fit.py states it: drop parameters until J has full column rank, the
+first of ``hold_order`` that takes part in a null direction (a share above 0.1) first, otherwise the one
+that takes the largest part, and say for each held one along which direction nothing changes.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from acqd.compare.fit import _Coordinates, _hold_unidentifiable
+
+NOMINAL = {"r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9}
+
+
+def coords(*names: str, log: bool = True) -> _Coordinates:
+    return _Coordinates(names, tuple(log for _ in names), tuple(1.0 for _ in names))
+
+
+def columns(*cols: np.ndarray) -> np.ndarray:
+    return np.column_stack(cols)
+
+
+A = np.sin(np.linspace(0, 7, 200))
+B = np.exp(-np.linspace(0, 3, 200))
+C = np.linspace(-1, 1, 200) ** 2
+
+
+def test_full_rank_holds_nothing():
+    keep, held = _hold_unidentifiable(columns(A, B, C), coords("r_ohm", "l_h", "c_f"), (), NOMINAL)
+    assert keep == ["r_ohm", "l_h", "c_f"] and held == {}
+
+
+def test_three_parameters_of_rank_two_hold_one_and_name_the_direction():
+    # J = [a, b, a + b]: J·(1, 1, −1) = 0, so the null direction is (1, 1, −1)/√3 ≈ (0.58, 0.58, −0.58) up
+    # to sign; every parameter takes an equal part, and the first of hold_order that takes part is held.
+    jac = columns(A, B, A + B)
+    keep, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", "c_f"), ("c_f", "r_ohm"), NOMINAL)
+    assert keep == ["r_ohm", "l_h"] and list(held) == ["c_f"]
+    reason = held["c_f"]
+    assert reason.startswith("not identifiable from the mapped channels: the residuals do not change along ")
+    direction = reason.split(" along ")[1].split(";")[0]
+    assert direction in ("+0.58·Δln R +0.58·Δln L -0.58·Δln C", "-0.58·Δln R -0.58·Δln L +0.58·Δln C")
+    assert reason.endswith("; held at 100 nF")  # the nominal value, as it was set
+
+
+def test_without_a_preference_the_parameter_taking_the_largest_part_is_held():
+    # J = [a, b, 2b]: null direction (0, 2, −1)/√5 ≈ (0, 0.89, −0.45): R takes no part, L the largest. A
+    # preference for R (no part in it) does not apply.
+    jac = columns(A, B, 2 * B)
+    keep, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", "c_f"), ("r_ohm",), NOMINAL)
+    assert keep == ["r_ohm", "c_f"] and list(held) == ["l_h"]
+    direction = held["l_h"].split(" along ")[1].split(";")[0]
+    assert direction in ("+0.89·Δln L -0.45·Δln C", "-0.89·Δln L +0.45·Δln C")  # |0| < 0.01: R not named
+    assert held["l_h"].endswith("; held at 3.3 mH")
+
+
+def test_a_small_share_does_not_make_a_parameter_a_candidate():
+    # J = [a, b, 20a]: null direction (20, 0, −1)/√401 ≈ (0.999, 0, −0.050): C takes part with 0.05, below the
+    # 0.1 a candidate needs, so the preference for C gives way to R, which carries the direction.
+    jac = columns(A, B, 20 * A)
+    keep, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", "c_f"), ("c_f",), NOMINAL)
+    assert list(held) == ["r_ohm"] and keep == ["l_h", "c_f"]
+    direction = held["r_ohm"].split(" along ")[1].split(";")[0]
+    assert direction in ("+1.00·Δln R -0.05·Δln C", "-1.00·Δln R +0.05·Δln C")
+
+
+def test_a_column_below_the_rank_tolerance_counts_as_zero():
+    # A singular value of 1e-7 of the largest is below the stated tolerance (1e-6): that parameter is held;
+    # at 1e-5 it is kept.
+    for share, held_names in ((1e-7, ["c_f"]), (1e-5, [])):
+        jac = columns(A, B, share * np.linalg.norm(A) * C / np.linalg.norm(C))
+        jac[:, 1] *= np.linalg.norm(A) / np.linalg.norm(B)
+        _, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", "c_f"), (), NOMINAL)
+        assert list(held) == held_names, share
+
+
+def test_a_jacobian_of_zeros_holds_every_parameter():
+    # No residual changes along any direction: every parameter is held, the preferred ones first.
+    keep, held = _hold_unidentifiable(np.zeros((200, 3)), coords("r_ohm", "l_h", "c_f"), ("l_h",), NOMINAL)
+    assert keep == [] and list(held)[0] == "l_h" and sorted(held) == ["c_f", "l_h", "r_ohm"]
+    assert all(reason.startswith("not identifiable") for reason in held.values())
+
+
+def test_a_linear_coordinate_is_named_without_ln():
+    jac = columns(A, A)
+    _, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", log=False), ("l_h",), NOMINAL)
+    direction = held["l_h"].split(" along ")[1].split(";")[0]
+    assert direction in ("+0.71·ΔR -0.71·ΔL", "-0.71·ΔR +0.71·ΔL")  # (1, −1)/√2
+    assert held["l_h"].endswith("; held at 3.3 mH")

@@ -16,9 +16,19 @@ import statistics
 import numpy as np
 import pytest
 
+from acqd.compare import metrics
+from acqd.compare.memo import Memo
 from acqd.compare.metrics import MIN_BASELINE_SAMPLES, channel_result, noise_rms, quantisation_rms, record_code_step
 from acqd.record import Channel, Record, Stimulus, TimeBase
 from test_compare_ieee181 import first_order
+
+
+@pytest.fixture(autouse=True)
+def fresh_memory(monkeypatch):
+    """Each test computes the simulated traces' step parameters itself: the comparator remembers them by
+    trace, edge and band, and an entry left by an earlier test (or by an earlier run in the same process)
+    would answer for the computation under test."""
+    monkeypatch.setattr(metrics, "_SIMULATED_STEPS", Memo())
 
 
 def test_the_baseline_needs_sixteen_samples_before_the_trigger():
@@ -123,6 +133,10 @@ def test_step_parameters_of_both_traces_and_why_one_is_missing():
     no_edge = channel_result("v", "v", "V", 1.0, 0.0, t, np.zeros(len(t)), sim, "rising", 0.0, 2.0)
     assert no_edge.measured is None and no_edge.simulated is not None
     assert no_edge.step_note.startswith("measured trace: ")
+    falling = first_order(t, tau, 1.0, 0.0)  # the same edge downwards: both traces judged as falling
+    down = channel_result("v", "v", "V", 1.0, 0.0, t, falling.copy(), falling, "falling", 0.0, 2.0)
+    assert (down.measured.polarity, down.simulated.polarity) == ("falling", "falling")
+    assert down.measured.amplitude == pytest.approx(-1.0, abs=1e-3)
     flat_sim = channel_result("v", "v", "V", 1.0, 0.0, t, sim, np.zeros(len(t)), "rising", 0.0, 2.0)
     assert (flat_sim.measured, flat_sim.simulated) == (None, None)
     assert flat_sim.step_note.startswith("simulated trace: ")

@@ -12,8 +12,9 @@ that takes the largest part, and say for each held one along which direction not
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
-from acqd.compare.fit import _Coordinates, _hold_unidentifiable
+from acqd.compare.fit import Free, FitError, _Coordinates, _hold_unidentifiable, fit_parameters
 
 NOMINAL = {"r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9}
 
@@ -93,3 +94,58 @@ def test_a_linear_coordinate_is_named_without_ln():
     direction = held["l_h"].split(" along ")[1].split(";")[0]
     assert direction in ("+0.71·ΔR -0.71·ΔL", "-0.71·ΔR +0.71·ΔL")  # (1, −1)/√2
     assert held["l_h"].endswith("; held at 3.3 mH")
+
+
+def linear_fit(basis: np.ndarray, truth: np.ndarray, names: tuple[str, ...], **kwargs):
+    """fit_parameters on y = basis·θ (a linear model, linear coordinates of scale 1, every start 1): its
+    Jacobian in the fit's coordinates is −basis, whose singular values numpy.linalg.svd gives independently."""
+    y = basis @ truth
+    free = {n: Free(1.0, False) for n in names}
+    return fit_parameters(lambda v: y - basis @ np.array([v.get(n, 1.0) for n in names]),  # held: at start
+                          lambda v: -basis[:, [names.index(n) for n in v]], free, **kwargs)
+
+
+def test_rank_and_condition_number_are_those_of_the_starting_jacobian():
+    # Full rank: rank 3 and the 2-norm condition number σ_max/σ_min (numpy.linalg.cond); the fit recovers a
+    # linear model's parameters exactly.
+    basis = columns(A, B, C)
+    fit = linear_fit(basis, np.array([2.0, -1.0, 0.5]), ("a", "b", "c"), hold_order=(), weighting="none")
+    s = np.linalg.svd(basis, compute_uv=False)
+    assert fit.rank == 3 and fit.held_fixed == {}
+    assert fit.condition_number == pytest.approx(np.linalg.cond(basis), rel=1e-12)
+    assert fit.relative_singular_values == pytest.approx(list(s / s[0]), rel=1e-12)
+    assert np.allclose([fit.values[n] for n in "abc"], [2.0, -1.0, 0.5], rtol=1e-9)
+
+
+def test_three_parameters_of_rank_two_are_reported_as_such_and_fitted_without_one():
+    # [a, b, a + b]: σ₃ is zero to rounding, so the rank is 2 and the condition number at least 10^12; c is
+    # held at its start (1), and a, b take up the rest: y = 2a − b + 0.5(a + b) = 2.5a − 0.5b with c = 1.
+    basis = columns(A, B, A + B)
+    fit = linear_fit(basis, np.array([2.0, -1.0, 0.5]), ("a", "b", "c"), hold_order=("c",), weighting="none")
+    assert fit.rank == 2 and fit.condition_number > 1e12 and fit.fitted == ("a", "b") and list(fit.held_fixed) == ["c"]
+    assert np.allclose([fit.values["a"], fit.values["b"]], [2.5 - 1.0, -0.5 - 1.0], rtol=1e-9)
+
+
+def test_a_model_that_no_parameter_moves_cannot_be_fitted():
+    basis = np.zeros((200, 2))
+    with pytest.raises(FitError, match="no free parameter is identifiable from the mapped channels"):
+        linear_fit(basis, np.zeros(2), ("a", "b"), hold_order=(), weighting="none")
+
+
+def test_only_fitted_nuisance_quantities_are_named_nuisance():
+    # "t0" stands for the edge instant: a nuisance when fitted, not when held; names not fitted at all are left out.
+    basis = columns(A, B, 2 * B)
+    fit = linear_fit(basis, np.array([1.0, 1.0, 1.0]), ("a", "t0", "b"), hold_order=("b",), weighting="none",
+                     nuisance=("t0", "gone"))
+    assert fit.nuisance == ("t0",) and fit.fitted == ("a", "t0")
+    held_t0 = linear_fit(basis, np.array([1.0, 1.0, 1.0]), ("a", "t0", "b"), hold_order=("t0",), weighting="none",
+                         nuisance=("t0",))
+    assert held_t0.nuisance == () and held_t0.fitted == ("a", "b")
+
+
+def test_values_that_are_not_finite_stop_the_fit_with_a_reason():
+    free = {"a": Free(1.0, False)}
+    with pytest.raises(FitError, match=r"fit: the model gave values that are not finite at \{'a': 1.0\}"):
+        fit_parameters(lambda v: np.full(10, np.nan), lambda v: np.ones((10, 1)), free, (), "none")
+    with pytest.raises(FitError, match=r"fit: the model's sensitivities are not finite at \{'a': 1.0\}"):
+        fit_parameters(lambda v: np.ones(10), lambda v: np.full((10, 1), np.inf), free, (), "none")

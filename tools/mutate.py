@@ -57,7 +57,8 @@ MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     # binomial coverage test of a small model stays in
     "fit": (("acqd/compare/fit.py",), ("tests/test_compare_fit.py", "tests/test_fit_rank.py", "-k",
                                        "not 90_of_100 and not band_limited")),
-    "ieee181": (("acqd/compare/ieee181.py",), ("tests/test_compare_ieee181.py", "tests/test_compare_levels.py")),
+    "ieee181": (("acqd/compare/ieee181.py",), ("tests/test_compare_ieee181.py", "tests/test_compare_levels.py",
+                                               "tests/test_ieee181_rules.py")),
     "metrics": (("acqd/compare/metrics.py",), ("tests/test_compare_fit.py", "tests/test_compare_ieee181.py",
                                                "tests/test_metrics.py")),
     "verdict": (("acqd/compare/verdict.py",), ("tests/test_compare_core.py", "tests/test_verdict.py")),

@@ -14,9 +14,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from acqd.compare.fit import Free, FitError, _Coordinates, _hold_unidentifiable, fit_parameters
+from acqd.compare.fit import (Free, FitError, _Coordinates, _hold_unidentifiable, _usable, bartlett_lag, fit_parameters,
+                              noise_covariance)
 
-NOMINAL = {"r_ohm": 22.0, "l_h": 3.3e-3, "c_f": 100e-9}
+NOMINAL = {"r_ohm": 22.0, "l_h": 3.123456e-3, "c_f": 100e-9}  # L to 7 figures: shown to 6
 
 
 def coords(*names: str, log: bool = True) -> _Coordinates:
@@ -58,7 +59,7 @@ def test_without_a_preference_the_parameter_taking_the_largest_part_is_held():
     assert keep == ["r_ohm", "c_f"] and list(held) == ["l_h"]
     direction = held["l_h"].split(" along ")[1].split(";")[0]
     assert direction in ("+0.89·Δln L -0.45·Δln C", "-0.89·Δln L +0.45·Δln C")  # |0| < 0.01: R not named
-    assert held["l_h"].endswith("; held at 3.3 mH")
+    assert held["l_h"].endswith("; held at 3.12346 mH")  # as set, to six figures (our convention)
 
 
 def test_a_small_share_does_not_make_a_parameter_a_candidate():
@@ -93,7 +94,7 @@ def test_a_linear_coordinate_is_named_without_ln():
     _, held = _hold_unidentifiable(jac, coords("r_ohm", "l_h", log=False), ("l_h",), NOMINAL)
     direction = held["l_h"].split(" along ")[1].split(";")[0]
     assert direction in ("+0.71·ΔR -0.71·ΔL", "-0.71·ΔR +0.71·ΔL")  # (1, −1)/√2
-    assert held["l_h"].endswith("; held at 3.3 mH")
+    assert held["l_h"].endswith("; held at 3.12346 mH")
 
 
 def linear_fit(basis: np.ndarray, truth: np.ndarray, names: tuple[str, ...], **kwargs):
@@ -149,3 +150,38 @@ def test_values_that_are_not_finite_stop_the_fit_with_a_reason():
         fit_parameters(lambda v: np.full(10, np.nan), lambda v: np.ones((10, 1)), free, (), "none")
     with pytest.raises(FitError, match=r"fit: the model's sensitivities are not finite at \{'a': 1.0\}"):
         fit_parameters(lambda v: np.ones(10), lambda v: np.full((10, 1), np.inf), free, (), "none")
+
+
+def test_a_small_jacobian_of_full_rank_holds_nothing():
+    # Rank is relative to the largest singular value: a Jacobian a thousandth the size is as identifiable.
+    basis = 1e-3 * columns(A, B, C)
+    fit = linear_fit(basis, np.array([2.0, -1.0, 0.5]), ("a", "b", "c"), hold_order=(), weighting="none")
+    assert fit.rank == 3 and fit.held_fixed == {}
+    assert fit.condition_number == pytest.approx(np.linalg.cond(basis), rel=1e-12)
+
+
+def test_a_column_of_zeros_is_held_and_makes_the_condition_number_infinite():
+    # A parameter the residuals do not depend on at all: a singular value of exactly 0, so the condition
+    # number of the starting Jacobian is infinite and its rank 2 of 3.
+    basis = columns(A, B, np.zeros(200))
+    fit = linear_fit(basis, np.array([2.0, -1.0, 0.0]), ("a", "b", "c"), hold_order=(), weighting="none")
+    assert fit.relative_singular_values[-1] == 0.0 and fit.relative_singular_values[-2] > 0
+    assert fit.condition_number == float("inf") and fit.rank == 2 and list(fit.held_fixed) == ["c"]
+
+
+def test_a_warm_start_uses_only_values_its_coordinates_can_take():
+    c = _Coordinates(("a", "b", "c", "d"), (False, True, True, False), (1.0, 1.0, 1.0, 1.0))
+    # a linear coordinate takes any finite value; a log coordinate only a positive one (0.5 as well as 5)
+    assert _usable({"a": -2.0, "b": 0.5, "c": -1.0, "d": float("nan"), "e": 1.0}, c) == {"a": -2.0, "b": 0.5}
+
+
+def test_the_pre_lag_of_a_two_sample_channel_reaches_lag_one():
+    # Newey & West (1994), T = 2: n = ⌊4·(2/100)^(2/9)⌋ = 1 (capped at T − 1 = 1); with γ = (1, 0.9),
+    # ŝ⁰ = 1 + 2·0.9 = 2.8, ŝ¹ = 2·0.9 = 1.8, L = ⌊1.1447·(1.8/2.8)^(2/3)·2^(1/3)⌋ = ⌊1.07⌋ = 1.
+    assert bartlett_lag(np.array([1.0, 0.9])) == 1
+    assert bartlett_lag(np.array([1.0])) == 0  # one sample: no lag to sum over
+
+
+def test_residuals_that_do_not_split_into_the_channels_are_refused():
+    with pytest.raises(FitError, match="fit: 10 residuals do not split into 3 channels of equal length"):
+        noise_covariance(np.ones((10, 1)), np.ones(10), 3)

@@ -34,6 +34,7 @@ import pytest
 
 from acqd.store import RecordStore, open_records
 from acqd.store.faults import ENV as KILL_ENV
+from acqd.store.schema import BLOB_PARTS
 
 try:
     from test_store import crc_of, make_record
@@ -288,6 +289,70 @@ def test_sigkill_inside_hdf5_writes(tmp_path: Path) -> None:
         check_plain_files(store)
 
     in_parallel(kill_at, sorted(rng.sample(range(1, n_writes + 1), 8)))
+
+
+def pwrites_of_one_append(trace: str, record: int) -> range:
+    """The pwrite64 numbers (1-based, as strace's ``when=`` counts them) inside the append of ``record``.
+
+    The writer's stdout marks the bounds: it prints "ready", then one acknowledgement line per record,
+    each ending in its own write(2) of "\\n" (print(..., flush=True)), and strace logs those writes in order
+    with the pwrite64 calls."""
+    pwrites, ends = 0, []
+    for line in trace.splitlines():
+        if "pwrite64(" in line:
+            pwrites += 1
+        elif 'write(1, "\\n", 1)' in line:
+            ends.append(pwrites)
+    first, last = ends[record], ends[record + 1]  # ends[0] is after "ready", ends[k + 1] after record k
+    return range(first + 1, last + 1)
+
+
+@pytest.mark.skipif(STRACE is None, reason="strace not installed")
+def test_no_kill_inside_an_append_leaves_a_row_whose_data_is_missing(tmp_path: Path) -> None:
+    """The store's write order (acqd/store/segment.py): a record's blobs and sample chunks reach the file,
+    and HDF5's flush writes their metadata, before its index row is written. So wherever a kill lands in
+    an append, the dead writer's file holds no index row ahead of its data: read with h5py (the HDF5
+    project's binding, not acqd's reader), the index dataset is never longer than the samples dataset and
+    no row points past the end of the blobs. And a reader, before any recovery, lists only records whose
+    data is all there: each reads back with its samples' CRC-32 matching (checked by ``read()``) and
+    bit-identical to the regenerated record, and the acknowledged ones are all listed. Killed at every
+    pwrite64 of the third append (strace(1) ``inject=pwrite64:signal=SIGKILL:when=N``).
+
+    The first check is the one that finds an index row written before the data flush: acqd's reader
+    hides such a row (it reads no further than the shorter of index and samples), so only the file itself
+    shows that the order was broken."""
+    trace = tmp_path / "trace.txt"
+    dry = Writer(tmp_path / "dry.h5", seed_base=0, count=3, rotate=100,
+                 prefix=[STRACE, "-f", "-qq", "-e", "trace=pwrite64,write", "-o", str(trace)])
+    dry.finish()
+    if dry.proc.returncode != 0 and "ptrace" in dry.stderr:
+        pytest.skip(f"strace cannot trace here: {dry.stderr.strip().splitlines()[-1]}")
+    assert dry.proc.returncode == 0, dry.stderr
+    writes = pwrites_of_one_append(trace.read_text(), 2)
+    assert len(writes) >= 4  # sample chunks, their metadata, the index chunk, its metadata
+
+    def kill_at(when: int) -> None:
+        store = tmp_path / f"at{when}" / "s.h5"
+        store.parent.mkdir()
+        inject = ["-e", "trace=pwrite64", "-e", f"inject=pwrite64:signal=SIGKILL:when={when}"]
+        writer = Writer(store, seed_base=0, count=3, rotate=100, prefix=[STRACE, "-f", "-qq", "-o", os.devnull, *inject])
+        acked = writer.finish()
+        assert writer.proc.returncode == -signal.SIGKILL and sorted(acked) == [0, 1], (when, writer.stderr)
+        with h5py.File(store.parent / "s.000000.h5.part", "r", swmr=True) as f:
+            rows, n_positions, n_blob_bytes = f["index"][:], f["samples"].shape[0], f["blobs"].shape[0]
+        assert len(rows) <= n_positions, f"pwrite64 #{when}: {len(rows)} index rows, {n_positions} sample positions"
+        for part in BLOB_PARTS:
+            ends = rows[f"{part}_offset"].astype(np.int64) + rows[f"{part}_length"]
+            assert (ends <= n_blob_bytes).all(), f"pwrite64 #{when}: a row's {part} ends past the {n_blob_bytes} blob bytes"
+        with open_records(store) as reader:  # the live .part as the writer left it, no recovery
+            listed = [summary.index for summary in reader.index()]
+            assert listed in ([0, 1], [0, 1, 2]), (when, listed)
+            for index in listed:
+                record = reader.read(index)  # raises if its samples do not match the row's CRC-32
+                assert record.checksum() == crc_of(make_record(index)), (when, index)  # zlib over the regenerated samples
+        check_store(store, acked, recover=True)
+
+    in_parallel(kill_at, list(writes))
 
 
 def test_swmr_reader_sees_records_while_the_writer_appends(tmp_path: Path) -> None:

@@ -55,12 +55,15 @@ MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     ),
     # the two 100-fit coverage tests of whole records take minutes per surviving mutant; the 1000-trial
     # binomial coverage test of a small model stays in
-    "fit": (("acqd/compare/fit.py",), ("tests/test_compare_fit.py", "-k", "not 90_of_100 and not band_limited")),
-    "ieee181": (("acqd/compare/ieee181.py",), ("tests/test_compare_ieee181.py", "tests/test_compare_levels.py")),
-    "metrics": (("acqd/compare/metrics.py",), ("tests/test_compare_fit.py", "tests/test_compare_ieee181.py")),
-    "verdict": (("acqd/compare/verdict.py",), ("tests/test_compare_core.py",)),
-    "statespace": (("acqd/models/statespace.py",), ("tests/test_models.py",)),
-    "ledger": (("acqd/campaign/ledger.py",), ("tests/test_campaign_spec.py",)),
+    "fit": (("acqd/compare/fit.py",), ("tests/test_compare_fit.py", "tests/test_fit_rank.py", "-k",
+                                       "not 90_of_100 and not band_limited")),
+    "ieee181": (("acqd/compare/ieee181.py",), ("tests/test_compare_ieee181.py", "tests/test_compare_levels.py",
+                                               "tests/test_ieee181_rules.py")),
+    "metrics": (("acqd/compare/metrics.py",), ("tests/test_compare_fit.py", "tests/test_compare_ieee181.py",
+                                               "tests/test_metrics.py")),
+    "verdict": (("acqd/compare/verdict.py",), ("tests/test_compare_core.py", "tests/test_verdict.py")),
+    "statespace": (("acqd/models/statespace.py",), ("tests/test_models.py", "tests/test_statespace.py")),
+    "ledger": (("acqd/campaign/ledger.py",), ("tests/test_campaign_spec.py", "tests/test_ledger.py")),
 }
 
 STATUSES = ("killed", "timeout", "survived", "no tests", "suspicious", "skipped")

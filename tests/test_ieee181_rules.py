@@ -1,0 +1,116 @@
+"""The branches of acqd.compare.ieee181 that a well-behaved step does not reach, each against a closed form
+or a stated rule: how the final state level is found (a settled tail, an exponential approach, a damped
+sinusoid), a falling edge mirrored back, a record that ends outside the settling band, the code step read
+from the samples, and every refusal.
+
+Closed forms: a first-order step v = A·(1 − e^{−t/τ}) and the underdamped second-order step
+1 − e^{−ζω_n t}(cos ω_d t + (ζω_n/ω_d) sin ω_d t) with peak 1 + e^{−ζπ/√(1−ζ²)} at t_p = π/ω_d (Nise,
+Control Systems Engineering §4.6). Reference levels at 10, 50 and 90 % of the amplitude, crossings
+interpolated linearly between samples (IEEE Std 181-2011, from memory).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from acqd.compare.ieee181 import StepError, code_step_of, histogram_levels, step_parameters
+from test_compare_ieee181 import first_order, second_order_unit
+
+WN = 2 * np.pi * 1e3
+
+
+def test_a_record_that_ends_settled_takes_its_tail_mean():
+    t = np.arange(-2000, 20000) * 1e-6  # 20 ms of a τ = 1 ms step: settled to e^{−20}
+    p = step_parameters(t, first_order(t, 1e-3, 0.0, 2.0))
+    assert p.final_level_method == "mean of the settled tail (IEEE 181-2011 histogram-mean variant)"
+    assert p.state_after == pytest.approx(2.0, abs=1e-6) and p.amplitude == pytest.approx(2.0, abs=1e-6)
+
+
+def test_a_record_that_ends_before_settling_takes_the_level_it_heads_for():
+    # Cut at 4τ the trace is at 98.2 % of its final value and still rising: the fitted exponential gives the
+    # final value, where the tail's mean or the histogram would give less.
+    t = np.arange(-500, 4000) * 1e-6
+    p = step_parameters(t, first_order(t, 1e-3, 0.0, 2.0))
+    assert p.final_level_method == "level of a fitted exponential approach (the record ends before it settles)"
+    assert p.state_after == pytest.approx(2.0, rel=1e-4)
+    assert p.t50_s == pytest.approx(1e-3 * math.log(2), rel=2e-3)  # the 50 % of the true amplitude
+
+
+def test_a_record_that_ends_ringing_takes_the_fitted_sinusoids_level():
+    # Cut at 2.3 ms the envelope e^{−ζω_n t} is still 48 %, and the last quarter after the 50 % instant
+    # (about half a period) shows a trend, so the level comes from the damped sinusoid fitted to the lobes.
+    zeta = 0.05
+    t = np.arange(-400, 2300) * 1e-6
+    p = step_parameters(t, 3.0 * second_order_unit(t, zeta, WN))
+    assert p.final_level_method == "level of the fitted damped sinusoid (the record ends still ringing)"
+    assert p.state_after == pytest.approx(3.0, rel=1e-4)
+    wd = WN * math.sqrt(1 - zeta**2)
+    assert p.damped_frequency_hz == pytest.approx(wd / (2 * math.pi), rel=1e-3)
+    assert p.peak_time_s == pytest.approx(math.pi / wd, rel=1e-3)
+    assert p.overshoot_pct == pytest.approx(100 * math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2)), abs=0.05)
+
+
+def test_a_falling_ringing_edge_is_mirrored_back():
+    # 1 V → −1 V through a ζ = 0.2 section: the peak is the minimum, −1 − 2·e^{−ζπ/√(1−ζ²)}, and the
+    # amplitude −2 V; overshoot and the peak time are those of the rising edge.
+    zeta = 0.2
+    t = np.arange(-4000, 60000) * 0.5e-6
+    y = 1.0 - 2.0 * second_order_unit(t, zeta, WN)
+    p = step_parameters(t, y, "falling")
+    k = math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2))
+    assert (p.polarity, p.state_before, p.state_after) == ("falling", pytest.approx(1.0, abs=1e-4),
+                                                           pytest.approx(-1.0, abs=1e-4))
+    assert p.amplitude == pytest.approx(-2.0, abs=1e-4) and p.peak_value == pytest.approx(-1.0 - 2.0 * k, abs=1e-3)
+    assert p.overshoot_pct == pytest.approx(100 * k, abs=0.02)
+    assert p.peak_time_s == pytest.approx(math.pi / (WN * math.sqrt(1 - zeta**2)), rel=1e-4)
+    assert p.t10_s < p.t50_s < p.t90_s  # the 10 % instant is 10 % of the way down
+
+
+def test_settling_is_undefined_when_the_record_ends_outside_the_band():
+    # ζ = 0.05 cut at 8 ms still rings by ±8 %: it never stays inside ±2 %, but it does inside ±10 %...
+    zeta = 0.05
+    t = np.arange(-400, 8000) * 1e-6
+    y = second_order_unit(t, zeta, WN)
+    assert step_parameters(t, y, band_pct=2.0).settling_duration_s is None
+    # ... whose last exit is where the envelope e^{−ζω_n t} falls to 10 %, give or take half a period
+    inside = step_parameters(t, y, band_pct=10.0)
+    envelope_s = math.log(10) / (zeta * WN)
+    assert inside.settling_band_pct == 10.0
+    assert abs(inside.t50_s + inside.settling_duration_s - envelope_s) < 0.5 / 1e3
+
+
+def test_the_code_step_is_read_from_the_samples_or_taken_as_given():
+    q = 1 / 128
+    t = np.arange(-1000, 9000) * 1e-6
+    y = np.round(first_order(t, 1e-3) / q) * q
+    assert code_step_of(y) == q
+    assert code_step_of(np.repeat(np.arange(7) * q, 10)) == 0.0  # seven levels: too few to tell
+    assert code_step_of(np.repeat(np.arange(8) * q, 10)) == q
+    p = step_parameters(t, y)
+    assert p.code_step == q and p.overshoot_uncertainty_pct == pytest.approx(100 * q / p.amplitude, rel=1e-9)
+    given = step_parameters(t, y, code_step=q / 4)  # an average of four captures moves in quarter codes
+    assert given.code_step == q / 4 and given.overshoot_uncertainty_pct == pytest.approx(25 * q / given.amplitude)
+
+
+def test_histogram_levels_split_at_mid_range_and_take_each_halfs_mode():
+    # 70 % of the samples at 0, 30 % at 5, a few in between: the modes of the two halves are 0 and 5
+    # whatever the bin count (odd counts are made even so that mid-range is a bin edge).
+    y = np.r_[np.zeros(700), np.linspace(0, 5, 9)[1:-1], np.full(300, 5.0)]
+    for bins in (10, 11, 100):
+        assert histogram_levels(y, bins) == (0.0, 5.0)
+    with pytest.raises(StepError, match="the waveform is flat, so it has no transition"):
+        histogram_levels(np.full(100, 2.5))
+
+
+@pytest.mark.parametrize("y, polarity, reason", [
+    (np.r_[np.zeros(500), np.ones(500)], "falling", "no falling crossing of the 50 % reference level"),
+    (np.r_[np.zeros(500), np.linspace(0, 1, 400), np.zeros(100)], "rising",
+     "does not end beyond the level it started from"),
+])
+def test_every_refusal_says_what_is_missing(y, polarity, reason):
+    t = np.arange(len(y)) * 1e-6
+    with pytest.raises(StepError, match=reason):
+        step_parameters(t, y, polarity)

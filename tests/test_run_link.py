@@ -148,7 +148,11 @@ def _cut_after_output_on(bench, proxy: CuttableProxy, outage_s: float) -> dict[s
 def test_a_dropped_link_is_reconnected_and_the_output_switched_off_first(linked, capsys) -> None:
 
     bench, proxy, profile = linked
-    times = _cut_after_output_on(bench, proxy, outage_s=3.0)  # longer than a reply timeout
+    # Longer than the failed step test takes to give up, so the first attempt to reach the bench again
+    # meets the cut link: over VXI-11 that is pyvisa-py's RPC timeout (the I/O timeout + 1 s) on top of
+    # the reply timeout, which outlasted a 3 s cut on a busy machine.
+    outage_s = 7.0 if "vxi11" in bench.serving.transports else 3.0
+    times = _cut_after_output_on(bench, proxy, outage_s=outage_s)
     status = main(["run", str(profile), "-n", "6"])
     out, err = capsys.readouterr()
     log = bench.generator.command_log

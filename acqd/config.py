@@ -23,6 +23,27 @@ from .errors import ConfigError
 MAX_FILE_BYTES = 20_000_000  # a profile or driver file is pages of text; read whole, so it is bounded
 
 
+SHOWN_CHARS = 60  # of a value quoted in an error line, so a 400-digit number stays one short line
+
+
+def shown(text: str) -> str:
+    """``text`` quoted for an error line, cut to ``SHOWN_CHARS``."""
+    text = text.strip()
+    return repr(text) if len(text) <= SHOWN_CHARS else repr(text[:SHOWN_CHARS - 3] + "...")
+
+
+def finite_float(source: str | Path, field: str, text: str) -> float:
+    """``text`` as a finite float, or one ConfigError naming ``source`` and ``field`` (``nan`` and ``inf``
+    are floats to Python, and no measured or given quantity here is either)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise ConfigError(source, field, f"{shown(text)} is not a number") from None
+    if not math.isfinite(value):
+        raise ConfigError(source, field, f"{shown(text)} is not a finite number")
+    return value
+
+
 def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     """(parsed table, original text); unreadable or malformed files give one ConfigError line."""
     path = Path(path)

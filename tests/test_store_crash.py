@@ -264,15 +264,22 @@ def test_damage_before_the_last_row_keeps_the_original(tmp_path: Path) -> None:
     check_store(store, {0: acked[0]}, recover=False, damaged=1)
 
 
-@pytest.mark.skipif(STRACE is None, reason="strace not installed")
-def test_sigkill_inside_hdf5_writes(tmp_path: Path) -> None:
-    """strace(1) ``-e inject=pwrite64:signal=SIGKILL:when=N`` kills the writer as it enters its N-th pwrite64."""
+def _traced_dry_run(tmp_path: Path, count: int, rotate: int, calls: str) -> tuple[Writer, Path]:
+    """A writer run to the end under strace(1) ``-e trace=CALLS``, to count the write calls a kill can
+    land on; skipped where ptrace is not allowed."""
     trace = tmp_path / "trace.txt"
-    dry = Writer(tmp_path / "dry.h5", seed_base=0, count=12, rotate=5,
-                 prefix=[STRACE, "-f", "-qq", "-e", "trace=pwrite64", "-o", str(trace)])
+    dry = Writer(tmp_path / "dry.h5", seed_base=0, count=count, rotate=rotate,
+                 prefix=[STRACE, "-f", "-qq", "-e", f"trace={calls}", "-o", str(trace)])
     dry.finish()
     if dry.proc.returncode != 0 and "ptrace" in dry.stderr:
         pytest.skip(f"strace cannot trace here: {dry.stderr.strip().splitlines()[-1]}")
+    return dry, trace
+
+
+@pytest.mark.skipif(STRACE is None, reason="strace not installed")
+def test_sigkill_inside_hdf5_writes(tmp_path: Path) -> None:
+    """strace(1) ``-e inject=pwrite64:signal=SIGKILL:when=N`` kills the writer as it enters its N-th pwrite64."""
+    dry, trace = _traced_dry_run(tmp_path, count=12, rotate=5, calls="pwrite64")
     n_writes = trace.read_text().count("pwrite64(")
     assert dry.proc.returncode == 0 and n_writes > 12 * 3  # blobs, samples, index, metadata per record
     rng = random.Random(77)
@@ -321,12 +328,7 @@ def test_no_kill_inside_an_append_leaves_a_row_whose_data_is_missing(tmp_path: P
     The first check is the one that finds an index row written before the data flush: acqd's reader
     hides such a row (it reads no further than the shorter of index and samples), so only the file itself
     shows that the order was broken."""
-    trace = tmp_path / "trace.txt"
-    dry = Writer(tmp_path / "dry.h5", seed_base=0, count=3, rotate=100,
-                 prefix=[STRACE, "-f", "-qq", "-e", "trace=pwrite64,write", "-o", str(trace)])
-    dry.finish()
-    if dry.proc.returncode != 0 and "ptrace" in dry.stderr:
-        pytest.skip(f"strace cannot trace here: {dry.stderr.strip().splitlines()[-1]}")
+    dry, trace = _traced_dry_run(tmp_path, count=3, rotate=100, calls="pwrite64,write")
     assert dry.proc.returncode == 0, dry.stderr
     writes = pwrites_of_one_append(trace.read_text(), 2)
     assert len(writes) >= 4  # sample chunks, their metadata, the index chunk, its metadata

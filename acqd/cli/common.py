@@ -12,7 +12,6 @@ option (argparse lets an exception that is not a ``ValueError`` or ``TypeError``
 from __future__ import annotations
 
 import argparse
-import math
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -25,6 +24,7 @@ from rich.segment import Segment
 from rich.text import Text
 from rich.theme import Theme
 
+from ..config import SHOWN_CHARS, finite_float, shown
 from ..display import edge_label, si_alike
 from ..errors import ConfigError
 from ..record import Record, bench_id_problem
@@ -124,20 +124,13 @@ def add_command(sub: argparse._SubParsersAction, name: str, help: str, descripti
 
 # Every count, index and port a command line gives is at most this: a 400-digit --count ran "forever".
 MAX_WHOLE_NUMBER = 1_000_000_000
-SHOWN_CHARS = 60  # of a value quoted in an error line, so a 400-digit number stays one short line
-
-
-def _shown(text: str) -> str:
-    return repr(text) if len(text) <= SHOWN_CHARS else repr(text[:SHOWN_CHARS - 3] + "...")
-
-
 def whole_number(command: str, option: str, minimum: int,
                  maximum: int = MAX_WHOLE_NUMBER) -> Callable[[str], int]:
     """An argparse ``type`` for a whole number from ``minimum`` to ``maximum`` that fails as one
     ``acqd: error:`` line."""
     def parse(text: str) -> int:
         if len(text) > SHOWN_CHARS:
-            raise ConfigError(command, option, f"{_shown(text)} is longer than any number allowed here "
+            raise ConfigError(command, option, f"{shown(text)} is longer than any number allowed here "
                                                f"(at most {maximum:,})")
         try:
             value = int(text)
@@ -152,14 +145,8 @@ def whole_number(command: str, option: str, minimum: int,
 
 
 def finite_number(command: str, option: str, text: str) -> float:
-    """``text`` as a finite float, or one ``acqd: error:`` line (``nan`` and ``inf`` are floats to Python)."""
-    try:
-        value = float(text)
-    except ValueError:
-        raise ConfigError(command, option, f"{_shown(text)} is not a number") from None
-    if not math.isfinite(value):
-        raise ConfigError(command, option, f"{_shown(text)} is not a finite number")
-    return value
+    """``text`` as a finite float, or one ``acqd: error:`` line naming the option."""
+    return finite_float(command, option, text)
 
 
 def written_file(command: str, option: str) -> Callable[[str], Path]:

@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from ..config import finite_float
 from ..errors import ConfigError
 from ..record import EDGES, LOADS, TIMING_SETTING, Channel, Record, Stimulus, TimeBase, split_column_header
 
@@ -64,12 +65,7 @@ def _read_table(path: str) -> tuple[list[tuple[str, str | None]], np.ndarray]:
             raise ConfigError(path, f"line {line}", f"has {len(row)} values; the header names {len(columns)} columns")
         for j, cell in enumerate(row):
             where = f"line {line}, column {columns[j][0]}"
-            try:
-                value = float(cell)
-            except ValueError:
-                raise ConfigError(path, where, f"{cell.strip()!r} is not a number") from None
-            if not math.isfinite(value):
-                raise ConfigError(path, where, f"{cell.strip()!r} is not a finite number")
+            value = finite_float(path, where, cell)
             if abs(value) > MAX_MAGNITUDE:
                 raise ConfigError(path, where, f"{cell.strip()!r} is beyond ±{MAX_MAGNITUDE:g}: no sampled time, "
                                                f"voltage or current is that large (their squares would overflow)")

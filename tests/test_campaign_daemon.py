@@ -511,7 +511,10 @@ def test_simulated_drift_is_recovered_by_acqd_drift(tmp_path: Path, capsys: pyte
     # per real second, so the records' fitted R must rise by 0.2 × 3600 × 22 Ω = 15 840 Ω per hour of record
     # time (acqd.sim.bench's stated relation). The daemon compares (fits R) as each record lands.
     per_hour, time_scale, r_nominal = 0.2, 3600.0, 22.0
-    profile = write_profile(tmp_path / "aging.toml", 'name = "aging"\nback_to_back = true\nslots = 16\n')
+    # Slots 0.2 s apart, not back to back: the trend's interval narrows with the span of record time, and
+    # back to back that span shrank whenever the step test got faster (16 fast slots span a fraction of a
+    # second), which made the width check below depend on the machine's speed.
+    profile = write_profile(tmp_path / "aging.toml", 'name = "aging"\nevery_s = 0.2\nslots = 16\n')
     text = profile.read_text()
     text = text.replace("[bench.simulated.wiring]", f'[bench.simulated.drift]\nparameter = "r_ohm"\n'
                         f"per_hour = {per_hour}\ntime_scale = {time_scale}\n\n[bench.simulated.wiring]")
@@ -524,7 +527,7 @@ def test_simulated_drift_is_recovered_by_acqd_drift(tmp_path: Path, capsys: pyte
     assert main(["drift", str(data / "aging.h5"), "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
     r = next(s for s in summary["series"] if s["name"] == "r_ohm")
-    assert len(r["values"]) == 16 and r["values"][-1] > r["values"][0]
+    assert len(r["values"]) >= 12 and r["values"][-1] > r["values"][0]  # a slot the daemon was late for may be skipped
     lo, hi = r["trend"]["ci95"]
     expected = per_hour * time_scale * r_nominal  # Ω per hour of record time
     assert lo <= expected <= hi, (expected, r["trend"])

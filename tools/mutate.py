@@ -143,7 +143,9 @@ def prepare(work: Path, key: str) -> None:
     tests = present(tests)
     lines = ["[mutmut]", "source_paths=" + "\n    ".join(paths),
              "pytest_add_cli_args_test_selection=" + "\n    ".join(tests),
-             "pytest_add_cli_args=-p no:cacheprovider -n 0",  # mutmut counts tests in its own process
+             # one argument a line (mutmut takes a one-line value as a single argument); -n 0 undoes the
+             # project's two xdist workers, since mutmut must see in its own process which tests reach a mutant
+             "pytest_add_cli_args=" + "\n    ".join(("-p", "no:cacheprovider", "-n", "0")),
              "also_copy=" + "\n    ".join(item for item in COPIED if item not in ("tests", "pyproject.toml"))]
     (work / "setup.cfg").write_text("\n".join(lines) + "\n", encoding="utf-8")
 

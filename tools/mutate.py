@@ -3,6 +3,7 @@
     python tools/mutate.py scpi            # one module (names: python tools/mutate.py --list)
     python tools/mutate.py scpi blocks     # several, one after the other
     python tools/mutate.py --all           # every core module (tens of minutes)
+    python tools/mutate.py store --only 'acqd.store.reader.*'   # only the mutants whose names match
 
 The tool is mutmut (installed by the ``mutation`` extra: ``pip install -e '.[mutation]'``). Each run works
 in a scratch copy of the package and the tests, so the working tree is never edited and two runs do not
@@ -26,6 +27,7 @@ core or its tests.
 from __future__ import annotations
 
 import argparse
+import fnmatch
 import json
 import os
 import re
@@ -182,18 +184,21 @@ def survivor_diffs(work: Path, names: list[str]) -> dict[str, str]:
     return json.loads(done.stdout)
 
 
-def run_module(key: str, keep: Path | None) -> Outcome:
-    """Mutate one module in a scratch copy and collect every mutant's status and the survivors' diffs."""
+def run_module(key: str, keep: Path | None, only: tuple[str, ...] = ()) -> Outcome:
+    """Mutate one module in a scratch copy and collect every mutant's status and the survivors' diffs.
+
+    ``only`` (mutmut's own name patterns, ``fnmatch`` style) runs a part of a module: a function being worked
+    on takes a minute where the whole store takes most of an hour. Its score is the part's alone."""
     work = Path(tempfile.mkdtemp(prefix=f"acqd-mutate-{key}-", dir=keep))
     start = time.monotonic()
     try:
         prepare(work, key)
-        mutmut(work, "run", log=work / "mutmut-run.log")
+        mutmut(work, "run", *only, log=work / "mutmut-run.log")
         seconds = time.monotonic() - start
         status = {}
         for line in mutmut(work, "results", "--all", "true").splitlines():
             name, _, state = line.strip().rpartition(": ")
-            if name:
+            if name and (not only or any(fnmatch.fnmatch(name, pattern) for pattern in only)):
                 status[name] = state
         diffs = survivor_diffs(work, [name for name, state in status.items() if state in ("survived", "no tests")])
         return Outcome(key, status, diffs, seconds)
@@ -238,6 +243,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--list", action="store_true", help="list the modules, their files and tests")
     parser.add_argument("--keep", type=Path, help="keep the scratch copies under this folder")
     parser.add_argument("--json", type=Path, help="also write the figures to this JSON file")
+    parser.add_argument("--only", action="append", default=[], metavar="PATTERN",
+                        help="run only the mutants whose names match (e.g. 'acqd.store.reader.x__open*'); repeatable")
     args = parser.parse_args(argv)
     if args.list:
         for key, (paths, tests) in MODULES.items():
@@ -252,7 +259,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.keep:
         args.keep.mkdir(parents=True, exist_ok=True)
     equivalents = load_equivalents()
-    figures = [report(run_module(key, args.keep), equivalents) for key in keys]
+    figures = [report(run_module(key, args.keep, tuple(args.only)), equivalents) for key in keys]
     if args.json:
         args.json.write_text(json.dumps(figures, indent=2) + "\n", encoding="utf-8")
     return 0

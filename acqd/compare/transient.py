@@ -28,6 +28,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import minimize_scalar
 
+from .levmar import levenberg_marquardt
+
 MIN_FIT_SAMPLES = 8
 APPROACH_TAU_RANGE = (0.02, 50.0)  # τ searched between these multiples of the first guess
 FREQUENCY_DRIFT_MAX = 0.3  # a damped fit whose ω moved more than 30 % from its seed did not find the ring
@@ -35,9 +37,6 @@ FIT_POINTS = 600  # the damped fit runs on at most about this many block means .
 BLOCKS_PER_PERIOD = 24  # ... each at most 1/24 of a period long
 LM_TOLERANCE = 1e-8  # relative change of the cost or the parameters that ends a damped fit (MINPACK's default)
 LM_MAX_STEPS = 300  # one evaluation per step: MINPACK's default budget for two unknowns, 100·(n + 1)
-LM_DAMPING_START = 1e-3  # × the largest diagonal entry of JᵀJ (common practice)
-LM_DAMPING_FACTOR = 10.0  # damping ÷ this after a step that lowered the cost, × it after one that did not
-LM_SCALE_FLOOR = 1e-12  # Marquardt's scaling of a direction never below this share of the largest
 
 
 def smooth(y: np.ndarray, width: int) -> np.ndarray:
@@ -151,46 +150,21 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
 def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: bool
                       ) -> tuple[np.ndarray, np.ndarray] | None:
     """(σ, ω) and the linear coefficients at the least-squares optimum of the projected residual, by
-    Levenberg–Marquardt with Marquardt's diagonal scaling (Marquardt 1963, J. SIAM 11(2):431–441) and the
-    exact Jacobian of ``_projection``; None when it does not converge in ``LM_MAX_STEPS`` steps.
+    Levenberg–Marquardt (``levmar``) on the exact Jacobian of ``_projection``; None when it does not
+    converge in ``LM_MAX_STEPS`` steps.
 
-    Written out rather than through ``scipy.optimize.least_squares`` because these problems are tiny (two
-    unknowns, at most ``FIT_POINTS`` residuals): the general solver's set-up and checks cost three times
-    the arithmetic, and a demo comparison runs twelve of these fits. It stops where MINPACK's defaults
-    would: a relative reduction of the cost or a relative step below ``LM_TOLERANCE``, or a gradient
-    orthogonal to the residual within it (``tests/test_compare_transient.py`` checks the optimum against
-    ``least_squares`` with finite differences, the way these fits ran before).
+    Not ``scipy.optimize.least_squares``: these problems are tiny (two unknowns, at most ``FIT_POINTS``
+    residuals), and the general solver's set-up and checks cost three times the arithmetic, in the twelve
+    of these fits a demo comparison runs. It stops where MINPACK's defaults would
+    (``tests/test_compare_transient.py`` checks the optimum against ``least_squares`` with finite
+    differences, the way these fits ran before).
     """
-    p = np.asarray(p0, dtype=float)
-    coef, residual, jac = _projection(x, y, p, with_level)
-    cost = float(residual @ residual)
-    damping = None
-    for _ in range(LM_MAX_STEPS):
-        grad, hess = jac.T @ residual, jac.T @ jac
-        diagonal = np.diag(hess)
-        scale = np.maximum(diagonal, LM_SCALE_FLOOR * float(diagonal.max()))  # a flat direction stays solvable
-        if cost == 0 or np.max(np.abs(grad) / np.sqrt(scale * cost + 1e-300)) <= LM_TOLERANCE:
-            return p, coef  # the residual is orthogonal to every direction the parameters can move it
-        damping = LM_DAMPING_START * float(scale.max()) if damping is None else damping
-        try:
-            step = -np.linalg.solve(hess + damping * np.diag(scale), grad)
-        except np.linalg.LinAlgError:
-            return None
-        small_step = float(np.linalg.norm(step)) <= LM_TOLERANCE * (float(np.linalg.norm(p)) + LM_TOLERANCE)
-        trial = p + step
-        trial_coef, trial_residual, trial_jac = _projection(x, y, trial, with_level)
-        trial_cost = float(trial_residual @ trial_residual)
-        if not trial_cost < cost:  # also refuses a cost that is not a number
-            if small_step:
-                return p, coef  # no smaller step could still improve it: the optimum, to the tolerance
-            damping *= LM_DAMPING_FACTOR
-            continue
-        converged = small_step or cost - trial_cost <= LM_TOLERANCE * cost
-        p, coef, residual, jac, cost = trial, trial_coef, trial_residual, trial_jac, trial_cost
-        damping /= LM_DAMPING_FACTOR
-        if converged:
-            return p, coef
-    return None
+    def evaluate(p: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        coef, residual, jac = _projection(x, y, p, with_level)
+        return residual, jac, coef
+
+    solution = levenberg_marquardt(evaluate, p0, tolerance=LM_TOLERANCE, max_evaluations=LM_MAX_STEPS + 1)
+    return (solution.p, solution.extra) if solution.converged else None
 
 
 def fit_damped_sinusoid(t: np.ndarray, y: np.ndarray, omega_guess: float, sigma_guess: float) -> DampedFit | None:

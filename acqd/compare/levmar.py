@@ -60,12 +60,14 @@ def _gauss_newton_step(hess: np.ndarray, grad: np.ndarray) -> np.ndarray | None:
 
 
 def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float, max_evaluations: int,
-                        negligible: Callable[[np.ndarray, np.ndarray, float], bool] | None = None) -> Solution:
+                        negligible: Callable[[np.ndarray, np.ndarray, float], bool] | None = None,
+                        damping_start: float = DAMPING_START) -> Solution:
     """Minimise |r(p)|² from ``p0``; ``evaluate(p)`` returns (r, ∂r/∂p, extra) at p, or raises.
 
     ``negligible(step, JᵀJ, cost)``, if given, is asked about the Gauss–Newton step at each point before
-    the damped one is tried; True ends the loop with that step taken unevaluated. The result says whether
-    a stopping test was met (``converged``) and which.
+    the damped one is tried; True ends the loop with that step taken unevaluated. ``damping_start`` is
+    the first μ; a caller that starts near its optimum (where the full Gauss–Newton step is right) gives
+    less, and the first step refused raises it at once to at least the usual ``DAMPING_START``. The result says whether a stopping test was met (``converged``) and which.
     """
     p = np.asarray(p0, dtype=float)
     residual, jac, extra = evaluate(p)
@@ -86,7 +88,7 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
                 p, residual = p + full, residual + jac @ full
                 return done(True, "the last Gauss-Newton step is small against the uncertainty: taken on the "
                                   "linearised residual")
-        damping = DAMPING_START if damping is None else damping
+        damping = damping_start if damping is None else damping
         step = _gauss_newton_step(hess + damping * np.diag(scale), grad)
         if step is None:
             return done(False, "the damped normal equations are singular")
@@ -98,7 +100,7 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
         if not trial_cost < cost:  # also refuses a cost that is not a number
             if small_step:
                 return done(True, "no smaller step lowers the cost: the optimum, to the tolerance")
-            damping *= DAMPING_FACTOR
+            damping = max(damping * DAMPING_FACTOR, DAMPING_START)  # a refused light step: at once the usual damping
             continue
         reduced_little = cost - trial_cost <= tolerance * cost
         p, residual, jac, extra, cost = trial, trial_residual, trial_jac, trial_extra, trial_cost

@@ -270,19 +270,43 @@ def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> n
     return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
 
 
+_NOMINAL_SENSITIVITIES = Memo()  # the start of a fit: the same for every record of a run whose edge falls alike
+START_RTOL = 1e-14  # a point this close to the start (the rounding of its coordinates) is the start
+
+
+def _nominal_sensitivities(setup: _Setup, edge: Edge, start: dict[str, float]) -> tuple[np.ndarray, np.ndarray]:
+    """(predicted channels, unweighted Jacobian) at a fit's starting values, remembered.
+
+    The rank test takes its Jacobian at the nominal values whatever the warm start, so in a run every
+    record asks for the same one while the edge falls on the same instant (an edge the samples do not
+    resolve sits on a whole sample, as the demo's does): one propagation saved per record, of the three
+    a warm-started fit costs. Anything that cannot be a key (a state_space model's matrices) is computed.
+    """
+    def compute() -> tuple[np.ndarray, np.ndarray]:
+        return setup.response_and_sensitivities(start, edge, EDGE_PARAMETER, np.ones(len(setup.mapping)))
+
+    try:
+        return _NOMINAL_SENSITIVITIES.get((setup.spec.model, setup.spec.source, tuple(setup.nominal.items()),
+                                           tuple(start.items()), setup.times, edge, setup.mapping), compute)
+    except TypeError:  # unhashable parameters
+        return compute()
+
+
 def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = None) -> FitResult:
     """Identify the free parameters. With a stimulus channel and an edge the samples resolve, the edge
     instant is fitted alongside them, since aligning it with a model whose parameters are still wrong
     would bias both; an unresolved edge keeps the whole-sample position the alignment found."""
     spec = setup.spec
-    _, nominal_prediction, _ = setup.predict(setup.model(), edge)
-    weights = _weights(setup, nominal_prediction, spec.fit.weighting)[:, None]
     infos = spec.parameters
     free = {n: Free(setup.nominal[n], infos[n].sign != "any", abs(setup.nominal[n]) or 1.0, infos[n].unit)
             for n in spec.fit.free}
     dt = setup.times[1] - setup.times[0]
     if any(m.stimulus for m in setup.mapping) and edge.resolved(dt):
         free[EDGE_PARAMETER] = Free(edge.t50_s, False, dt, "s")
+    start = {n: f.start for n, f in free.items()}
+    nominal_prediction, nominal_jacobian = _nominal_sensitivities(setup, edge, start)
+    weights = _weights(setup, nominal_prediction, spec.fit.weighting)[:, None]
+    samples = len(setup.times)
 
     last: dict[str, Any] = {}
 
@@ -291,7 +315,12 @@ def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = Non
         a point and then, when it takes the step, for its Jacobian, so the pair of the last point is kept."""
         key = tuple(values.items())
         if last.get("key") != key:
-            predicted, jacobian = setup.response_and_sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
+            if np.allclose(list(values.values()), list(start.values()), rtol=START_RTOL, atol=0.0):
+                predicted = nominal_prediction
+                jacobian = (nominal_jacobian.reshape(len(weights), samples, -1)
+                            * (-1 / weights)[:, :, None]).reshape(nominal_jacobian.shape)
+            else:
+                predicted, jacobian = setup.response_and_sensitivities(values, edge, EDGE_PARAMETER, -1 / weights)
             last.update(key=key, pair=(((setup.measured - predicted) / weights).ravel(), jacobian))
         return last["pair"]
 

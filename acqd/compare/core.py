@@ -315,7 +315,8 @@ def _fit(setup: _Setup, edge: Edge, warm_start: Mapping[str, float] | None = Non
         a point and then, when it takes the step, for its Jacobian, so the pair of the last point is kept."""
         key = tuple(values.items())
         if last.get("key") != key:
-            if np.allclose(list(values.values()), list(start.values()), rtol=START_RTOL, atol=0.0):
+            if values.keys() == start.keys() and np.allclose(list(values.values()), list(start.values()),
+                                                             rtol=START_RTOL, atol=0.0):
                 predicted = nominal_prediction
                 jacobian = (nominal_jacobian.reshape(len(weights), samples, -1)
                             * (-1 / weights)[:, :, None]).reshape(nominal_jacobian.shape)

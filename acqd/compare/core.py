@@ -13,6 +13,7 @@ import json
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields, is_dataclass, replace
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -22,6 +23,7 @@ from ..models import StateSpace, with_sensitivities
 from ..record import TIMING_SETTING, Record
 from .fit import FitResult, Free, fit_parameters
 from .memo import Memo
+from .ieee181 import code_step_of
 from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
                       record_code_step)
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
@@ -121,6 +123,12 @@ class _Setup:
 
     def model(self, values: Mapping[str, float] | None = None) -> StateSpace:
         return self.spec.build({**self.nominal, **(values or {})})
+
+    @cached_property
+    def sample_code_steps(self) -> tuple[float, ...]:
+        """Each measured channel's code step as its samples show it (``ieee181.code_step_of``): read once,
+        for the fit's weights and the step parameters alike (a sort of every sample each time)."""
+        return tuple(code_step_of(y) for y in self.measured)
 
     def rows(self, model: StateSpace) -> tuple[np.ndarray, np.ndarray]:
         """(P, Q) so that the predicted channels are x·Pᵀ + u·Q (gains applied, offsets not)."""
@@ -265,8 +273,8 @@ def _weights(setup: _Setup, nominal_prediction: np.ndarray, weighting: str) -> n
     spans = np.ptp(nominal_prediction, axis=1)
     if weighting == "amplitude":
         return np.where(spans > 0, spans, 1.0)
-    noise = np.array([max(noise_rms(setup.times, y, setup.edge.start_s), quantisation_rms(y))
-                      for y in setup.measured])
+    noise = np.array([max(noise_rms(setup.times, y, setup.edge.start_s), quantisation_rms(y, code))
+                      for y, code in zip(setup.measured, setup.sample_code_steps)])
     return np.maximum(noise, WEIGHT_FLOOR_SHARE * np.where(spans > 0, spans, 1.0))
 
 
@@ -445,14 +453,19 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "",
         edge = replace(edge, t50_s=fit.values[EDGE_PARAMETER])
     parameters = {**setup.nominal, **fitted}
     model = setup.model(parameters)
-    x, predicted, u = _PREDICTIONS.get((model.A, model.B, model.C, model.D, setup.times, edge, setup.mapping),
-                                       lambda: setup.predict(model, edge))
+    # the memory serves comparisons without a fit; a fit's traces differ every record, and hashing them costs
+    x, predicted, u = (setup.predict(model, edge) if fit else
+                       _PREDICTIONS.get((model.A, model.B, model.C, model.D, setup.times, edge, setup.mapping),
+                                        lambda: setup.predict(model, edge)))
     spans = np.ptp(predicted, axis=1)
     channels = []
-    for m, unit, meas, sim, span in zip(setup.mapping, setup.units, setup.measured, predicted, spans):
+    for m, unit, meas, sim, span, sample_step in zip(setup.mapping, setup.units, setup.measured, predicted, spans,
+                                                     setup.sample_code_steps):
+        code_step = record_code_step(record, m.channel)
         channels.append(channel_result(m.channel, m.signal.text, unit, m.gain, m.offset, setup.times, meas, sim,
                                        _polarity(model, m.signal, m.gain, edge, span), edge.start_s,
-                                       spec.tolerances.settling_band_pct, record_code_step(record, m.channel)))
+                                       spec.tolerances.settling_band_pct,
+                                       sample_step if code_step is None else code_step, remember=fit is None))
     verdict, notes = judge(channels, fit, spec.tolerances)
     traces = _traces(setup, model, x, predicted, u)
     marked = [m.channel for m in setup.mapping if m.stimulus]

@@ -54,16 +54,17 @@ def noise_rms(times: np.ndarray, y: np.ndarray, quiet_until_s: float) -> float:
     return float(np.median(np.abs(diffs - np.median(diffs))) / (0.6745 * np.sqrt(2.0))) if len(diffs) else 0.0
 
 
-def quantisation_rms(y: np.ndarray) -> float:
+def quantisation_rms(y: np.ndarray, code_step: float | None = None) -> float:
     """The RMS of the error a quantiser with this trace's code step makes: step / √12 (uniform quantisation
     noise, common practice), with the step read from the data (``ieee181.code_step_of``; 0 when the trace
     shows too few distinct values to tell its step: an ideal step sits on two codes whatever the step is).
 
     Why: a quiet channel's baseline can sit on one ADC code, so its measured noise is zero, yet every sample
     of the transient still carries up to half a code of error. Unquantised data gives a tiny step and so a
-    negligible value.
+    negligible value. ``code_step``: ``code_step_of(y)`` when the caller has read it already (it sorts
+    every sample).
     """
-    return code_step_of(y) / float(np.sqrt(12.0))
+    return (code_step_of(y) if code_step is None else code_step) / float(np.sqrt(12.0))
 
 
 def record_code_step(record: Record, channel: str) -> float | None:
@@ -83,14 +84,17 @@ _SIMULATED_STEPS = Memo()  # a simulated trace's step parameters depend on nothi
 
 
 def _steps(times: np.ndarray, measured: np.ndarray, simulated: np.ndarray, polarity: str | None,
-           band_pct: float, noise: float, code_step: float | None
+           band_pct: float, noise: float, code_step: float | None, remember: bool
            ) -> tuple[StepParameters | None, StepParameters | None, str]:
     if polarity is None:
         return None, None, "no step: the model's rest values before and after the edge are equal"
+
+    def simulated_steps() -> StepParameters:
+        return step_parameters(times, simulated, polarity, band_pct=band_pct, code_step=0.0)  # a model has no ADC
+
     try:
-        sim = _SIMULATED_STEPS.get((times, simulated, polarity, band_pct),
-                                   lambda: step_parameters(times, simulated, polarity, band_pct=band_pct,
-                                                           code_step=0.0))  # a model has no ADC
+        sim = (_SIMULATED_STEPS.get((times, simulated, polarity, band_pct), simulated_steps) if remember
+               else simulated_steps())
     except StepError as exc:
         return None, None, f"simulated trace: {exc}"
     try:
@@ -102,11 +106,13 @@ def _steps(times: np.ndarray, measured: np.ndarray, simulated: np.ndarray, polar
 
 def channel_result(channel: str, signal: str, unit: str, gain: float, offset: float, times: np.ndarray,
                    measured: np.ndarray, simulated: np.ndarray, polarity: str | None, quiet_until_s: float,
-                   band_pct: float, code_step: float | None = None) -> ChannelResult:
+                   band_pct: float, code_step: float | None = None, remember: bool = True) -> ChannelResult:
     """Errors, noise, baseline check and IEEE 181 step parameters of one mapped channel.
 
     ``code_step`` is the measured channel's resolution when the record says it (``record_code_step``);
-    None reads it from the samples' spacing.
+    None reads it from the samples' spacing. ``remember``: keep the simulated trace's step parameters for
+    the next record (``_SIMULATED_STEPS``); not worth hashing the trace for after a fit, whose simulated
+    traces differ from record to record.
     """
     error = measured - simulated
     span = float(np.ptp(simulated))
@@ -115,6 +121,6 @@ def channel_result(channel: str, signal: str, unit: str, gain: float, offset: fl
     noise = noise_rms(times, measured, quiet_until_s)
     quiet = times < quiet_until_s
     baseline = float(np.mean(error[quiet])) if quiet.sum() >= MIN_BASELINE_SAMPLES else None
-    meas_step, sim_step, note = _steps(times, measured, simulated, polarity, band_pct, noise, code_step)
+    meas_step, sim_step, note = _steps(times, measured, simulated, polarity, band_pct, noise, code_step, remember)
     return ChannelResult(channel, signal, unit, gain, offset, rms, rms / span if span > 0 else float("inf"),
                          float(abs(error[k])), float(times[k]), noise, baseline, meas_step, sim_step, note)

@@ -108,31 +108,22 @@ class DampedFit:
         return self.omega_rad_s / (2 * math.pi)
 
 
-def _damped_columns(x: np.ndarray, p: np.ndarray, with_level: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(basis, ∂basis/∂σ, ∂basis/∂ω) of level (when ``with_level``) + e^(−σx)(a cos ωx + b sin ωx), for
-    p = (σ, ω): the columns [1,] e^(−σx)·cos ωx, e^(−σx)·sin ωx and their derivatives in closed form."""
-    envelope = np.exp(-p[0] * x)
-    cos, sin = envelope * np.cos(p[1] * x), envelope * np.sin(p[1] * x)
-    first = 1 if with_level else 0
-    basis, d_sigma, d_omega = (np.zeros((len(x), first + 2)) for _ in range(3))
-    if with_level:
-        basis[:, 0] = 1.0
-    basis[:, first], basis[:, first + 1] = cos, sin
-    d_sigma[:, first], d_sigma[:, first + 1] = -x * cos, -x * sin
-    d_omega[:, first], d_omega[:, first + 1] = -x * sin, x * cos
-    return basis, d_sigma, d_omega
-
-
 def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(linear coefficients c, residual r, ∂r/∂p) of the variable-projection problem r(p) = y − Φ(p)·c(p),
-    c(p) the linear least-squares solution for the damped columns Φ(p) (``_damped_columns``).
+    Φ(p) the columns [1,] e^(−σx)·cos ωx, e^(−σx)·sin ωx of level (when ``with_level``) +
+    e^(−σx)(a cos ωx + b sin ωx) for p = (σ, ω), c(p) their linear least-squares solution.
 
     The derivative is Golub & Pereyra's (1973, SIAM J. Numer. Anal. 10(2):413–432), exact:
     ∂r/∂p_k = −(P⊥·∂Φ_k·c + Φ⁺ᵀ·∂Φ_kᵀ·r), P⊥ = I − ΦΦ⁺, Φ⁺ = (ΦᵀΦ)⁻¹Φᵀ, so the solver needs no finite
-    differences: they cost two more evaluations per step, most of a damped fit's time.
+    differences: they cost two more evaluations per step, most of a damped fit's time. The columns'
+    derivatives are in closed form, and only their products with c and r are formed:
+    ∂Φ_σ·c = −x·(a·cos + b·sin), ∂Φ_ω·c = x·(b·cos − a·sin) (cos, sin with the envelope), and
+    ∂Φ_σᵀ·r = −(x·cos·r, x·sin·r), ∂Φ_ωᵀ·r = (−x·sin·r, x·cos·r), the level's entry 0 in both.
     """
-    basis, *derivatives = _damped_columns(x, p, with_level)
+    envelope = np.exp(-p[0] * x)
+    cos, sin = envelope * np.cos(p[1] * x), envelope * np.sin(p[1] * x)
+    basis = np.column_stack((np.ones_like(x), cos, sin) if with_level else (cos, sin))
     gram = basis.T @ basis
     try:
         inverse = np.linalg.inv(gram)
@@ -140,10 +131,12 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
         inverse = np.linalg.pinv(gram)
     coef = inverse @ (basis.T @ y)
     residual = y - basis @ coef
-    jac = np.empty((len(x), len(derivatives)))
-    for k, d_basis in enumerate(derivatives):
-        moved = d_basis @ coef
-        jac[:, k] = basis @ (inverse @ (basis.T @ moved - d_basis.T @ residual)) - moved
+    a, b = coef[-2:]
+    moved = np.column_stack((-x * (a * cos + b * sin), x * (b * cos - a * sin)))  # ∂Φ_k·c, k = σ, ω
+    x_cos_r, x_sin_r = float((x * cos) @ residual), float((x * sin) @ residual)
+    lead = [0.0] if with_level else []
+    transposed_r = np.array([[*lead, -x_cos_r, -x_sin_r], [*lead, -x_sin_r, x_cos_r]]).T  # ∂Φ_kᵀ·r as columns
+    jac = basis @ (inverse @ (basis.T @ moved - transposed_r)) - moved
     return coef, residual, jac
 
 

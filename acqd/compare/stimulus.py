@@ -21,6 +21,7 @@ from scipy.optimize import minimize_scalar
 
 from ..models import Discrete, StateSpace, discretise, propagate
 from ..record import Stimulus
+from .memo import Memo
 
 RAMP_SHARE_10_90 = 0.8  # share of a linear ramp's duration spent between its 10 % and 90 % points
 RESOLVED_SAMPLES = 2.0  # a ramp at least this many sample intervals long shows where it is between samples
@@ -130,6 +131,9 @@ def edge_states(model: StateSpace, times: np.ndarray, edge: Edge) -> tuple[np.nd
     return x, u
 
 
+_PADDED_PREDICTIONS = Memo()  # align_edge's prediction of the stimulus channel around the nominal edge
+
+
 def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.ndarray,
                c_row: np.ndarray, d_value: float, search_s: float) -> Edge:
     """The edge moved in time so the model's prediction of a measured stimulus channel fits it best.
@@ -152,9 +156,16 @@ def align_edge(model: StateSpace, times: np.ndarray, edge: Edge, measured: np.nd
     # A whole-sample shift of the edge shifts the response by as many samples (the model is time-invariant
     # and starts at rest), so one response on a grid padded by the search span serves every candidate.
     n = len(times)
-    padded = times[0] + (np.arange(n + 2 * span) - span) * dt
-    x, u = edge_states(model, padded, replace(edge, t50_s=float(times[nearest])))
-    predicted = x @ c_row + d_value * u
+
+    def padded_prediction() -> np.ndarray:
+        padded = times[0] + (np.arange(n + 2 * span) - span) * dt
+        x, u = edge_states(model, padded, replace(edge, t50_s=float(times[nearest])))
+        return x @ c_row + d_value * u
+
+    # the same for every record of a run whose edge falls near the same sample: the grid is uniform, so its
+    # start, step and length name it
+    predicted = _PADDED_PREDICTIONS.get((model.A, model.B, c_row, d_value, float(times[0]), float(dt), n, span,
+                                         replace(edge, t50_s=float(times[nearest]))), padded_prediction)
     costs = [float(np.sum((measured - predicted[span - s:span - s + n]) ** 2)) for s in shifts]
     best = float(times[nearest + shifts[int(np.argmin(costs))]])  # exactly on a sample, no rounding drift
     if edge.resolved(dt):

@@ -271,7 +271,7 @@ def _uncertainty(jac: np.ndarray, residuals: np.ndarray, theta: np.ndarray, coor
     return errors, intervals, correlations, float(np.sqrt(float(residuals @ residuals) / dof)), lags
 
 
-def _negligible_for(dof: int) -> Callable[[np.ndarray, np.ndarray, float], bool]:
+def _negligible_for(dof: int) -> Callable[[np.ndarray, np.ndarray, np.ndarray, float], bool]:
     """The solver's ``negligible`` test for a fit with ``dof`` degrees of freedom: a Gauss–Newton step that
     moves no coordinate by more than ``NEGLIGIBLE_STEP_SE`` of its white-noise standard error
     √(s²·(JᵀJ)⁻¹_ii), s² = cost / dof, is taken without evaluating the model at its end.
@@ -283,7 +283,7 @@ def _negligible_for(dof: int) -> Callable[[np.ndarray, np.ndarray, float], bool]
     is one model propagation with its sensitivities, a quarter of a demo fit from the nominal values. The
     covariance then uses the Jacobian of the last evaluated point, a step of a fiftieth of a standard
     error away, and the residual r + J·δ."""
-    def negligible(step: np.ndarray, hess: np.ndarray, cost: float) -> bool:
+    def negligible(_p: np.ndarray, step: np.ndarray, hess: np.ndarray, cost: float) -> bool:
         try:
             variances = np.diag(np.linalg.inv(hess)) * (cost / dof)
         except np.linalg.LinAlgError:

@@ -14,13 +14,14 @@ flat (``fit``), or have two well-scaled unknowns (``transient``).
 
 The loop: Marquardt's diagonal scaling (Marquardt 1963, J. SIAM 11(2):431–441: the damped system is
 (JᵀJ + μ·diag(JᵀJ))·δ = −Jᵀr, so μ is a share of each direction's own curvature and the step does not
-depend on the units of the coordinates), μ starting at 10⁻³, divided by 10
-after a step that lowered the cost and multiplied by 10 after one that did not, and MINPACK's stopping tests at ``tolerance`` (a relative reduction of the cost or a relative step below it, or a gradient
+depend on the units of the coordinates), μ starting at 10⁻³ unless the caller says otherwise, divided by
+10 after a step that lowered the cost and multiplied by 10 after one that did not, and MINPACK's stopping
+tests at ``tolerance`` (a relative reduction of the cost or a relative step below it, or a gradient
 orthogonal to the residual within it). A caller may also say when the undamped (Gauss–Newton) step from
 the current point is small enough to be taken on the linearised residual (``negligible``): the loop then
-ends at the step's end, with the residual r + J·δ and the Jacobian of the last evaluated point, instead of
-evaluating the model once more. Near the optimum Gauss–Newton converges quadratically on a small-residual
-problem, so what that leaves is of the order of the step squared.
+ends at the step's end, with the residual r + J·δ and the Jacobian (and ``extra``) of the last evaluated
+point, instead of evaluating the model once more. Near the optimum Gauss–Newton converges quadratically
+on a small-residual problem, so what that leaves is of the order of the step squared.
 """
 
 from __future__ import annotations
@@ -60,11 +61,11 @@ def _gauss_newton_step(hess: np.ndarray, grad: np.ndarray) -> np.ndarray | None:
 
 
 def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float, max_evaluations: int,
-                        negligible: Callable[[np.ndarray, np.ndarray, float], bool] | None = None,
+                        negligible: Callable[[np.ndarray, np.ndarray, np.ndarray, float], bool] | None = None,
                         damping_start: float = DAMPING_START) -> Solution:
     """Minimise |r(p)|² from ``p0``; ``evaluate(p)`` returns (r, ∂r/∂p, extra) at p, or raises.
 
-    ``negligible(step, JᵀJ, cost)``, if given, is asked about the Gauss–Newton step at each point before
+    ``negligible(p, step, JᵀJ, cost)``, if given, is asked about the Gauss–Newton step at each point before
     the damped one is tried; True ends the loop with that step taken unevaluated. ``damping_start`` is
     the first μ; a caller that starts near its optimum (where the full Gauss–Newton step is right) gives
     less, and the first step refused raises it at once to at least the usual ``DAMPING_START``. The result says whether a stopping test was met (``converged``) and which.
@@ -84,10 +85,10 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
             return done(True, "the residual is orthogonal to every direction the parameters move it")
         if negligible is not None:
             full = _gauss_newton_step(hess, grad)
-            if full is not None and negligible(full, hess, cost):
+            if full is not None and negligible(p, full, hess, cost):
                 p, residual = p + full, residual + jac @ full
-                return done(True, "the last Gauss-Newton step is small against the uncertainty: taken on the "
-                                  "linearised residual")
+                return done(True, "the last Gauss-Newton step was small enough to take on the linearised "
+                                  "residual")
         damping = damping_start if damping is None else damping
         step = _gauss_newton_step(hess + damping * np.diag(scale), grad)
         if step is None:

@@ -26,6 +26,7 @@ on a small-residual problem, so what that leaves is of the order of the step squ
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -60,6 +61,11 @@ def _gauss_newton_step(hess: np.ndarray, grad: np.ndarray) -> np.ndarray | None:
         return None
 
 
+def _norm(v: np.ndarray) -> float:
+    """The Euclidean norm of a short vector (``np.linalg.norm``'s checks cost more than the sum here)."""
+    return math.sqrt(float(v @ v))
+
+
 def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float, max_evaluations: int,
                         negligible: Callable[[np.ndarray, np.ndarray, np.ndarray, float], bool] | None = None,
                         damping_start: float = DAMPING_START) -> Solution:
@@ -68,7 +74,8 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
     ``negligible(p, step, JᵀJ, cost)``, if given, is asked about the Gauss–Newton step at each point before
     the damped one is tried; True ends the loop with that step taken unevaluated. ``damping_start`` is
     the first μ; a caller that starts near its optimum (where the full Gauss–Newton step is right) gives
-    less, and the first step refused raises it at once to at least the usual ``DAMPING_START``. The result says whether a stopping test was met (``converged``) and which.
+    less, and the first step refused raises it at once to at least the usual ``DAMPING_START``. The
+    result says whether a stopping test was met (``converged``) and which.
     """
     p = np.asarray(p0, dtype=float)
     residual, jac, extra = evaluate(p)
@@ -79,7 +86,7 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
 
     while evaluations < max_evaluations:
         grad, hess = jac.T @ residual, jac.T @ jac
-        diagonal = np.diag(hess)
+        diagonal = hess.diagonal()
         scale = np.maximum(diagonal, SCALE_FLOOR * float(diagonal.max()))  # a flat direction stays solvable
         if cost == 0 or np.max(np.abs(grad) / np.sqrt(scale * cost + 1e-300)) <= tolerance:
             return done(True, "the residual is orthogonal to every direction the parameters move it")
@@ -90,10 +97,12 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
                 return done(True, "the last Gauss-Newton step was small enough to take on the linearised "
                                   "residual")
         damping = damping_start if damping is None else damping
-        step = _gauss_newton_step(hess + damping * np.diag(scale), grad)
+        damped = hess.copy()
+        damped.flat[::len(p) + 1] += damping * scale
+        step = _gauss_newton_step(damped, grad)
         if step is None:
             return done(False, "the damped normal equations are singular")
-        small_step = float(np.linalg.norm(step)) <= tolerance * (float(np.linalg.norm(p)) + tolerance)
+        small_step = _norm(step) <= tolerance * (_norm(p) + tolerance)
         trial = p + step
         trial_residual, trial_jac, trial_extra = evaluate(trial)
         evaluations += 1

@@ -123,7 +123,11 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
     """
     envelope = np.exp(-p[0] * x)
     cos, sin = envelope * np.cos(p[1] * x), envelope * np.sin(p[1] * x)
-    basis = np.column_stack((np.ones_like(x), cos, sin) if with_level else (cos, sin))
+    first = 1 if with_level else 0
+    basis = np.empty((len(x), first + 2))
+    if with_level:
+        basis[:, 0] = 1.0
+    basis[:, first], basis[:, first + 1] = cos, sin
     gram = basis.T @ basis
     try:
         inverse = np.linalg.inv(gram)
@@ -132,7 +136,8 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
     coef = inverse @ (basis.T @ y)
     residual = y - basis @ coef
     a, b = coef[-2:]
-    moved = np.column_stack((-x * (a * cos + b * sin), x * (b * cos - a * sin)))  # ∂Φ_k·c, k = σ, ω
+    moved = np.empty((len(x), 2))  # ∂Φ_k·c, k = σ, ω
+    moved[:, 0], moved[:, 1] = -x * (a * cos + b * sin), x * (b * cos - a * sin)
     x_cos_r, x_sin_r = float((x * cos) @ residual), float((x * sin) @ residual)
     lead = [0.0] if with_level else []
     transposed_r = np.array([[*lead, -x_cos_r, -x_sin_r], [*lead, -x_sin_r, x_cos_r]]).T  # ∂Φ_kᵀ·r as columns
@@ -160,7 +165,7 @@ def _solve_projection(x: np.ndarray, y: np.ndarray, p0: np.ndarray, with_level: 
 
     def within_tolerance(p: np.ndarray, step: np.ndarray, _hess: np.ndarray, _cost: float) -> bool:
         """A full step the relative-step test would end on once evaluated: taken without the evaluation."""
-        return float(np.linalg.norm(step)) <= LM_TOLERANCE * (float(np.linalg.norm(p)) + LM_TOLERANCE)
+        return float(step @ step) <= (LM_TOLERANCE * (math.sqrt(float(p @ p)) + LM_TOLERANCE)) ** 2
 
     solution = levenberg_marquardt(evaluate, p0, tolerance=LM_TOLERANCE, max_evaluations=LM_MAX_STEPS + 1,
                                    negligible=within_tolerance)

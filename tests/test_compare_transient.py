@@ -158,3 +158,13 @@ def test_acqd_run_gives_the_verdicts_and_values_of_the_old_solver(tmp_path: Path
                 for key, value in _floats(channel_new[side]):
                     # the step parameters of a solver that stops within 1e-8 of the optimum
                     assert value == pytest.approx(expected[key], rel=1e-6, abs=1e-12), (side, key)
+
+
+def test_the_ringing_seeds_line_slope_is_numpys_weighted_polyfit():
+    # numpy.polyfit (degree 1, weights w applied to the residuals, so Σ w²·r² is minimised) as the reference
+    # for the weighted least-squares slope that seeds the ringing fit, which weights the squared residuals.
+    from acqd.compare.ieee181 import _slope
+    rng = np.random.default_rng(5)
+    x, y, weights = np.arange(7.0), 3.0 * np.arange(7.0) + rng.normal(size=7), rng.uniform(0.1, 2.0, 7)
+    assert _slope(x, y, weights) == pytest.approx(np.polyfit(x, y, 1, w=np.sqrt(weights))[0], rel=1e-12)
+    assert _slope(x, y, np.ones(7)) == pytest.approx(np.polyfit(x, y, 1)[0], rel=1e-12)

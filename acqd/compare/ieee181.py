@@ -186,6 +186,15 @@ def _lobes(y: np.ndarray, level: float, hysteresis: float) -> tuple[np.ndarray, 
     return outside, np.flatnonzero(np.diff(side[outside]) != 0)
 
 
+def _slope(x: np.ndarray, y: np.ndarray, weights: np.ndarray) -> float:
+    """The slope of the weighted least-squares line through (x, y), minimising Σ wᵢ·(yᵢ − a − b·xᵢ)²:
+    b = Σw(x − x̄)(y − ȳ) / Σw(x − x̄)² with weighted means (any regression text; ``numpy.polyfit`` with
+    w = √weights gives the same, through a general solver's set-up)."""
+    x_mean, y_mean = float(weights @ x) / float(weights.sum()), float(weights @ y) / float(weights.sum())
+    dx = x - x_mean
+    return float((weights * dx) @ (y - y_mean)) / float((weights * dx) @ dx)
+
+
 def _crossing_seeds(t: np.ndarray, y: np.ndarray, level: float, outside: np.ndarray,
                     flips: np.ndarray) -> tuple[float, float]:
     """(ω, σ) first guesses from the crossings of ``level`` between lobes and the lobes' heights.
@@ -205,9 +214,9 @@ def _crossing_seeds(t: np.ndarray, y: np.ndarray, level: float, outside: np.ndar
     firsts, lasts = np.searchsorted(ks, outside[flips]), np.searchsorted(ks, outside[flips + 1])
     crossings = np.array([statistics.median(instants[a:b].tolist()) for a, b in zip(firsts, lasts)])
     weights = np.minimum(amplitude[:-1], amplitude[1:]) ** 2
-    half_period = float(np.polyfit(np.arange(len(crossings)), crossings, 1, w=np.sqrt(weights))[0])
+    half_period = _slope(np.arange(len(crossings), dtype=float), crossings, weights)
     mids = 0.5 * (crossings[:-1] + crossings[1:])  # lobes 1 .. n−1 lie between successive crossings
-    decay = -float(np.polyfit(mids, np.log(amplitude[1:-1]), 1)[0]) if len(mids) >= 2 else 0.0
+    decay = -_slope(mids, np.log(amplitude[1:-1]), np.ones(len(mids))) if len(mids) >= 2 else 0.0
     return math.pi / half_period, max(decay, 0.0)
 
 

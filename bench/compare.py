@@ -20,7 +20,9 @@
    (``interp=True``), the strongest general-purpose baseline here; RK45 chasing an ``np.interp`` input is
    printed beside it, and the ratio is quoted against the faster baseline (named on the line).
 3. Fit: one ``acqd.compare.compare`` of a 1e4-sample two-channel record (v_C and v_R = v_src − v_rl,
-   closed form + 4 mV noise + 8-bit quantisation) with R, L and C free, started 30 % off.
+   closed form + 4 mV noise + 8-bit quantisation) with R, L and C free, started 30 % off, each run with
+   nothing remembered from the one before (the comparator remembers a fit's starting point for the next
+   record of a run).
 
 Every side gets the same number of runs (the best of three is quoted), and the runs alternate: round k
 starts with a different side, so no side always runs first on a cold cache or last on a busy machine. The
@@ -37,7 +39,9 @@ import numpy as np
 from scipy.integrate import solve_ivp
 from scipy.signal import lsim
 
+import acqd.compare.core as core
 from acqd.compare import compare
+from acqd.compare.memo import Memo
 from acqd.models import discretise, propagate, series_rlc, simulate
 from acqd.record import Channel, Record, Stimulus, TimeBase
 
@@ -174,8 +178,11 @@ def fit() -> None:
     record = Record([Channel("v_c", "V", scope(vc, -0.2, 1.8), "CH3"),
                      Channel("v_r", "V", v_src - v_rl, "CH1 - CH2")], tb, Stimulus("square", 0, 1, 200, "rising"))
     start = {"model": "series_rlc", "r_ohm": R * 1.3, "l_h": L * 0.7, "c_f": C * 1.3}
-    elapsed, result = best_of(REPEATS, lambda: compare(record, start, {"v_c": "v_c", "v_r": "v_src - v_rl"},
-                                                 fit={"free": ["r_ohm", "l_h", "c_f"]}))
+    def fresh_fit():
+        core._NOMINAL_SENSITIVITIES = Memo()  # each run as a first record: nothing remembered from the last
+        return compare(record, start, {"v_c": "v_c", "v_r": "v_src - v_rl"}, fit={"free": ["r_ohm", "l_h", "c_f"]})
+
+    elapsed, result = best_of(REPEATS, fresh_fit)
     f = result.fit
     print(f"3. fit of a {n:.0e}-sample two-channel record (R, L, C free, started 30 % off): {elapsed * 1e3:.1f} ms "
           f"(best of {REPEATS}; {'meets' if elapsed <= 0.010 else 'misses'} the target of at most 10 ms), "

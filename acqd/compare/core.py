@@ -22,8 +22,8 @@ from ..errors import ConfigError
 from ..models import StateSpace, with_sensitivities
 from ..record import TIMING_SETTING, Record
 from .fit import FitResult, Free, fit_parameters
-from .memo import Memo
 from .ieee181 import code_step_of
+from .memo import Memo
 from .metrics import (BASELINE_WARN_SHARE, NRMSE_BASIS, ChannelResult, channel_result, noise_rms, quantisation_rms,
                       record_code_step)
 from .spec import DEFAULT_HOLD, ChannelMap, CompareSpec, Signal, spec_from_parts
@@ -459,13 +459,14 @@ def compare_spec(record: Record, spec: CompareSpec, label: str = "",
                                         lambda: setup.predict(model, edge)))
     spans = np.ptp(predicted, axis=1)
     channels = []
-    for m, unit, meas, sim, span, sample_step in zip(setup.mapping, setup.units, setup.measured, predicted, spans,
-                                                     setup.sample_code_steps):
+    for i, (m, unit, meas, sim, span) in enumerate(zip(setup.mapping, setup.units, setup.measured, predicted,
+                                                       spans)):
         code_step = record_code_step(record, m.channel)
         channels.append(channel_result(m.channel, m.signal.text, unit, m.gain, m.offset, setup.times, meas, sim,
                                        _polarity(model, m.signal, m.gain, edge, span), edge.start_s,
                                        spec.tolerances.settling_band_pct,
-                                       sample_step if code_step is None else code_step, remember=fit is None))
+                                       setup.sample_code_steps[i] if code_step is None else code_step,
+                                       remember=fit is None))
     verdict, notes = judge(channels, fit, spec.tolerances)
     traces = _traces(setup, model, x, predicted, u)
     marked = [m.channel for m in setup.mapping if m.stimulus]

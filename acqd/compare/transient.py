@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import minimize_scalar
 
-from .levmar import levenberg_marquardt
+from .levmar import levenberg_marquardt, solve_positive
 
 MIN_FIT_SAMPLES = 8
 APPROACH_TAU_RANGE = (0.02, 50.0)  # τ searched between these multiples of the first guess
@@ -129,11 +129,10 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
         basis[:, 0] = 1.0
     basis[:, first], basis[:, first + 1] = cos, sin
     gram = basis.T @ basis
-    try:
-        inverse = np.linalg.inv(gram)
-    except np.linalg.LinAlgError:
-        inverse = np.linalg.pinv(gram)
-    coef = inverse @ (basis.T @ y)
+    coef = solve_positive(gram, basis.T @ y)
+    inverse = np.linalg.pinv(gram) if coef is None else None  # collinear columns: the least-norm solution
+    if inverse is not None:
+        coef = inverse @ (basis.T @ y)
     residual = y - basis @ coef
     a, b = coef[-2:]
     moved = np.empty((len(x), 2))  # ∂Φ_k·c, k = σ, ω
@@ -141,7 +140,8 @@ def _projection(x: np.ndarray, y: np.ndarray, p: np.ndarray, with_level: bool
     x_cos_r, x_sin_r = float((x * cos) @ residual), float((x * sin) @ residual)
     lead = [0.0] if with_level else []
     transposed_r = np.array([[*lead, -x_cos_r, -x_sin_r], [*lead, -x_sin_r, x_cos_r]]).T  # ∂Φ_kᵀ·r as columns
-    jac = basis @ (inverse @ (basis.T @ moved - transposed_r)) - moved
+    right = basis.T @ moved - transposed_r
+    jac = basis @ (solve_positive(gram, right) if inverse is None else inverse @ right) - moved
     return coef, residual, jac
 
 

@@ -90,6 +90,9 @@ def run_command(args: argparse.Namespace) -> int:
     return 1 if failed else 0
 
 
+RUN_WORKER_NICENESS = 0  # added to the run's own niceness: the same priority as the run
+
+
 @contextmanager
 def _comparator(profile: Profile, judge: Judge | None, count: int) -> Iterator[Judge | None]:
     """Where a run's records are compared: for more than one record, in a worker process like the
@@ -101,12 +104,15 @@ def _comparator(profile: Profile, judge: Judge | None, count: int) -> Iterator[J
     them, so on two cores the two halves of the pipeline ran mostly one after the other. In a process of
     its own the fit takes the other core. One record has nothing to overlap and would only wait for the
     worker's start. The worker's judge keeps its own warm start, record after record, as the judge here
-    would, so the analyses are the same.
+    would, so the analyses are the same. It runs at the run's own priority (``RUN_WORKER_NICENESS``), not
+    the daemon's nice 19: a run's pipeline is one step test deep, so the capture waits for the fit
+    anyway, and at nice 19 any other job on the machine took the fit's core (measured: slower than
+    comparing in the thread, at a load average of 1–2 from other jobs).
     """
     if judge is None or count < 2:
         yield judge
         return
-    worker = ComparatorProcess(profile)
+    worker = ComparatorProcess(profile, niceness=RUN_WORKER_NICENESS)
     try:
         yield worker
     finally:
@@ -185,7 +191,8 @@ def _reach_again(bench: Bench, out: Console) -> str:
 
 
 class _Keeper:
-    """Compares and stores a step test's records on one worker thread while the next step test captures.
+    """Compares and stores a step test's records on one worker thread while the next step test captures
+    (comparing there means waiting for the comparator's process when the run has one, see ``_comparator``).
 
     The pipeline is one step test deep: ``keep`` first waits until the previous step test's records are
     durable (their lines printed), so at most one step test's records are not yet stored, they are stored

@@ -5,7 +5,8 @@
 1. ``acqd run`` of the demo profile (15,000 samples × 3 inputs on the embedded simulated bench, the
    three-parameter fit on every record, the store with fsync) for ``--short`` and ``--long`` records; the
    time per record is the slope (t_long − t_short) / (long − short), so start-up (imports, opening the
-   bench, the store) cancels.
+   bench, the store) cancels. With it, the CPU time per record of acqd's process and of the run's
+   comparator worker (their slopes too), which the machine's load does not stretch.
 2. The hand-written loop on a simulated bench of the same [bench.simulated] table, the way pyvisa's
    documentation shows it: a ResourceManager, ``open_resource`` with line terminations, ``write`` for
    settings and ``query``/``query_ascii_values`` for replies. It sets up once, then per record ``INITiate``,

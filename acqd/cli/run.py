@@ -77,6 +77,8 @@ def run_command(args: argparse.Namespace) -> int:
     with sigterm_raises(), _comparator(profile, judge, args.count) as judge, open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         _open_switch(bench, screen)
+        if isinstance(judge, ComparatorProcess):  # as the daemon does: the worker's start belongs to the run's
+            judge.wait_ready()                    # start-up, not to a stall after its first record
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \

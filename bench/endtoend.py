@@ -5,7 +5,8 @@
 1. ``acqd run`` of the demo profile (15,000 samples × 3 inputs on the embedded simulated bench, the
    three-parameter fit on every record, the store with fsync) for ``--short`` and ``--long`` records; the
    time per record is the slope (t_long − t_short) / (long − short), so start-up (imports, opening the
-   bench, the store) cancels.
+   bench, the store) cancels. With it, the CPU time per record of acqd's process and of the run's
+   comparator worker (their slopes too), which the machine's load does not stretch.
 2. The hand-written loop on a simulated bench of the same [bench.simulated] table, the way pyvisa's
    documentation shows it: a ResourceManager, ``open_resource`` with line terminations, ``write`` for
    settings and ``query``/``query_ascii_values`` for replies. It sets up once, then per record ``INITiate``,
@@ -35,6 +36,7 @@ import contextlib
 import csv
 import io
 import os
+import resource
 import tempfile
 import time
 from dataclasses import replace
@@ -68,15 +70,26 @@ def demo_profile(folder: Path, name: str) -> Path:
     return path
 
 
-def acqd_run_s(folder: Path, count: int) -> float:
+def cpu_s() -> tuple[float, float]:
+    """CPU seconds (user + system) used so far by this process and by its children that have ended."""
+    own, children = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return own.ru_utime + own.ru_stime, children.ru_utime + children.ru_stime
+
+
+def acqd_run_s(folder: Path, count: int) -> tuple[float, float, float]:
+    """Wall seconds of ``acqd run -n count``, and the CPU seconds of this process and of the run's comparator
+    worker (a child, counted once it has ended). CPU time is not stretched by other jobs' load, so it says
+    what each process would need of a core of its own."""
     path = demo_profile(folder, f"run{count}")
+    cpu_before = cpu_s()
     start = time.perf_counter()
     with contextlib.redirect_stdout(io.StringIO()):
         status = main(["run", str(path), "-n", str(count)])
     elapsed = time.perf_counter() - start
     if status != 0:
         raise SystemExit(f"acqd run -n {count} ended with status {status}")
-    return elapsed
+    own, worker = (after - before for after, before in zip(cpu_s(), cpu_before))
+    return elapsed, own, worker
 
 
 def hand_loop_s(profile: Profile, folder: Path, count: int) -> float:
@@ -232,7 +245,7 @@ def main_bench() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         profile = load_profile(demo_profile(folder, "demo"))
-        acqd_short, acqd_long = acqd_run_s(folder, args.short), acqd_run_s(folder, args.long)
+        (acqd_short, *cpu_short), (acqd_long, *cpu_long) = acqd_run_s(folder, args.short), acqd_run_s(folder, args.long)
         hand_short = hand_loop_s(profile, folder, args.hand_short)
         hand_long = hand_loop_s(profile, folder, args.hand_long)
         parts, record = breakdown(profile, folder, args.short)
@@ -244,6 +257,9 @@ def main_bench() -> None:
     hand_per = (hand_long - hand_short) / (args.hand_long - args.hand_short)
     print(f"acqd run          {acqd_per * 1e3:8.1f} ms per record  (-n {args.short}: {acqd_short:.2f} s, "
           f"-n {args.long}: {acqd_long:.2f} s)")
+    own_cpu, worker_cpu = ((b - a) / (args.long - args.short) for a, b in zip(cpu_short, cpu_long))
+    print(f"                  CPU per record: {own_cpu * 1e3:.1f} ms in acqd's process, {worker_cpu * 1e3:.1f} ms "
+          f"in its comparator worker (each needs a core of its own to keep pace)")
     print(f"hand pyvisa loop  {hand_per * 1e3:8.1f} ms per record  ({args.hand_short}: {hand_short:.2f} s, "
           f"{args.hand_long}: {hand_long:.2f} s)")
     print(f"ratio             {hand_per / acqd_per:8.1f} ×  (target ≥ 20 ×)")

@@ -53,12 +53,12 @@ class ComparatorFailed(AcqdError):
     """The comparator raised, hung or died on one record, or its worker did not start; the text says why."""
 
 
-def _serve(conn: Connection, profile: Profile) -> None:
+def _serve(conn: Connection, profile: Profile, niceness: int = WORKER_NICENESS) -> None:
     """Worker process: say ready, then judge each record received, answering ("ok", analysis) or
     ("error", text)."""
     for sig in STOP_SIGNALS:
         signal.signal(sig, signal.SIG_IGN)
-    os.nice(WORKER_NICENESS)
+    os.nice(niceness)
     judge = batch_judge(profile)
     try:
         conn.send(READY)
@@ -76,8 +76,8 @@ class ComparatorProcess:
     """Callable like the judge it wraps (record → analysis dict), but run in a worker process that is
     started at once (its imports overlap the bench opening) and again after a crash or a hang."""
 
-    def __init__(self, profile: Profile, timeout_s: float = COMPARE_TIMEOUT_S) -> None:
-        self.profile, self.timeout_s = profile, timeout_s
+    def __init__(self, profile: Profile, timeout_s: float = COMPARE_TIMEOUT_S, niceness: int = WORKER_NICENESS) -> None:
+        self.profile, self.timeout_s, self.niceness = profile, timeout_s, niceness
         self.restarts = 0
         self._context = multiprocessing.get_context("spawn")  # fork is unsafe once the daemon has threads
         self._process: Any = None
@@ -93,7 +93,7 @@ class ComparatorProcess:
 
     def _start(self) -> None:
         parent, child = self._context.Pipe()
-        process = self._context.Process(target=_serve, args=(child, self.profile), name="acqd-comparator",
+        process = self._context.Process(target=_serve, args=(child, self.profile, self.niceness), name="acqd-comparator",
                                         daemon=True)
         try:
             process.start()

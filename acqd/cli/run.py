@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import signal
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import contextmanager
 from pathlib import Path
@@ -20,7 +20,8 @@ from .. import scpi
 from ..batch import open_left_closed, run_batch, summarise, unit_judges
 from ..benchsession import Bench, Replay, open_bench
 from ..errors import AcqdError, ConfigError, InstrumentError
-from ..judge import make_judge
+from ..campaign.comparing import ComparatorProcess
+from ..judge import Judge, make_judge
 from ..plan import ready_profile
 from ..display import label, si
 from ..profile import Profile
@@ -73,9 +74,11 @@ def run_command(args: argparse.Namespace) -> int:
     out = _store_path(args, profile)
     screen = console(soft_wrap=True)
     replay = Replay(args.replay, args.records) if args.replay is not None else None
-    with sigterm_raises(), open_bench(profile, replay) as bench:
+    with sigterm_raises(), _comparator(profile, judge, args.count) as judge, open_bench(profile, replay) as bench:
         check_limits(profile, bench.generator)
         _open_switch(bench, screen)
+        if isinstance(judge, ComparatorProcess):  # as the daemon does: the worker's start belongs to the run's
+            judge.wait_ready()                    # start-up, not to a stall after its first record
         if replay is None:  # after every check of the profile and the bench, before any output is driven;
             screen.print(Text(SAFETY_NOTE))  # a replay drives none: the caution would teach people to skip it
         with RecordStore(out, fsync=profile.output.fsync, rotate_records=profile.output.rotate_records) as store, \
@@ -87,6 +90,35 @@ def run_command(args: argparse.Namespace) -> int:
     if aborted:
         raise InstrumentError("acqd run", aborted)
     return 1 if failed else 0
+
+
+RUN_WORKER_NICENESS = 0  # added to the run's own niceness: the same priority as the run
+
+
+@contextmanager
+def _comparator(profile: Profile, judge: Judge | None, count: int) -> Iterator[Judge | None]:
+    """Where a run's records are compared: for more than one record, in a worker process like the
+    daemon's (``campaign.comparing``), started now so its imports overlap the bench opening; for one
+    record, or with nothing to compare, here.
+
+    Why a process: in the keeper's thread the fit holds the interpreter lock in bursts, and the step test
+    beside it — this process's client and, on the simulated bench, the instruments' own work — waits for
+    them, so on two cores the two halves of the pipeline ran mostly one after the other. In a process of
+    its own the fit takes the other core. One record has nothing to overlap and would only wait for the
+    worker's start. The worker's judge keeps its own warm start, record after record, as the judge here
+    would, so the analyses are the same. It runs at the run's own priority (``RUN_WORKER_NICENESS``), not
+    the daemon's nice 19: a run's pipeline is one step test deep, so the capture waits for the fit
+    anyway, and at nice 19 any other job on the machine took the fit's core (measured: slower than
+    comparing in the thread, at a load average of 1–2 from other jobs).
+    """
+    if judge is None or count < 2:
+        yield judge
+        return
+    worker = ComparatorProcess(profile, niceness=RUN_WORKER_NICENESS)
+    try:
+        yield worker
+    finally:
+        worker.close()
 
 
 def _store_path(args: argparse.Namespace, profile: Profile) -> Path:
@@ -161,7 +193,8 @@ def _reach_again(bench: Bench, out: Console) -> str:
 
 
 class _Keeper:
-    """Compares and stores a step test's records on one worker thread while the next step test captures.
+    """Compares and stores a step test's records on one worker thread while the next step test captures
+    (comparing there means waiting for the comparator's process when the run has one, see ``_comparator``).
 
     The pipeline is one step test deep: ``keep`` first waits until the previous step test's records are
     durable (their lines printed), so at most one step test's records are not yet stored, they are stored
@@ -169,7 +202,7 @@ class _Keeper:
     whatever ended the run (an interrupt included): a captured record is never dropped.
     """
 
-    def __init__(self, judge: Callable[[Record], dict[str, Any]] | None, store: RecordStore,
+    def __init__(self, judge: Judge | None, store: RecordStore,
                  console: Console) -> None:
         self._judge, self._store, self._console = judge, store, console
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="acqd-keeper")
@@ -268,7 +301,7 @@ def _unit(spreads: list[Any], name: str) -> str:
     return next((s.unit for s in spreads if s.parameter == name), "")
 
 
-def _judged(judge: Callable[[Record], dict[str, Any]] | None, record: Record,
+def _judged(judge: Judge | None, record: Record,
             console: Console) -> dict[str, Any] | None:
     """The comparator's result; a comparator failure is reported but never costs the record itself."""
     if judge is None:

@@ -134,9 +134,11 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     if len(u) < 2:
         return x
     starts_, ends_ = u[:-1], ends[1:]  # interval k is driven from starts_[k] to ends_[k]
-    flags = _change_flags(starts_)
-    if disc.B1.any():
-        flags |= _change_flags(ends_)
+    u_changes = _row_changes(u)
+    flags = u_changes[:-1]  # flags[k−1]: interval k's drive differs from interval k−1's
+    if disc.B1.any():  # a first-order hold: the drive changes where either end does
+        end_changes = u_changes if u_left is None else _row_changes(ends)
+        flags = flags | end_changes[1:]
     changes = np.flatnonzero(flags) + 1
     if len(changes) > MAX_CONSTANT_RUNS:
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
@@ -147,12 +149,14 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     return x
 
 
-def _change_flags(v: np.ndarray) -> np.ndarray:
-    """flags[k−1] is True where row k differs from row k−1 (one pass per input column)."""
-    flags = np.zeros(max(len(v) - 1, 0), dtype=bool)
-    for column in v.T:
-        flags |= column[1:] != column[:-1]
-    return flags
+def _row_changes(v: np.ndarray) -> np.ndarray:
+    """changes[k] is True where row k+1 of ``v`` differs from row k (one pass per column)."""
+    if v.shape[1] == 0:
+        return np.zeros(len(v) - 1, dtype=bool)
+    changes = v[1:, 0] != v[:-1, 0]
+    for column in v.T[1:]:
+        changes |= column[1:] != column[:-1]
+    return changes
 
 
 MAX_CONSTANT_RUNS = 16  # more runs than this: a sampled input, for the general recursion
@@ -164,10 +168,13 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
     ``out`` is not one contiguous block), for the general recursion to do instead.
 
     With B = ⌈√N⌉, x[jB + k] = Ad^k · s_j + x_ss where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
-    N/B block starts (both by repeated doubling, so a few dozen small products), then one
+    N/B block starts (both by repeated doubling, so a few dozen small products), then the
     (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes the states of every whole block in
     sample order straight into ``out`` (a second, small product the last part-block). For a long record
-    that product is the whole cost: one pass of writing the states.
+    that product is the whole cost: one pass of writing the states. It runs a few block rows at a time
+    (``_BYTES_PER_PRODUCT`` of states each) because the BLAS first clears its output and then adds to it:
+    on one product of the whole length that is two passes through memory, on a part that stays in the
+    core's cache one.
     """
     n_samples, n = out.shape
     eye = np.eye(n)
@@ -175,9 +182,10 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
         return False  # (the product below writes through a reshaped view of ``out``)
     x_ss = np.linalg.solve(eye - ad, d)
     block = int(np.ceil(np.sqrt(n_samples)))
-    powers = _powers(ad, block)  # Ad^0 .. Ad^(B-1)
+    powers = _right_powers(eye, ad, block)  # Ad^0 .. Ad^(B-1)
     starts = np.empty((-(-n_samples // block), n + 1))
-    starts[:, :n] = _powers(powers[-1] @ ad, len(starts)) @ (out[0] - x_ss)
+    # s_j as rows: s_j^T = (x[0] − x_ss)^T ((Ad^B)^T)^j
+    starts[:, :n] = _right_powers((out[0] - x_ss)[None, :], (powers[-1] @ ad).T, len(starts))[:, 0]
     starts[:, n] = 1.0
     # weights[b, k·n + a] = (Ad^k)[a, b], and the last row x_ss[a], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
     weights = np.empty((n + 1, block * n))
@@ -185,7 +193,11 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
     weights[n] = np.tile(x_ss, block)
     x0 = out[0].copy()
     full = n_samples // block
-    np.matmul(starts[:full], weights, out=out[:full * block].reshape(full, block * n))
+    rows = out[:full * block].reshape(full, block * n)
+    step = max(1, _BYTES_PER_PRODUCT // weights[0].nbytes)
+    for first in range(0, full, step):
+        last = min(first + step, full)
+        np.matmul(starts[first:last], weights, out=rows[first:last])
     rest = n_samples - full * block
     if rest:
         out[full * block:] = (starts[full] @ weights[:, :rest * n]).reshape(rest, n)
@@ -193,18 +205,26 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
     return True
 
 
-def _powers(matrix: np.ndarray, count: int) -> np.ndarray:
-    """matrix^0 .. matrix^(count−1), doubling the filled part each pass (log2(count) batched products)."""
-    n = len(matrix)
-    powers = np.empty((count, n, n))
-    powers[0] = np.eye(n)
-    filled, step = 1, matrix
+_BYTES_PER_PRODUCT = 512 * 1024  # of states written by one product in ``_constant_run``: well inside a core's L2
+
+
+def _right_powers(first: np.ndarray, step: np.ndarray, count: int) -> np.ndarray:
+    """first · step^k for k = 0 .. count−1, shape (count, *first.shape), doubling the filled part each pass.
+
+    Each pass is one 2-D product of all the rows filled so far by step^filled (the items stacked as rows),
+    so log2(count) products in all, where a stack of small products would cost a BLAS call per item.
+    """
+    rows, n = first.shape
+    seq = np.empty((count, rows, n))
+    flat = seq.reshape(count * rows, n)
+    seq[0] = first
+    filled = 1
     while filled < count:
         take = min(filled, count - filled)
-        np.matmul(powers[:take], step, out=powers[filled:filled + take])
+        np.matmul(flat[:take * rows], step, out=flat[filled * rows:(filled + take) * rows])
         filled += take
         step = step @ step
-    return powers
+    return seq
 
 
 def _recursion(ad: np.ndarray, drive: np.ndarray, x0: np.ndarray, out: np.ndarray) -> np.ndarray:

@@ -7,6 +7,7 @@ response with no truncation error, and stepping it is far cheaper than a general
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -144,8 +145,10 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
     for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1
         d = disc.B0 @ starts_[a] + disc.B1 @ ends_[a]
-        if b - a < MIN_CONSTANT_RUN or not _constant_run(disc.Ad, d, x[a:b + 1]):
+        if b - a < MIN_CONSTANT_RUN:
             _recursion(disc.Ad, np.broadcast_to(d, (b - a, len(d))), x[a], x[a:b + 1])
+        else:
+            _constant_run(disc.Ad, d, x[a:b + 1])
     return x
 
 
@@ -163,35 +166,29 @@ MAX_CONSTANT_RUNS = 16  # more runs than this: a sampled input, for the general 
 MIN_CONSTANT_RUN = 64  # shorter runs are cheaper stepped than set up
 
 
-def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
-    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d``; False if Ad has an eigenvalue of 1 (or
-    ``out`` is not one contiguous block), for the general recursion to do instead.
+def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> None:
+    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d`` (``out`` one C-contiguous block).
 
-    With B = ⌈√N⌉, x[jB + k] = Ad^k · s_j + x_ss where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
-    N/B block starts (both by repeated doubling, so a few dozen small products), then the
-    (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes the states of every whole block in
-    sample order straight into ``out`` (a second, small product the last part-block). For a long record
-    that product is the whole cost: one pass of writing the states. It runs a few block rows at a time
-    (``_BYTES_PER_PRODUCT`` of states each) because the BLAS first clears its output and then adds to it:
-    on one product of the whole length that is two passes through memory, on a part that stays in the
-    core's cache one.
+    With the state extended by a constant 1, z = (x, 1), the recursion is z[k+1] = Ā z[k] with
+    Ā = [[Ad, d], [0, 1]], so x[jB + k] = (Ā^k z_j)[:n] where z_j = Ā^{jB} z[0], B = ⌈√N⌉. That needs no
+    equilibrium (an integrator, whose Ad has an eigenvalue 1, has none) and keeps z's last entry exactly 1.
+    B powers of Ā and N/B block starts come by repeated doubling (about log2 N small products); then the
+    (N/B × n+1)·(n+1 × B·n) product writes the states of every whole block in sample order straight into
+    ``out`` (a second, small product the last part-block). For a long record that product is the whole
+    cost. It runs a few block rows at a time (``_BYTES_PER_PRODUCT`` of states each) because the BLAS
+    first clears its output and then adds to it: over the whole length that is two passes through
+    memory, over a part that stays in the core's cache one. Ā^0 is exactly I, so ``out[0]`` comes back
+    unchanged.
     """
     n_samples, n = out.shape
-    eye = np.eye(n)
-    if not out.flags.c_contiguous or np.linalg.cond(eye - ad) > 1e12:
-        return False  # (the product below writes through a reshaped view of ``out``)
-    x_ss = np.linalg.solve(eye - ad, d)
-    block = int(np.ceil(np.sqrt(n_samples)))
-    powers = _right_powers(eye, ad, block)  # Ad^0 .. Ad^(B-1)
-    starts = np.empty((-(-n_samples // block), n + 1))
-    # s_j as rows: s_j^T = (x[0] − x_ss)^T ((Ad^B)^T)^j
-    starts[:, :n] = _right_powers((out[0] - x_ss)[None, :], (powers[-1] @ ad).T, len(starts))[:, 0]
-    starts[:, n] = 1.0
-    # weights[b, k·n + a] = (Ad^k)[a, b], and the last row x_ss[a], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
-    weights = np.empty((n + 1, block * n))
-    weights[:n] = powers.transpose(2, 0, 1).reshape(n, block * n)
-    weights[n] = np.tile(x_ss, block)
-    x0 = out[0].copy()
+    a_bar = np.zeros((n + 1, n + 1))
+    a_bar[:n, :n], a_bar[:n, n], a_bar[n, n] = ad, d, 1.0
+    block = math.isqrt(n_samples - 1) + 1  # ⌈√N⌉
+    powers = _right_powers(np.eye(n + 1), a_bar, block)  # Ā^0 .. Ā^(B-1)
+    z0 = np.append(out[0], 1.0)
+    starts = _right_powers(z0[None, :], (powers[-1] @ a_bar).T, -(-n_samples // block))[:, 0]  # z_j as rows
+    # weights[b, k·n + a] = (Ā^k)[a, b], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
+    weights = powers[:, :n].transpose(2, 0, 1).reshape(n + 1, block * n)
     full = n_samples // block
     rows = out[:full * block].reshape(full, block * n)
     step = max(1, _BYTES_PER_PRODUCT // weights[0].nbytes)
@@ -201,11 +198,9 @@ def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
     rest = n_samples - full * block
     if rest:
         out[full * block:] = (starts[full] @ weights[:, :rest * n]).reshape(rest, n)
-    out[0] = x0  # the product gives x[0] again, rounded; keep the caller's
-    return True
 
 
-_BYTES_PER_PRODUCT = 512 * 1024  # of states written by one product in ``_constant_run``: well inside a core's L2
+_BYTES_PER_PRODUCT = 128 * 1024  # of states written by one product in ``_constant_run``: well inside a core's L2
 
 
 def _right_powers(first: np.ndarray, step: np.ndarray, count: int) -> np.ndarray:

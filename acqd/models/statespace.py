@@ -125,8 +125,10 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     instant): interval k is then driven from ``u[k]`` to ``u_left[k+1]``. Without it the input is continuous.
 
     A step test's input is constant for long runs (before the edge, after it), and there the state has a
-    closed form, x[k] = x_ss + Ad^k (x[0] − x_ss), evaluated for a whole run as one matrix product
-    (``_constant_run``). Any other input goes through the general recursion (``_recursion``).
+    closed form, the powers of one matrix, evaluated for a whole run as one matrix product written
+    straight into the result (``_constant_run``). Any other input goes through the general recursion
+    (``_recursion``). Finding the runs is one comparison of neighbouring input samples: with the product,
+    the only passes over the whole length.
     """
     u = _as_columns(u)
     ends = u if u_left is None else _as_columns(u_left)
@@ -140,7 +142,7 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     if disc.B1.any():  # a first-order hold: the drive changes where either end does
         end_changes = u_changes if u_left is None else _row_changes(ends)
         flags = flags | end_changes[1:]
-    changes = np.flatnonzero(flags) + 1
+    changes = np.flatnonzero(flags) + 1 if flags.any() else []  # (any() is a quicker pass than flatnonzero)
     if len(changes) > MAX_CONSTANT_RUNS:
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
     for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1

@@ -229,3 +229,35 @@ def test_a_million_samples_of_a_step_are_the_recursion_to_its_rounding():
     x, ref = propagate(disc, u, x0), plain_floats(disc, u, x0)
     assert np.all(np.abs(x - ref) <= n * np.finfo(float).eps * np.abs(ref).max(axis=0))
     assert x[0].tolist() == x0.tolist()
+
+
+def test_a_model_without_inputs_decays_freely():
+    # dv/dt = −v/τ with no input: v = v0·e^{−t/τ} (the first-order closed form), over a long run.
+    tau, dt = 1e-3, 1e-6
+    model = StateSpace(np.array([[-1 / tau]]), np.zeros((1, 0)), np.ones((1, 1)), np.zeros((1, 0)), ("v",), (), ("v",))
+    x = propagate(discretise(model, dt, "zoh"), np.zeros((3000, 0)), np.array([2.0]))
+    assert np.max(np.abs(x[:, 0] - 2.0 * np.exp(-np.arange(3000) * dt / tau))) < 1e-12
+
+
+def test_a_left_limit_that_changes_where_the_input_does_not():
+    # u is 1 throughout, but its left limit at sample 300 is 0: over interval 299 the input ramps from 1
+    # down to 0 and jumps back to 1 on sample 300. Only the left limits show that change.
+    disc = discretise(rlc(22.0), 1e-6, "foh")
+    u = np.ones(700)
+    left = u.copy()
+    left[300] = 0.0
+    x0 = np.array([0.3, -2e-3])
+    assert close(propagate(disc, u, x0, left), plain(disc, u, x0, left))
+
+
+@pytest.mark.parametrize("second", [np.random.default_rng(5).normal(size=600),  # sampled noise
+                                    np.r_[np.zeros(100), np.ones(10), np.zeros(490)]])  # a pulse back to 0
+def test_the_second_of_two_inputs_changing_alone(second):
+    # The first input is constant throughout: every change of the drive is in the second column.
+    tau = 1e-3
+    model = StateSpace(np.array([[-2 / tau]]), np.array([[1 / tau, 1 / tau]]), np.ones((1, 1)), np.zeros((1, 2)),
+                       ("v",), ("u1", "u2"), ("v",))
+    u = np.column_stack([np.ones(600), second])
+    for hold in ("zoh", "foh"):
+        disc = discretise(model, 1e-6, hold)
+        assert close(propagate(disc, u, np.zeros(1)), plain(disc, u, np.zeros(1))), hold

@@ -7,6 +7,7 @@ response with no truncation error, and stepping it is far cheaper than a general
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -124,8 +125,10 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     instant): interval k is then driven from ``u[k]`` to ``u_left[k+1]``. Without it the input is continuous.
 
     A step test's input is constant for long runs (before the edge, after it), and there the state has a
-    closed form, x[k] = x_ss + Ad^k (x[0] − x_ss), evaluated for a whole run as one matrix product
-    (``_constant_run``). Any other input goes through the general recursion (``_recursion``).
+    closed form, the powers of one matrix, evaluated for a whole run as one matrix product written
+    straight into the result (``_constant_run``). Any other input goes through the general recursion
+    (``_recursion``). Finding the runs is one comparison of neighbouring input samples: with the product,
+    the only passes over the whole length.
     """
     u = _as_columns(u)
     ends = u if u_left is None else _as_columns(u_left)
@@ -134,77 +137,91 @@ def propagate(disc: Discrete, u: np.ndarray, x0: np.ndarray, u_left: np.ndarray 
     if len(u) < 2:
         return x
     starts_, ends_ = u[:-1], ends[1:]  # interval k is driven from starts_[k] to ends_[k]
-    flags = _change_flags(starts_)
-    if disc.B1.any():
-        flags |= _change_flags(ends_)
-    changes = np.flatnonzero(flags) + 1
+    u_changes = _row_changes(u)
+    flags = u_changes[:-1]  # flags[k−1]: interval k's drive differs from interval k−1's
+    if disc.B1.any():  # a first-order hold: the drive changes where either end does
+        end_changes = u_changes if u_left is None else _row_changes(ends)
+        flags = flags | end_changes[1:]
+    changes = np.flatnonzero(flags) + 1 if flags.any() else []  # (any() is a quicker pass than flatnonzero)
     if len(changes) > MAX_CONSTANT_RUNS:
         return _recursion(disc.Ad, starts_ @ disc.B0.T + ends_ @ disc.B1.T, x[0], x)
     for a, b in zip([0, *changes], [*changes, len(starts_)]):  # the drive is constant over intervals a..b-1
         d = disc.B0 @ starts_[a] + disc.B1 @ ends_[a]
-        if b - a < MIN_CONSTANT_RUN or not _constant_run(disc.Ad, d, x[a:b + 1]):
+        if b - a < MIN_CONSTANT_RUN:
             _recursion(disc.Ad, np.broadcast_to(d, (b - a, len(d))), x[a], x[a:b + 1])
+        else:
+            _constant_run(disc.Ad, d, x[a:b + 1])
     return x
 
 
-def _change_flags(v: np.ndarray) -> np.ndarray:
-    """flags[k−1] is True where row k differs from row k−1 (one pass per input column)."""
-    flags = np.zeros(max(len(v) - 1, 0), dtype=bool)
-    for column in v.T:
-        flags |= column[1:] != column[:-1]
-    return flags
+def _row_changes(v: np.ndarray) -> np.ndarray:
+    """changes[k] is True where row k+1 of ``v`` differs from row k (one pass per column)."""
+    if v.shape[1] == 0:
+        return np.zeros(len(v) - 1, dtype=bool)
+    changes = v[1:, 0] != v[:-1, 0]
+    for column in v.T[1:]:
+        changes |= column[1:] != column[:-1]
+    return changes
 
 
 MAX_CONSTANT_RUNS = 16  # more runs than this: a sampled input, for the general recursion
 MIN_CONSTANT_RUN = 64  # shorter runs are cheaper stepped than set up
 
 
-def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> bool:
-    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d``; False if Ad has an eigenvalue of 1 (or
-    ``out`` is not one contiguous block), for the general recursion to do instead.
+def _constant_run(ad: np.ndarray, d: np.ndarray, out: np.ndarray) -> None:
+    """Fill ``out[1:]`` from ``out[0]`` for a constant drive ``d`` (``out`` one C-contiguous block).
 
-    With B = ⌈√N⌉, x[jB + k] = Ad^k · s_j + x_ss where s_j = Ad^{jB}(x[0] − x_ss): B small powers and
-    N/B block starts (both by repeated doubling, so a few dozen small products), then one
-    (N/B × n+1)·(n+1 × B·n) product - the last row adds x_ss - writes the states of every whole block in
-    sample order straight into ``out`` (a second, small product the last part-block). For a long record
-    that product is the whole cost: one pass of writing the states.
+    With the state extended by a constant 1, z = (x, 1), the recursion is z[k+1] = Ā z[k] with
+    Ā = [[Ad, d], [0, 1]], so x[jB + k] = (Ā^k z_j)[:n] where z_j = Ā^{jB} z[0], B = ⌈√N⌉. That needs no
+    equilibrium (an integrator, whose Ad has an eigenvalue 1, has none) and keeps z's last entry exactly 1.
+    B powers of Ā and N/B block starts come by repeated doubling (about log2 N small products); then the
+    (N/B × n+1)·(n+1 × B·n) product writes the states of every whole block in sample order straight into
+    ``out`` (a second, small product the last part-block). For a long record that product is the whole
+    cost. It runs a few block rows at a time (``_BYTES_PER_PRODUCT`` of states each) because the BLAS
+    first clears its output and then adds to it: over the whole length that is two passes through
+    memory, over a part that stays in the core's cache one. Ā^0 is exactly I, so ``out[0]`` comes back
+    unchanged.
     """
     n_samples, n = out.shape
-    eye = np.eye(n)
-    if not out.flags.c_contiguous or np.linalg.cond(eye - ad) > 1e12:
-        return False  # (the product below writes through a reshaped view of ``out``)
-    x_ss = np.linalg.solve(eye - ad, d)
-    block = int(np.ceil(np.sqrt(n_samples)))
-    powers = _powers(ad, block)  # Ad^0 .. Ad^(B-1)
-    starts = np.empty((-(-n_samples // block), n + 1))
-    starts[:, :n] = _powers(powers[-1] @ ad, len(starts)) @ (out[0] - x_ss)
-    starts[:, n] = 1.0
-    # weights[b, k·n + a] = (Ad^k)[a, b], and the last row x_ss[a], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
-    weights = np.empty((n + 1, block * n))
-    weights[:n] = powers.transpose(2, 0, 1).reshape(n, block * n)
-    weights[n] = np.tile(x_ss, block)
-    x0 = out[0].copy()
+    a_bar = np.zeros((n + 1, n + 1))
+    a_bar[:n, :n], a_bar[:n, n], a_bar[n, n] = ad, d, 1.0
+    block = math.isqrt(n_samples - 1) + 1  # ⌈√N⌉
+    powers = _right_powers(np.eye(n + 1), a_bar, block)  # Ā^0 .. Ā^(B-1)
+    z0 = np.append(out[0], 1.0)
+    starts = _right_powers(z0[None, :], (powers[-1] @ a_bar).T, -(-n_samples // block))[:, 0]  # z_j as rows
+    # weights[b, k·n + a] = (Ā^k)[a, b], so (starts @ weights)[j, k·n + a] = x[jB + k, a]
+    weights = powers[:, :n].transpose(2, 0, 1).reshape(n + 1, block * n)
     full = n_samples // block
-    np.matmul(starts[:full], weights, out=out[:full * block].reshape(full, block * n))
+    rows = out[:full * block].reshape(full, block * n)
+    step = max(1, _BYTES_PER_PRODUCT // weights[0].nbytes)
+    for first in range(0, full, step):
+        last = min(first + step, full)
+        np.matmul(starts[first:last], weights, out=rows[first:last])
     rest = n_samples - full * block
     if rest:
         out[full * block:] = (starts[full] @ weights[:, :rest * n]).reshape(rest, n)
-    out[0] = x0  # the product gives x[0] again, rounded; keep the caller's
-    return True
 
 
-def _powers(matrix: np.ndarray, count: int) -> np.ndarray:
-    """matrix^0 .. matrix^(count−1), doubling the filled part each pass (log2(count) batched products)."""
-    n = len(matrix)
-    powers = np.empty((count, n, n))
-    powers[0] = np.eye(n)
-    filled, step = 1, matrix
+_BYTES_PER_PRODUCT = 128 * 1024  # of states written by one product in ``_constant_run``: well inside a core's L2
+
+
+def _right_powers(first: np.ndarray, step: np.ndarray, count: int) -> np.ndarray:
+    """first · step^k for k = 0 .. count−1, shape (count, *first.shape), doubling the filled part each pass.
+
+    Each pass is one 2-D product of all the rows filled so far by step^filled (the items stacked as rows),
+    so log2(count) products in all, where a stack of small products would cost a BLAS call per item.
+    """
+    rows, n = first.shape
+    seq = np.empty((count, rows, n))
+    flat = seq.reshape(count * rows, n)
+    seq[0] = first
+    filled = 1
     while filled < count:
         take = min(filled, count - filled)
-        np.matmul(powers[:take], step, out=powers[filled:filled + take])
+        np.matmul(flat[:take * rows], step, out=flat[filled * rows:(filled + take) * rows])
         filled += take
         step = step @ step
-    return powers
+    return seq
 
 
 def _recursion(ad: np.ndarray, drive: np.ndarray, x0: np.ndarray, out: np.ndarray) -> np.ndarray:

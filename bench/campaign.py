@@ -15,7 +15,10 @@ pointing at the child's servers.
    processes on a shared machine come and go: ratios of neighbours in time are what stays comparable.
 2. a long campaign of ``--slots`` slots (with the comparator) between two more bare blocks, for memory:
    the resident set size (``VmRSS`` of /proc/PID/status) of the daemon's process plus its comparator
-   worker, read as slot 1 and the last slot end, and the worker's alone.
+   worker, read as slot 1 and the last slot end, and the worker's alone. For a slot time that grows with
+   the campaign (a query over every slot so far), the median slot time of its first and last
+   ``WINDOW_SLOTS`` slots, and the CPU time of the daemon's own process per slot in each: CPU time is
+   what other processes on a shared machine disturb least.
 3. what the daemon adds, each part timed on its own: comparing (the comparator on records of the bench,
    in the daemon's process and through the worker process as the keeper waits for it), storing
    (``RecordStore.append`` with the profile's fsync), logging (one slot's run-log lines and ledger
@@ -42,6 +45,7 @@ import statistics
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import Any
@@ -170,15 +174,32 @@ def per_call_s(func: Any, repeats: int) -> float:
     return (time.perf_counter() - started) / repeats
 
 
+WINDOW_SLOTS = 200  # the long campaign's first and last slots compared
+
+
 class MeasuredDaemon(Daemon):
-    """The daemon, also noting the resident set size as each slot ends (from its own run-log events)."""
+    """The daemon, also noting the resident set size as the first and last slot end, and its process's CPU
+    time at the edges of the first and last ``WINDOW_SLOTS`` (from its own run-log events)."""
 
     rss_at_slot: dict[int, tuple[float, float]]
+    cpu_at_slot: dict[int, float]
     last_slot: int
 
     def _echo(self, entry: dict[str, Any]) -> None:
-        if entry["event"] == "slot_done" and entry["slot"] in (1, self.last_slot):
-            self.rss_at_slot[entry["slot"]] = daemon_rss_mb()
+        if entry["event"] != "slot_done":
+            return
+        slot = entry["slot"]
+        if slot in (1, self.last_slot):
+            self.rss_at_slot[slot] = daemon_rss_mb()
+        if slot in window_edges(self.last_slot):
+            self.cpu_at_slot[slot] = time.process_time()
+
+
+def window_edges(slots: int) -> tuple[int, ...]:
+    """Slots whose end opens or closes the first and last window (none in a campaign too short for two)."""
+    if slots < 2 * WINDOW_SLOTS + 1:
+        return ()
+    return 1, WINDOW_SLOTS + 1, slots - WINDOW_SLOTS, slots
 
 
 def main() -> int:
@@ -236,8 +257,8 @@ def measure(args: argparse.Namespace, bench_table: str, where: str) -> int:
     overheads: dict[str, list[float]] = {"compared": [], "nothing": []}
     for n in range(1, args.rounds + 1):
         parts = {"bare": lambda: bare_block(profile, args.bare),
-                 "compared": lambda: run_daemon(short[0], work / f"round{n}-compared", args.round_slots)[0],
-                 "nothing": lambda: run_daemon(short[1], work / f"round{n}-nothing", args.round_slots)[0]}
+                 "compared": lambda: run_daemon(short[0], work / f"round{n}-compared", args.round_slots).slot_s,
+                 "nothing": lambda: run_daemon(short[1], work / f"round{n}-nothing", args.round_slots).slot_s}
         order = list(parts) if n % 2 else list(reversed(parts))
         t = {name: parts[name]() for name in order}
         for name in overheads:
@@ -250,11 +271,13 @@ def measure(args: argparse.Namespace, bench_table: str, where: str) -> int:
               f"(rounds {100 * min(o):+.1f} .. {100 * max(o):+.1f} %; target at most 5 %)")
 
     before = bare_block(profile, args.bare)
-    slot_s, rss = run_daemon(long_compared, work / "long", args.slots)
+    daemon = run_daemon(long_compared, work / "long", args.slots)
     after = bare_block(profile, args.bare)
     bare_s = statistics.median([before, after])
+    slot_s, rss = daemon.slot_s, daemon.rss_at_slot
     print(f"long campaign, {args.slots} slots with the comparator: {1e3 * slot_s:.2f} ms per slot against "
           f"{1e3 * before:.2f} / {1e3 * after:.2f} ms bare before / after: overhead {100 * (slot_s / bare_s - 1):.1f} %")
+    print_windows(daemon)
     if 1 in rss and args.slots in rss:  # (run_daemon has already asserted that every slot is done)
         (first, first_worker), (last, last_worker) = rss[1], rss[args.slots]
         print(f"   RSS of the daemon + its comparator worker at slot 1: {first:.1f} MB, at slot {args.slots}: "
@@ -263,6 +286,22 @@ def measure(args: argparse.Namespace, bench_table: str, where: str) -> int:
               f"{args.slots}")
     print_parts(work, profile, bare_s)
     return 0
+
+
+def print_windows(daemon: DaemonRun) -> None:
+    """The first and last ``WINDOW_SLOTS`` slots of a long campaign side by side: a slot time that grows
+    with the campaign shows as a ratio over 1 in both wall and CPU time."""
+    edges = window_edges(len(daemon.gaps_s) + 1)
+    if not edges or any(e not in daemon.cpu_at_slot for e in edges):
+        return
+    first_wall = statistics.median(daemon.gaps_s[:WINDOW_SLOTS])
+    last_wall = statistics.median(daemon.gaps_s[-WINDOW_SLOTS:])
+    cpu = daemon.cpu_at_slot
+    first_cpu = (cpu[edges[1]] - cpu[edges[0]]) / WINDOW_SLOTS
+    last_cpu = (cpu[edges[3]] - cpu[edges[2]]) / WINDOW_SLOTS
+    print(f"   first / last {WINDOW_SLOTS} slots: {1e3 * first_wall:.2f} / {1e3 * last_wall:.2f} ms per slot "
+          f"(x{last_wall / first_wall:.2f}); CPU time of the daemon's process {1e3 * first_cpu:.2f} / "
+          f"{1e3 * last_cpu:.2f} ms per slot (x{last_cpu / first_cpu:.2f})")
 
 
 def print_parts(work: Path, profile: Any, bare_s: float) -> None:
@@ -291,18 +330,28 @@ def print_parts(work: Path, profile: Any, bare_s: float) -> None:
         print(f"{name:44s} {1e3 * part:8.2f} ms   {100 * part / bare_s:5.1f} %")
 
 
-def run_daemon(profile: Path, data: Path, slots: int) -> tuple[float, dict[int, tuple[float, float]]]:
-    """(median time from one slot's start to the next one's, RSS in MB at slot 1 and the last slot: the
-    daemon with its worker, and the worker alone)."""
+@dataclass(frozen=True)
+class DaemonRun:
+    gaps_s: list[float]  # from each slot's start to the next one's, from the ledger
+    rss_at_slot: dict[int, tuple[float, float]]  # MB at slot 1 and the last: daemon with its worker, worker alone
+    cpu_at_slot: dict[int, float]  # the daemon process's CPU time at the window edges
+
+    @property
+    def slot_s(self) -> float:
+        return statistics.median(self.gaps_s)
+
+
+def run_daemon(profile: Path, data: Path, slots: int) -> DaemonRun:
     daemon = MeasuredDaemon([profile], data, Console(file=open(os.devnull, "w")), live=False)
-    daemon.rss_at_slot, daemon.last_slot = {}, slots
+    daemon.rss_at_slot, daemon.cpu_at_slot, daemon.last_slot = {}, {}, slots
     daemon.run()
     ledger = Ledger(data / FILENAME)
     rows = ledger.slots("bench")
     ledger.close()
     assert len(rows) == slots and all(r.state == "done" for r in rows), "every slot should be done"
     starts = [datetime.fromisoformat(r.started_utc) for r in rows]
-    return statistics.median((b - a).total_seconds() for a, b in zip(starts, starts[1:])), daemon.rss_at_slot
+    return DaemonRun([(b - a).total_seconds() for a, b in zip(starts, starts[1:])], daemon.rss_at_slot,
+                     daemon.cpu_at_slot)
 
 
 def _one_slot_of_logging(directory: Path) -> Any:

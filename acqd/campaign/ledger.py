@@ -146,9 +146,13 @@ class Ledger:
 
     def running_slots(self, campaign: str) -> list[SlotRow]:
         """Slots begun and not ended, oldest first: after a kill there can be two (the keeper may not have
-        booked the end of the slot before the one the runner was in)."""
+        booked the end of the slot before the one the runner was in).
+
+        The runner asks before every slot, so this must not grow with the campaign: ``+slot`` keeps SQLite
+        from walking the primary key (campaign, slot) - every slot the campaign ever had - to save sorting
+        the one or two rows that ``acqd_slots_by_state`` finds (0.4 ms a query at 2,000 slots, 0.01 ms)."""
         return [SlotRow(*r) for r in self._read("SELECT * FROM acqd_slots WHERE campaign = ? AND state = 'running' "
-                                                 "ORDER BY slot", (campaign,))]
+                                                 "ORDER BY +slot", (campaign,))]
 
     def slots(self, campaign: str) -> list[SlotRow]:
         return [SlotRow(*r) for r in self._read("SELECT * FROM acqd_slots WHERE campaign = ? ORDER BY slot",

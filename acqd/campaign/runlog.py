@@ -46,7 +46,8 @@ class RunLog:
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         self.listeners: list[Listener] = []
-        self._lock = threading.Lock()
+        self._lock = threading.Lock()  # one line at a time
+        self._sync_lock = threading.Lock()  # one fsync at a time, and none while the file closes
         self._synced = -math.inf
         try:
             self._file = open(self.path, "a+", encoding="utf-8")
@@ -75,17 +76,21 @@ class RunLog:
 
     def sync(self, at_most_every_s: float = 0.0) -> None:
         """Make every line so far survive a power cut, not only a kill; with ``at_most_every_s``, only if
-        the last sync is that long ago (a fast campaign need not pay an fsync per slot)."""
-        with self._lock:
+        the last sync is that long ago (a fast campaign need not pay an fsync per slot).
+
+        The fsync runs outside the writers' lock: it takes milliseconds (tens on a busy disk), and the
+        acquiring thread's next line would wait for it in the middle of a slot."""
+        with self._sync_lock:
             now = time.monotonic()
             if now - self._synced < at_most_every_s:
                 return
-            self._file.flush()
+            with self._lock:
+                self._file.flush()
             os.fsync(self._file.fileno())
             self._synced = now
 
     def close(self) -> None:
-        with self._lock:
+        with self._sync_lock, self._lock:
             if not self._file.closed:
                 self._file.flush()
                 os.fsync(self._file.fileno())

@@ -16,8 +16,9 @@ import math
 import numpy as np
 import pytest
 
-from acqd.compare.ieee181 import StepError, code_step_of, histogram_levels, step_parameters
+from acqd.compare.ieee181 import StepError, _crossing_seeds, _lobes, code_step_of, histogram_levels, step_parameters
 from test_compare_ieee181 import first_order, second_order_unit
+from test_compare_synthetic import quantise_8bit
 
 WN = 2 * np.pi * 1e3
 
@@ -114,3 +115,59 @@ def test_every_refusal_says_what_is_missing(y, polarity, reason):
     t = np.arange(len(y)) * 1e-6
     with pytest.raises(StepError, match=reason):
         step_parameters(t, y, polarity)
+
+
+def test_the_crossing_seeds_of_a_textbook_ringing_are_its_omega_d_and_sigma():
+    # y − 1 = −(ω_n/ω_d)·e^{−σt}·cos(ω_d t − φ), φ = atan(σ/ω_d) (Nise §4.6 rearranged): the crossings of the
+    # final level are exactly π/ω_d apart and the k-th lobe's extremum, at kπ/ω_d, is e^{−σkπ/ω_d} high, so
+    # the slope of crossing instant against crossing number is π/ω_d and that of ln(lobe height) against
+    # the lobes' mid-times −σ. 100 samples a period, crossings interpolated linearly between samples.
+    zeta = 0.1
+    wd, sigma = WN * math.sqrt(1 - zeta**2), zeta * WN
+    t = np.arange(0, 6e-3, 1e-5)
+    y = second_order_unit(t, zeta, WN)
+    outside, flips = _lobes(y, 1.0, 0.01)
+    # lobes beyond ±1 %: every extremum kπ/ω_d inside the record (heights e^{−kπζ/√(1−ζ²)} ≥ 3 % up to 5.5
+    # ms), and the twelfth, already past the band when the record ends before its extremum
+    assert len(flips) == 12
+    omega, decay = _crossing_seeds(t, y, 1.0, outside, flips)
+    assert omega == pytest.approx(wd, rel=1e-6) and decay == pytest.approx(sigma, rel=1e-4)
+
+
+@pytest.mark.parametrize("zeta, lobes", [(0.3, 4), (0.5, 2)])
+def test_the_lobes_counted_are_the_extrema_beyond_one_percent(zeta, lobes):
+    # Lobe k of the textbook step stands e^{−kπζ/√(1−ζ²)} from the final level (Nise §4.6): at ζ = 0.3
+    # 37.2, 13.8, 5.1, 1.9 and then 0.71 %, four beyond the ±1 % band (noise-free, unquantised: the band is
+    # 1 % of the step); at ζ = 0.5 16.3, 2.7 and then 0.43 %, two, too few for a ringing frequency.
+    t = np.arange(-4000, 60000) * 0.5e-6
+    p = step_parameters(t, second_order_unit(t, zeta, WN))
+    assert p.ringing_lobes == lobes
+    assert "beyond ±1 % of the step around the final level" in p.ringing_method
+    if lobes < 3:
+        assert p.ringing_method.startswith(f"undefined: {lobes} lobe(s) of ringing") and p.damped_frequency_hz is None
+    else:
+        assert f"between {lobes} lobes" in p.ringing_method and p.damped_frequency_hz is not None
+
+
+def test_a_maximum_within_one_code_of_the_final_level_is_not_overshoot():
+    # An 8-bit record of a first-order step (no overshoot: 1 − e^{−t/τ} never passes 1) with 0.2 % noise and
+    # no noise estimate given: the rounding puts samples a code above the final level, and their running
+    # mean stands a fraction of a code above it. One code is the finest step the record can show, so that
+    # is no overshoot; told a finer resolution than the record has, the same samples do show a maximum.
+    t = np.arange(-2000, 20000) * 1e-6
+    y = quantise_8bit(first_order(t, 1e-3) + np.random.default_rng(0).normal(0, 0.002, len(t)), -0.15, 1.15)
+    p = step_parameters(t, y)
+    assert p.code_step == pytest.approx(1.3 / 256, rel=1e-9)
+    assert (p.overshoot_pct, p.peak_time_s, p.peak_value) == (0.0, None, None)
+    assert step_parameters(t, y, code_step=1e-9).overshoot_pct > 0  # the floor was the code, not the noise
+
+
+def test_a_bump_below_a_ten_thousandth_of_the_step_is_not_overshoot():
+    # A 2 V first-order step, unquantised and noise-free, with a Gaussian bump 10 ms after the edge: 0.5e-4
+    # of the step is below the 0.01 % floor and shows no peak, 3e-4 of it is a peak there.
+    t = np.arange(-2000, 20000) * 1e-6
+    bump = np.exp(-((t - 10e-3) / 1e-3) ** 2)
+    below = step_parameters(t, first_order(t, 1e-3, 0.0, 2.0) + 2.0 * 0.5e-4 * bump)
+    assert (below.overshoot_pct, below.peak_time_s) == (0.0, None)
+    above = step_parameters(t, first_order(t, 1e-3, 0.0, 2.0) + 2.0 * 3e-4 * bump)
+    assert above.overshoot_pct > 0.01 and above.peak_time_s == pytest.approx(10e-3, abs=0.1e-3)

@@ -171,3 +171,20 @@ def test_a_bump_below_a_ten_thousandth_of_the_step_is_not_overshoot():
     assert (below.overshoot_pct, below.peak_time_s) == (0.0, None)
     above = step_parameters(t, first_order(t, 1e-3, 0.0, 2.0) + 2.0 * 3e-4 * bump)
     assert above.overshoot_pct > 0.01 and above.peak_time_s == pytest.approx(10e-3, abs=0.1e-3)
+
+
+def test_a_lobe_too_short_for_the_lobe_fit_peaks_at_its_largest_sample():
+    # Ten samples a period (ζ = 0.3): the overshoot lobe holds fewer samples than the lobe fit needs, so the
+    # peak is the largest sample (one, not a flat run), at its own instant. The true peak, at t_p = π/ω_d
+    # (Nise §4.6), lies between that sample's neighbours, and no sample exceeds the true
+    # 1 + e^{−ζπ/√(1−ζ²)}.
+    zeta = 0.3
+    dt = 1e-4
+    t = (np.arange(-10, 300) + 0.37) * dt
+    y = second_order_unit(t, zeta, WN)
+    p = step_parameters(t, y)
+    k = int(np.argmax(y))
+    assert (p.peak_time_s, p.peak_value) == (t[k], y[k])
+    assert abs(p.peak_time_s - math.pi / (WN * math.sqrt(1 - zeta**2))) < dt
+    assert p.overshoot_pct == pytest.approx(100 * (y[k] - p.state_after) / p.amplitude, rel=1e-12)
+    assert p.overshoot_pct < 100 * math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2))

@@ -188,3 +188,17 @@ def test_a_lobe_too_short_for_the_lobe_fit_peaks_at_its_largest_sample():
     assert abs(p.peak_time_s - math.pi / (WN * math.sqrt(1 - zeta**2))) < dt
     assert p.overshoot_pct == pytest.approx(100 * (y[k] - p.state_after) / p.amplitude, rel=1e-12)
     assert p.overshoot_pct < 100 * math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2))
+
+
+def test_each_level_is_the_median_of_its_modal_bin_and_the_two_beside_it():
+    # 100 bins over 0 .. 100 V, one volt each (numpy.histogram's bins: [a, b), the last one closed). Lower
+    # half: the mode is bin [20, 21) (60 samples); with its neighbours [19, 20) and [21, 22) the samples are
+    # 19.0 ×20, 19.5 ×10, 20.25 ×30, 20.75 ×30, 21.5 ×30, whose median (the 60th and 61st of 120) is 20.5 by
+    # hand. Bins [18, 19) (45) and [22, 23) (20) lie outside it: either would move the median. Upper half:
+    # the mode is the last bin, [99, 100], 51 samples at 100 V (the maximum) and 20 at 99.5; with [98, 99)
+    # (30 at 98.5) the median of 101 is 100 V; [97, 98) (40 at 97.5) would make it 99.5.
+    lower = np.r_[np.full(45, 18.5), np.full(20, 19.0), np.full(10, 19.5), np.full(30, 20.25), np.full(30, 20.75),
+                  np.full(30, 21.5), np.full(20, 22.5)]
+    upper = np.r_[np.full(40, 97.5), np.full(30, 98.5), np.full(20, 99.5), np.full(51, 100.0)]
+    y = np.r_[0.0, lower, upper]  # 0 V: the minimum
+    assert histogram_levels(y) == (20.5, 100.0)

@@ -202,3 +202,7 @@ def test_each_level_is_the_median_of_its_modal_bin_and_the_two_beside_it():
     upper = np.r_[np.full(40, 97.5), np.full(30, 98.5), np.full(20, 99.5), np.full(51, 100.0)]
     y = np.r_[0.0, lower, upper]  # 0 V: the minimum
     assert histogram_levels(y) == (20.5, 100.0)
+    # An odd bin count is made even by one more bin, never one fewer: the histogram is never coarser than
+    # asked (11 bins → 12, the same levels as 12; on two noisy levels (numpy's seeded normal noise) 10 differ).
+    noisy = np.r_[np.zeros(400), np.ones(600)] + np.random.default_rng(1).normal(0, 0.1, 1000)
+    assert histogram_levels(noisy, 11) == histogram_levels(noisy, 12) != histogram_levels(noisy, 10)

@@ -66,6 +66,7 @@ def test_a_falling_ringing_edge_is_mirrored_back():
                                                            pytest.approx(-1.0, abs=1e-4))
     assert p.amplitude == pytest.approx(-2.0, abs=1e-4) and p.peak_value == pytest.approx(-1.0 - 2.0 * k, abs=1e-3)
     assert p.overshoot_pct == pytest.approx(100 * k, abs=0.02)
+    assert p.undershoot_pct == pytest.approx(100 * k**2, abs=0.02)  # the second extremum, as a share of |A|
     assert p.peak_time_s == pytest.approx(math.pi / (WN * math.sqrt(1 - zeta**2)), rel=1e-4)
     assert p.t10_s < p.t50_s < p.t90_s  # the 10 % instant is 10 % of the way down
 
@@ -206,3 +207,33 @@ def test_each_level_is_the_median_of_its_modal_bin_and_the_two_beside_it():
     # asked (11 bins → 12, the same levels as 12; on two noisy levels (numpy's seeded normal noise) 10 differ).
     noisy = np.r_[np.zeros(400), np.ones(600)] + np.random.default_rng(1).normal(0, 0.1, 1000)
     assert histogram_levels(noisy, 11) == histogram_levels(noisy, 12) != histogram_levels(noisy, 10)
+
+
+def test_an_overshoot_below_one_percent_under_noise_is_measured_on_the_running_mean():
+    # ζ = 0.85, a 2 V step (Nise §4.6): PO = 100·e^{−ζπ/√(1−ζ²)} = 0.63 % at t_p = π/ω_d, and the first
+    # undershoot the second extremum, 100·e^{−2ζπ/√(1−ζ²)} = 0.004 %. With 10 mV RMS of noise (numpy's seeded
+    # normal noise), nearly the overshoot's own 12.6 mV, the peak is still found, on the running mean of the
+    # samples: within 0.05 % of the step and 2 % of t_p.
+    zeta = 0.85
+    k = math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2))
+    tp = math.pi / (WN * math.sqrt(1 - zeta**2))
+    t = np.arange(-4000, 60000) * 0.5e-6
+    y = 2.0 * second_order_unit(t, zeta, WN)
+    clean = step_parameters(t, y)
+    assert clean.overshoot_pct == pytest.approx(100 * k, abs=1e-4) and clean.peak_time_s == pytest.approx(tp, rel=1e-4)
+    assert clean.undershoot_pct == pytest.approx(100 * k**2, abs=1e-5)
+    for seed in range(3):
+        noisy = step_parameters(t, y + np.random.default_rng(seed).normal(0, 0.01, len(t)), noise_rms=0.01)
+        assert noisy.overshoot_pct == pytest.approx(100 * k, abs=0.05), seed
+        assert noisy.peak_time_s == pytest.approx(tp, rel=0.02), seed
+
+
+def test_a_record_that_enters_the_band_at_its_last_sample_has_settled_there():
+    # A first-order step enters ±2 % of its final value at τ·ln 50 (textbook RC step): a record whose last
+    # sample interval holds that instant settles there, τ·ln 25 after t50 (linear interpolation between the
+    # last two samples, IEEE 181-2011).
+    tau, dt = 1e-3, 1e-6
+    t = np.arange(-500, int(tau * math.log(50) / dt) + 1) * dt + 0.3e-6
+    assert t[-2] < tau * math.log(50) < t[-1]
+    p = step_parameters(t, first_order(t, tau))
+    assert p.settling_duration_s == pytest.approx(tau * math.log(25), abs=1e-8)

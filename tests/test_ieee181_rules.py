@@ -237,3 +237,12 @@ def test_a_record_that_enters_the_band_at_its_last_sample_has_settled_there():
     assert t[-2] < tau * math.log(50) < t[-1]
     p = step_parameters(t, first_order(t, tau))
     assert p.settling_duration_s == pytest.approx(tau * math.log(25), abs=1e-8)
+
+
+def test_float32_samples_give_the_parameters_of_the_same_values_in_float64():
+    # A scope's record holds float32 samples: measured on them, the parameters are those of the same values
+    # held as float64 (every float32 is exactly a float64, IEEE 754), not float32 arithmetic's.
+    t = np.arange(-400, 8000) * 1e-6
+    y = second_order_unit(t, 0.2, WN).astype(np.float32)
+    t32 = t.astype(np.float32)
+    assert step_parameters(t32, y) == step_parameters(t32.astype(np.float64), y.astype(np.float64))

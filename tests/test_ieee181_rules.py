@@ -111,6 +111,10 @@ def test_histogram_levels_split_at_mid_range_and_take_each_halfs_mode():
     (np.r_[np.zeros(500), np.ones(500)], "falling", "no falling crossing of the 50 % reference level"),
     (np.r_[np.zeros(500), np.linspace(0, 1, 400), np.zeros(100)], "rising",
      "does not end beyond the level it started from"),
+    # the record begins part-way up its first edge (0.4 of a 0 → 1 step): no sample below 10 % precedes
+    # the first rising 50 % crossing, so that crossing has no 10 % instant
+    (np.r_[np.full(3, 0.4), np.ones(300), np.zeros(500), np.ones(700)], "rising",
+     "the edge does not pass both the 10 % and the 90 % reference levels"),
 ])
 def test_every_refusal_says_what_is_missing(y, polarity, reason):
     t = np.arange(len(y)) * 1e-6

@@ -185,3 +185,40 @@ def test_the_pre_lag_of_a_two_sample_channel_reaches_lag_one():
 def test_residuals_that_do_not_split_into_the_channels_are_refused():
     with pytest.raises(FitError, match="fit: 10 residuals do not split into 3 channels of equal length"):
         noise_covariance(np.ones((10, 1)), np.ones(10), 3)
+
+
+def test_no_residual_is_spent_on_finite_differences_and_the_solvers_verdict_is_scipys():
+    # fit_parameters hands the solver the exact Jacobian (its docstring: "no residual is spent on finite
+    # differences"). scipy.optimize.least_squares' nfev counts the residual evaluations of its steps only,
+    # "'trf' and 'dogbox' do not count function calls for numerical Jacobian approximation" (scipy's
+    # documentation of the result), so every residual the fit asks for must be one of those. Its success
+    # and message are those of scipy's own least_squares on the same problem with the same Jacobian.
+    from scipy.optimize import least_squares
+
+    basis = columns(A, B, C)
+    y = basis @ np.array([2.0, -1.0, 0.5]) + 0.01 * np.cos(np.linspace(0, 40, 200))  # not fitted exactly
+    calls = []
+
+    def residuals(values):
+        calls.append(dict(values))
+        return y - basis @ np.array([values[n] for n in "abc"])
+
+    free = {n: Free(1.0, False) for n in "abc"}
+    fit = fit_parameters(residuals, lambda v: -basis, free, (), "none")
+    assert len(calls) == fit.evaluations
+    reference = least_squares(lambda th: y - basis @ th, np.ones(3), lambda th: -basis, method="trf", x_scale=1.0)
+    assert (fit.success, fit.message, fit.evaluations) == (reference.success, reference.message, reference.nfev)
+    assert [fit.values[n] for n in "abc"] == pytest.approx(list(reference.x), rel=1e-9)
+
+
+def test_one_degree_of_freedom_gives_the_ordinary_least_squares_covariance():
+    # m = 3 samples, p = 2 parameters: m − p = 1. Residuals (1, 0, −1) have γ̂(1) = 0, so Newey & West's lag is
+    # 0 and the covariance must be the classical s²·(JᵀJ)⁻¹ with s² = rᵀr/(m − p) = 2 (ordinary least
+    # squares: Seber & Wild 1989, Nonlinear Regression §2.1, from memory), here written out with numpy's
+    # inverse; the factor m/(m − p) = 3 is what turns γ̂(0)·JᵀJ into it.
+    jac = np.array([[1.0, 0.0], [1.0, 1.0], [1.0, 2.0]])
+    residuals = np.array([1.0, 0.0, -1.0])
+    cov, lags = noise_covariance(jac, residuals, 1)
+    assert lags == (0,)
+    s2 = float(residuals @ residuals) / (3 - 2)
+    assert cov == pytest.approx(s2 * np.linalg.inv(jac.T @ jac), rel=1e-12)

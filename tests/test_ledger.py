@@ -6,7 +6,10 @@ Sources: SQLite's documentation (sqlite.org/wal.html: WAL mode, and that a reade
 ``-wal`` and ``-shm`` files unless it opens the file immutable, and sqlite.org/uri.html: an ``immutable``
 connection assumes the file never changes, so it reads no write-ahead log; sqlite.org/pragma.html: ``journal_mode``
 answers ``wal``, ``synchronous`` NORMAL is 1; sqlite.org/lang_insert.html: ``INSERT OR IGNORE`` keeps the row
-already there on a primary-key conflict).
+already there on a primary-key conflict; sqlite.org/lang_transaction.html: ``BEGIN IMMEDIATE`` takes the write
+lock at once, and another connection's write waits for it as long as its busy timeout allows; sqlite.org/wal.html,
+"Sometimes Queries Return SQLITE_BUSY In WAL Mode": a connection in exclusive locking mode makes every other
+connection's queries busy; docs.python.org, sqlite3.connect: the busy timeout is 5 s unless given).
 """
 
 from __future__ import annotations
@@ -16,6 +19,7 @@ import sqlite3
 import subprocess
 import sys
 import threading
+import time
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -198,8 +202,8 @@ def test_a_reader_of_a_running_daemons_database_sees_its_commits(ledger):
         conn.close()
 
 
-def in_thread(job) -> None:
-    """Run ``job`` in another thread and re-raise what it raised there."""
+def started_in_thread(job):
+    """Start ``job`` in another thread; the function returned waits for it and re-raises what it raised."""
     failures: list[BaseException] = []
 
     def run() -> None:
@@ -210,9 +214,17 @@ def in_thread(job) -> None:
 
     thread = threading.Thread(target=run)
     thread.start()
-    thread.join(timeout=30)
-    if failures:
-        raise failures[0]
+
+    def finish() -> None:
+        thread.join(timeout=30)
+        if failures:
+            raise failures[0]
+    return finish
+
+
+def in_thread(job) -> None:
+    """Run ``job`` in another thread and re-raise what it raised there."""
+    started_in_thread(job)()
 
 
 def test_the_ledger_and_a_reader_serve_other_threads(ledger):
@@ -247,3 +259,75 @@ def test_a_read_only_connection_cannot_write_and_a_settled_one_leaves_no_wal_fil
             conn.execute("DELETE FROM acqd_slots")
     finally:
         conn.close()
+
+
+# sqlite3's default busy timeout (docs.python.org, sqlite3.connect): a lock held longer than this makes a
+# connection made without a timeout fail with "database is locked".
+SQLITE3_DEFAULT_TIMEOUT_S = 5.0
+HELD_S = SQLITE3_DEFAULT_TIMEOUT_S + 0.6
+
+
+def hold_lock(path: Path, exclusive: bool, held_s: float) -> threading.Thread:
+    """Another program's connection holding ``path`` locked for ``held_s``: the write lock (``BEGIN
+    IMMEDIATE``, a writer of a WAL database) or, ``exclusive``, the whole file (exclusive locking mode, after
+    one write). Returns once the lock is taken; the thread commits and closes when the time is up."""
+    locked = threading.Event()
+
+    def hold() -> None:
+        conn = sqlite3.connect(path, isolation_level=None)
+        try:
+            if exclusive:
+                conn.execute("PRAGMA locking_mode=EXCLUSIVE")
+            conn.execute("BEGIN EXCLUSIVE" if exclusive else "BEGIN IMMEDIATE")
+            conn.execute("DELETE FROM acqd_slots WHERE slot < 0")
+            if exclusive:
+                conn.execute("COMMIT")  # exclusive mode keeps the file locked after the commit
+            locked.set()
+            time.sleep(held_s)
+            if conn.in_transaction:
+                conn.execute("COMMIT")
+        finally:
+            locked.set()
+            conn.close()
+
+    thread = threading.Thread(target=hold)
+    thread.start()
+    locked.wait()
+    return thread
+
+
+def test_a_lock_held_past_sqlites_default_timeout_is_waited_out(tmp_path: Path):
+    # Another program (an SQLite tool, a second reader) may hold the database for a few seconds: the daemon's
+    # write must wait for the write lock and succeed, and so must a read-only connection (acqd status) opened
+    # while the file is locked exclusively, rather than fail at sqlite3's default 5 s. Two databases, so both
+    # waits run side by side (an exclusive lock cannot be taken while the ledger's connection is open).
+    written = Ledger(tmp_path / "written.sqlite")
+    read_path = tmp_path / "read.sqlite"
+    reader_side = Ledger(read_path)
+    reader_side.begin_slot("night", 1, T0, T0)
+    reader_side.close()
+    start = time.monotonic()
+    holders = [hold_lock(written.path, False, HELD_S), hold_lock(read_path, True, HELD_S)]
+    seen: list[list[tuple]] = []
+    waited_s: dict[str, float] = {}
+
+    def read() -> None:
+        conn = open_database(read_path, readonly=True)
+        try:
+            seen.append(conn.execute("SELECT slot, state FROM acqd_slots").fetchall())
+        finally:
+            conn.close()
+        waited_s["read"] = time.monotonic() - start
+
+    try:
+        finish_reading = started_in_thread(read)
+        written.begin_slot("night", 1, T0, T0)
+        waited_s["write"] = time.monotonic() - start
+        finish_reading()
+    finally:
+        for holder in holders:
+            holder.join(timeout=30)
+        written.close()
+    assert seen == [[(1, "running")]]
+    assert other(written.path, "SELECT slot, state FROM acqd_slots") == [(1, "running")]
+    assert min(waited_s.values()) > SQLITE3_DEFAULT_TIMEOUT_S  # both did wait past the default, and succeeded

@@ -321,6 +321,22 @@ def test_a_recovery_killed_midway_is_finished_by_the_next(tmp_path: Path, step, 
     assert stored(path) == expected(0, [1, 2, 3])
 
 
+def test_the_copy_child_is_never_given_the_writers_kill_point(tmp_path: Path):
+    # The copy child writes records with the writer's own code, which passes the append kill points; a
+    # process told to die at one (a crash test's restarted writer) must still recover, not lose its .part
+    # to a child that killed itself.
+    path = tmp_path / "night.h5"
+    assert dead_writer(path, [1, 2, 3]) == 0
+    env = {**os.environ, KILL_ENV: "append:blobs"}
+    script = "import sys; from acqd.store import recovery; from acqd.store.naming import StorePaths; " \
+             "print(recovery.recover_store(StorePaths(sys.argv[1])))"
+    done = subprocess.run([sys.executable, "-c", script, str(path)], env=env, timeout=120, check=False,
+                          capture_output=True, text=True)
+    assert done.returncode == 0 and "recovered 3 record(s) into night.000000.h5" in done.stdout
+    assert recovery.recover_store(StorePaths(path)) == []  # nothing left to do
+    assert segment_files(tmp_path) == {"night.000000.h5"} and stored(path) == expected(0, [1, 2, 3])
+
+
 def test_a_full_disk_during_recovery_refuses_the_store_and_keeps_the_part(tmp_path: Path):
     path = tmp_path / "night.h5"
     assert dead_writer(path, list(range(1, 11))) == 0

@@ -597,3 +597,28 @@ def test_fsync_on_makes_every_rename_and_record_durable_and_off_asks_for_nothing
     # The traced writer stored what this process stores from the same records (zlib CRC-32 of each).
     assert write_store(tmp_path / "here.h5", [1, 2, 3], rotate_records=2, fsync=fsync == "on") == [0, 1, 2]
     assert stored(path) == stored(tmp_path / "here.h5") == expected(0, [1, 2, 3])
+
+
+def test_a_segment_holds_1000_records_by_default(tmp_path: Path):
+    # README, "The store": a segment is finished after rotate_records records, "1000 by default".
+    path = tmp_path / "night.h5"
+    with RecordStore(path, fsync=False) as store:
+        for seed in range(1000):
+            store.append(make_record(seed, n_samples=8))
+        assert not part_of(path).exists() and len(h5_indices(tmp_path / "night.000000.h5")) == 1000
+        store.append(make_record(1000, n_samples=8))
+        assert h5_indices(part_of(path, 1), swmr=True) == [1000]
+
+
+@pytest.mark.parametrize("kill_at", ["rotate:created@2", "rotate:closed@1", "rotate:renamed@1"])
+def test_a_writer_killed_while_rotating_loses_nothing(tmp_path: Path, kill_at):
+    # Killed while segment 1 is created (the 3rd append), or while segment 0 is closed or renamed (the 2nd
+    # append, whose record is already in the .part): records 0 and 1 survive, and the next writer goes on.
+    path = tmp_path / "night.h5"
+    assert dead_writer(path, [1, 2, 3], rotate=2, kill_at=kill_at) == -signal.SIGKILL
+    with RecordStore(path, rotate_records=2) as store:
+        assert store.append(make_record(9)) == 2
+    assert segment_files(tmp_path) == {"night.000000.h5", "night.000001.h5", "night.h5"}
+    assert stored(path) == [*expected(0, [1, 2]), (2, crc_of(make_record(9)))]
+    with h5py.File(path, "r") as overview:  # the overview (HDF5 virtual datasets) lists both segments
+        assert [int(i) for i in overview["index"]["index"]] == [0, 1, 2]

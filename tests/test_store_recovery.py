@@ -36,10 +36,12 @@ import numpy as np
 import pytest
 
 from acqd.errors import ConfigError
+from acqd.record import Channel
 from acqd.store import RecordStore, faults, open_records, recovery
 from acqd.store.faults import ENV as KILL_ENV
 from acqd.store.naming import DAMAGED, LIVE, RECOVERING, StorePaths
 from test_store import crc_of, make_record, write_store
+from test_store_rules import craft, reseal
 
 TESTS = Path(__file__).resolve().parent
 
@@ -567,7 +569,7 @@ import sys
 sys.path.insert(0, sys.argv[1])
 from test_store import make_record
 from acqd.store import RecordStore
-with RecordStore(sys.argv[2], rotate_records=2, fsync=sys.argv[3] == "on") as store:
+with RecordStore(sys.argv[2], rotate_records=2, **({} if sys.argv[3] == "on" else {"fsync": False})) as store:
     for seed in (1, 2, 3):
         store.append(make_record(seed))
 """
@@ -580,7 +582,8 @@ def test_fsync_on_makes_every_rename_and_record_durable_and_off_asks_for_nothing
     # gives it a new name, and a rename survives a power cut only after an fsync of its directory. With
     # fsync on, each segment is fsynced once when created, once per record and once before it is finished;
     # each of the four renames (two segments created, two finished) is followed by an fsync of the folder.
-    # With fsync off, nothing is fsynced. strace(1) -y names the file behind each descriptor.
+    # With fsync off, nothing is fsynced. strace(1) -y names the file behind each descriptor. "on" is the
+    # default (README: fsync = true unless the profile says otherwise), so it is not passed.
     path, log = tmp_path / "store" / "night.h5", tmp_path / "fsync.log"
     path.parent.mkdir()
     done = subprocess.run(["strace", "-f", "-y", "-e", "trace=fsync,fdatasync", "-o", str(log), sys.executable,
@@ -622,3 +625,35 @@ def test_a_writer_killed_while_rotating_loses_nothing(tmp_path: Path, kill_at):
     assert stored(path) == [*expected(0, [1, 2]), (2, crc_of(make_record(9)))]
     with h5py.File(path, "r") as overview:  # the overview (HDF5 virtual datasets) lists both segments
         assert [int(i) for i in overview["index"]["index"]] == [0, 1, 2]
+
+
+def test_every_refusal_of_the_writer_names_the_store(tmp_path: Path):
+    # The rule for bad input: one line naming the file. Each refusal starts with the store's path.
+    path = tmp_path / "night.h5"
+    with pytest.raises(ConfigError) as missing:
+        RecordStore(tmp_path / "no" / "night.h5")
+    assert str(missing.value) == f"{tmp_path / 'no' / 'night.h5'}: directory {tmp_path / 'no'} does not exist"
+    with RecordStore(path) as store:
+        with pytest.raises(ConfigError) as second:
+            RecordStore(path)
+        assert str(second.value) == f"{path}: another process is writing this store (it holds {path}.lock)"
+        short = make_record(1)
+        short.channels[0] = Channel("v_c", "V", np.zeros(10))
+        with pytest.raises(ConfigError) as refused:
+            store.append(short)
+        assert str(refused.value).startswith(f"{path}: record.channels[v_c]: shape (10,)")
+
+
+def test_writing_resumes_after_a_segment_that_starts_anywhere(tmp_path: Path):
+    # A segment's first row sets where its indices start (test_store_rules.py); the next writer continues
+    # after its last, not after the count of rows. Indices moved to 100-104, CRCs recomputed with zlib.
+    path = tmp_path / "night.h5"
+    write_store(path, [1, 2, 3, 4, 5])
+
+    def shift(rows: np.ndarray) -> None:
+        rows["index"] += 100
+        reseal(rows)
+
+    craft(tmp_path / "night.000000.h5", shift)
+    with RecordStore(path) as store:
+        assert store.append(make_record(6)) == 105

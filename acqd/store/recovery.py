@@ -133,25 +133,27 @@ def _copy_verified(part: Path, dest: Path) -> dict:
     view = SegmentView(part, live=True)
     writer: SegmentWriter | None = None
     kept = 0
-    for position in range(len(view.rows)):
-        try:
-            record = view.record(position)
-        except AcqdError:
-            break
-        enc = encode(record, int(record.index), str(dest))
-        try:
+    try:
+        for position in range(len(view.rows)):
+            try:
+                record = view.record(position)
+            except AcqdError:
+                break
+            enc = encode(record, int(record.index), str(dest))
             if writer is None:
                 writer = create_segment(dest, enc.layout, swmr=False)
             writer.write(enc, fsync=False)
-        except OSError as exc:
-            raise _CannotWrite(os_reason(exc)) from None
-        kept += 1
-    if writer is not None:
-        try:
+            kept += 1
+        if writer is not None:
             writer.sync()
             writer.close()
-        except OSError as exc:
-            raise _CannotWrite(os_reason(exc)) from None
+    except OSError as exc:
+        if writer is not None:  # closed, or HDF5 retries the failed writes when the file is freed, and says so
+            try:
+                writer.close()
+            except Exception:  # noqa: BLE001 - the first failure is the one reported
+                pass
+        raise _CannotWrite(os_reason(exc)) from None
     return {"kept": kept, "index_rows": view.index_rows, "sample_chunks": view.sample_chunks}
 
 

@@ -56,9 +56,11 @@ class RecordStore:
     def _resume_point(self) -> tuple[int, int]:
         """(next record index, next segment number), after every index any segment present ever held.
 
-        A ``.damaged`` segment counts with every row of its index (the rows that fail verification held
-        acknowledged records too); one that cannot be opened at all is assumed full (``rotate_records``
-        after the indices before it) and said so in ``notes``: an index is never given out twice."""
+        A finished or ``.damaged`` segment counts with every row of its index (rows that fail verification
+        held acknowledged records too: indices run on by one from the first verified row, or from the
+        segment before when none verifies); one that cannot be opened at all is assumed full
+        (``rotate_records`` after the indices before it) and said so in ``notes``: an index is never given
+        out twice."""
         segments = self._paths.segments()
         next_number = segments[-1].number + 1 if segments else 0
         end = 0
@@ -66,18 +68,20 @@ class RecordStore:
             if seg.state == "":
                 view = SegmentView(seg.path, live=False)
                 try:
-                    end = max(end, int(view.rows["index"][-1]) + 1) if len(view.rows) else end
+                    extent = (int(view.rows["index"][0]) if len(view.rows) else None, view.index_rows)
                 finally:
                     view.close()
             elif seg.state == DAMAGED:
                 extent = damaged_extent(seg.path)
-                if isinstance(extent, str):
-                    self.notes.append(f"{seg.path}: cannot be opened ({extent}); indices {end} to "
-                                      f"{end + self._rotate - 1} are left unused in case it held them")
-                    end += self._rotate
-                else:
-                    first, rows = extent
-                    end = max(end, (end if first is None else first) + rows)
+            else:
+                continue
+            if isinstance(extent, str):
+                self.notes.append(f"{seg.path}: cannot be opened ({extent}); indices {end} to "
+                                  f"{end + self._rotate - 1} are left unused in case it held them")
+                end += self._rotate
+            else:
+                first, rows = extent
+                end = max(end, (end if first is None else first) + rows)
         return end, next_number
 
     def append(self, record: Record) -> int:

@@ -157,17 +157,24 @@ def _open_h5(path: Path, *, swmr: bool, source: BinaryIO | None = None) -> h5py.
         raise ConfigError(str(path), "", f"not an acqd record file: HDF5 cannot open it ({reason})") from None
 
 
+def _root_attribute(h5: h5py.File, name: str) -> Any:
+    """A root attribute as a plain Python value (None if absent): h5py gives numpy scalars and arrays, whose
+    comparisons and conversions raise on a hostile file's values (an array, a string) instead of answering."""
+    value = h5.attrs.get(name)
+    return value.tolist() if isinstance(value, (np.generic, np.ndarray)) else value
+
+
 def _check_format(path: Path, h5: h5py.File) -> None:
     """Refuse any HDF5 file that is not a segment this version understands, naming what is wrong."""
-    fmt = h5.attrs.get("acqd_format")
-    if isinstance(fmt, bytes):
-        fmt = fmt.decode()
+    fmt = _root_attribute(h5, "acqd_format")
+    if isinstance(fmt, bytes):  # a fixed-length string attribute
+        fmt = fmt.decode("utf-8", errors="replace")
     if fmt != FORMAT_NAME:
         problem = f"not an acqd record file: root attribute acqd_format is {fmt!r}, not {FORMAT_NAME!r}"
         raise ConfigError(str(path), "", problem)
-    version = int(h5.attrs.get("format_version", -1))
-    if not 1 <= version <= FORMAT_VERSION:
-        raise ConfigError(str(path), "format_version", f"{version}; this acqd reads 1 to {FORMAT_VERSION}")
+    version = _root_attribute(h5, "format_version")
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= FORMAT_VERSION:
+        raise ConfigError(str(path), "format_version", f"{version!r}; this acqd reads the integers 1 to {FORMAT_VERSION}")
     for name in ("samples", "index", "blobs"):
         if not isinstance(h5.get(name), h5py.Dataset):
             raise ConfigError(str(path), name, "dataset missing: not an acqd record file")

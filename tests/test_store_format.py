@@ -14,6 +14,8 @@ does not. The kill points of an append are armed in a forked copy of this proces
 
 from __future__ import annotations
 
+import errno
+import io
 import json
 import os
 import signal
@@ -30,7 +32,8 @@ from acqd.errors import ConfigError
 from acqd.record import Channel
 from acqd.store import RecordStore, faults, open_records
 from acqd.store.naming import DAMAGED, LIVE, Segment, StorePaths
-from acqd.store.segment import SegmentView
+from acqd.store.schema import Layout
+from acqd.store.segment import SegmentView, create_segment
 from test_bench_id import downgrade_to_version_1
 from test_store import crc_of, make_record, write_store
 from test_store_rules import live_segment_of
@@ -89,6 +92,17 @@ def test_a_segment_is_laid_out_as_the_readme_states(segment: Path) -> None:
         assert index.dtype.names == README_FIELDS
         for name, width in README_TEXT_WIDTHS.items():
             assert index.dtype[name] == np.dtype(f"S{width}"), name
+
+
+def test_a_new_segment_holds_nothing_and_never_replaces_a_file(tmp_path: Path) -> None:
+    path = tmp_path / "night.000000.h5.init"
+    create_segment(path, Layout(2, 64, "<f8"), swmr=False).close()
+    with h5py.File(path, "r") as f:  # every dataset starts empty and grows per record (README)
+        assert (f["samples"].shape, f["index"].shape, f["blobs"].shape) == ((0, 2, 64), (0,), (0,))
+    path.write_bytes(b"someone else's file")
+    with pytest.raises(FileExistsError):
+        create_segment(path, Layout(2, 64, "<f8"), swmr=False)
+    assert path.read_bytes() == b"someone else's file"
 
 
 def test_the_readmes_h5py_recipe_reads_what_the_store_wrote(tmp_path: Path) -> None:
@@ -253,6 +267,39 @@ def test_a_file_hdf5_cannot_open_is_refused_with_hdf5s_reason(tmp_path: Path) ->
     assert str(refused.value) == f"{path}: not an acqd record file: HDF5 cannot open it ({reason})"
 
 
+class _FailingFile(io.RawIOBase):
+    """A file object whose every read fails, as a dropped network share's would."""
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def seek(self, offset: int, whence: int = 0) -> int:
+        return 0
+
+    def readinto(self, buffer) -> int:
+        raise OSError("the share went away")
+
+
+def test_a_file_object_that_cannot_be_read_is_refused_with_its_reason() -> None:
+    with pytest.raises(ConfigError) as refused:
+        SegmentView(Path("archive/x.h5"), live=False, source=_FailingFile())
+    assert str(refused.value).startswith("archive/x.h5: not an acqd record file: HDF5 cannot open it (")
+    assert "the share went away" in str(refused.value) and "\n" not in str(refused.value)
+
+
+def test_a_folder_where_a_segment_should_be_is_one_line_with_the_systems_words(tmp_path: Path) -> None:
+    write_store(tmp_path / "night.h5", [1])
+    (tmp_path / "night.000001.h5").mkdir()
+    with pytest.raises(ConfigError) as refused:
+        open_records(tmp_path / "night.h5")
+    # the C library's words for EISDIR (os.strerror), not HDF5's report of the failed read over several lines
+    assert str(refused.value) == (f"{tmp_path / 'night.000001.h5'}: not an acqd record file: HDF5 cannot open it "
+                                  f"({os.strerror(errno.EISDIR)})")
+
+
 def test_a_missing_segment_is_not_found_rather_than_refused(tmp_path: Path) -> None:
     # The reader tells a segment renamed or removed under it (FileNotFoundError) from one that is damaged.
     with pytest.raises(FileNotFoundError):
@@ -363,6 +410,8 @@ def test_records_are_found_across_segments_at_their_first_and_last_index(tmp_pat
         assert [crc_of(reader.read(k)) for k in range(7)] == [crc_of(make_record(s)) for s in range(7)]
         assert [reader.metadata(k)["index"] for k in range(7)] == list(range(7))
         assert reader.metadata(5)["segment"] == str(tmp_path / "s.000001.h5")
+        assert [s.segment for s in reader.index()] == ["s.000000.h5"] * 3 + ["s.000001.h5"] * 3 + ["s.000002.h5"]
+        assert reader.refresh() == 7 and reader.refresh() == 7 and reader.notes == []  # nothing new, no damage
         assert [crc_of(r) for r in reader] == [crc_of(make_record(s)) for s in range(7)]
         with pytest.raises(ConfigError, match=r"s\.h5: record: 7 is not in this store; it holds records 0-6$"):
             reader.read(7)
@@ -382,38 +431,39 @@ def test_a_reader_that_is_closed_holds_no_file_open(tmp_path: Path) -> None:
 
 @pytest.fixture
 def damaged_store(tmp_path: Path) -> Path:
-    """Segments 0-3 of two records each (0-1, 2-3, 4-5, 6-7); segment 1 then set aside as .damaged whole,
-    segment 3's first row failing its CRC, and a .damaged segment 4 that is not HDF5 at all."""
+    """Segments 0-4 of two records each (0-1, 2-3, 4-5, 6-7, 8-9); then segment 1 a .damaged file that is not
+    HDF5 at all, segment 2 set aside as .damaged whole, and segment 3 .damaged with its first row failing."""
     path = tmp_path / "night.h5"
-    write_store(path, list(range(8)), rotate_records=2)
+    write_store(path, list(range(10)), rotate_records=2)
     paths = StorePaths(path)
-    paths.finished(1).rename(paths.with_state(1, DAMAGED))
+    paths.finished(1).unlink()
+    paths.with_state(1, DAMAGED).write_bytes(b"half a segment")
+    paths.finished(2).rename(paths.with_state(2, DAMAGED))
     with h5py.File(paths.finished(3), "r+") as f:
         rows = f["index"][:]
         rows["index"][0] ^= 1 << 40  # a flipped bit, CRC not recomputed
         f["index"][:] = rows
     paths.finished(3).rename(paths.with_state(3, DAMAGED))
-    paths.with_state(4, DAMAGED).write_bytes(b"half a segment")
     return path
 
 
 def test_every_damaged_segment_is_noted_with_what_its_index_holds(damaged_store: Path) -> None:
     paths = StorePaths(damaged_store)
     with open_records(damaged_store) as reader:
-        assert [s.index for s in reader.index()] == [0, 1, 4, 5]
+        assert [s.index for s in reader.index()] == [0, 1, 8, 9]
         notes = reader.notes
-        with pytest.raises(ConfigError, match=r"record: 2 is not in this store; it holds records 0-1, 4-5$"):
+        with pytest.raises(ConfigError, match=r"record: 2 is not in this store; it holds records 0-1, 8-9$"):
             reader.read(2)
-    assert notes[0] == f"{paths.with_state(1, DAMAGED)}: damaged segment, not listed; its index holds 2 record(s) (records 2-3)"
+    assert notes[0].startswith(f"{paths.with_state(1, DAMAGED)}: damaged segment, not listed; it cannot be opened (")
+    assert notes[1] == f"{paths.with_state(2, DAMAGED)}: damaged segment, not listed; its index holds 2 record(s) (records 4-5)"
     # the first row fails, so no first record index is known: only how many rows the index holds
-    assert notes[1] == f"{paths.with_state(3, DAMAGED)}: damaged segment, not listed; its index holds 2 record(s)"
-    assert notes[2].startswith(f"{paths.with_state(4, DAMAGED)}: damaged segment, not listed; it cannot be opened (")
+    assert notes[2] == f"{paths.with_state(3, DAMAGED)}: damaged segment, not listed; its index holds 2 record(s)"
     assert len(notes) == 3
 
 
 def test_a_segment_read_by_its_own_name_notes_no_other_file(damaged_store: Path) -> None:
-    with open_records(damaged_store.with_name("night.000002.h5")) as reader:
-        assert [s.index for s in reader.index()] == [4, 5] and reader.notes == []
+    with open_records(damaged_store.with_name("night.000004.h5")) as reader:
+        assert [s.index for s in reader.index()] == [8, 9] and reader.notes == []
 
 
 def test_a_store_of_one_damaged_segment_opens_with_its_note(tmp_path: Path) -> None:
@@ -470,18 +520,29 @@ def test_a_live_segment_finished_between_listing_and_opening_is_read_finished(tm
         assert [crc_of(view.record(0))] == [crc_of(make_record(3))]
         view.close()
         assert reader._open(Segment(5, paths.finished(5), "")) is None  # removed meanwhile: nothing to read
+        assert reader._open(Segment(6, paths.with_state(6, LIVE), LIVE)) is None  # a .part removed by recovery
+        assert reader.notes == []
 
 
 WRITER = """
-import sys
+import sys, zlib
 sys.path.insert(0, sys.argv[1])
 from test_store import make_record
 from acqd.store import RecordStore
 store = RecordStore(sys.argv[2], rotate_records=100)
 for line in sys.stdin:
-    if line.strip() == "close":
+    word, _, seed = line.strip().partition(" ")
+    if word == "close":
         break
-    print(store.append(make_record(int(line))), flush=True)
+    index = store.append(make_record(int(seed)))
+    if word == "gap":  # the row just written renumbered +5, with a CRC-32 that matches (zlib, as the README says)
+        h5 = store._live._h5
+        row = h5["index"][index:index + 1]
+        row["index"] += 5
+        row["row_crc"] = zlib.crc32(row.tobytes()[:-4])
+        h5["index"][index:index + 1] = row
+        h5.flush()
+    print(index, flush=True)
 store.close()
 print("closed", flush=True)
 """
@@ -500,19 +561,24 @@ def test_a_reader_follows_a_live_segment_as_another_process_appends(tmp_path: Pa
         return writer.stdout.readline().strip()
 
     try:
-        assert ask("20") == "0"
+        assert ask("add 20") == "0" and ask("add 21") == "1"
         with open_records(path) as reader:
-            assert len(reader) == 1 and reader.notes == []
-            assert ask("21") == "1" and ask("22") == "2"
-            assert reader.refresh() == 3
-            assert [crc_of(reader.read(k)) for k in range(3)] == [crc_of(make_record(s)) for s in (20, 21, 22)]
+            assert len(reader) == 2 and reader.notes == []
+            assert ask("add 22") == "2" and ask("add 23") == "3"
+            assert reader.refresh() == 4
+            seeds = (20, 21, 22, 23)
+            assert [crc_of(reader.read(k)) for k in range(4)] == [crc_of(make_record(s)) for s in seeds]
+            # README: a row is trusted only if its index continues the one before, across refreshes too
+            assert ask("gap 24") == "4"  # the last row: the writer's next append would rewrite its chunk
+            assert reader.refresh() == 4 and reader.notes == []  # live: perhaps still being written, no note
             assert ask("close") == "closed"
-            assert reader.refresh() == 3 and reader.notes == []
+            assert reader.refresh() == 4
     finally:
         writer.stdin.close()
         writer.wait(timeout=60)
-    with open_records(path) as reader:  # finished: the same records from the plain file
-        assert [crc_of(r) for r in reader] == [crc_of(make_record(s)) for s in (20, 21, 22)]
+    with open_records(path) as reader:  # finished: the rows before the gap, and a note for the rest
+        assert [crc_of(r) for r in reader] == [crc_of(make_record(s)) for s in seeds]
+        assert len(reader.notes) == 1 and "row 4 fails its check; 1 row(s) from there are not read" in reader.notes[0]
 
 
 def test_a_live_segments_bad_row_hides_the_rest_without_a_damage_note(tmp_path: Path) -> None:

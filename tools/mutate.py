@@ -53,7 +53,8 @@ MODULES: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "blocks": (("acqd/visa/blocks.py",), ("tests/test_blocks.py", "tests/test_transport.py")),
     "store": (
         ("acqd/store/segment.py", "acqd/store/writer.py", "acqd/store/reader.py", "acqd/store/recovery.py"),
-        ("tests/test_store.py", "tests/test_store_rules.py", "tests/test_store_recovery.py"),
+        ("tests/test_store.py", "tests/test_store_rules.py", "tests/test_store_recovery.py",
+         "tests/test_store_format.py"),
     ),
     # the two 100-fit coverage tests of whole records take minutes per surviving mutant; the 1000-trial
     # binomial coverage test of a small model stays in

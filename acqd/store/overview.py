@@ -39,7 +39,8 @@ def is_overview(path: Path) -> bool:
     """Whether ``path`` is an overview file (and so not a segment given by its own name)."""
     try:
         with h5py.File(path, "r") as h5:
-            return h5.attrs.get("acqd_format") == OVERVIEW_FORMAT
+            fmt = h5.attrs.get("acqd_format")  # a hostile file's attribute may be an array: compare text only
+            return isinstance(fmt, str) and fmt == OVERVIEW_FORMAT
     except (OSError, ValueError):
         return False
 

@@ -100,19 +100,22 @@ class RecordReader:
         return len(self)
 
     def _open(self, seg: Segment) -> SegmentView | None:
-        """Open a segment; a live one after a child process showed it opens; None if it is unreadable."""
+        """Open a segment; a live one after a child process showed it opens; None if it is unreadable or gone.
+
+        A live segment's writer renames it to the finished name at any moment: one that is gone by the time
+        it is examined or opened is read under that name, with the same damage note as any finished one."""
         if seg.state == LIVE:
             why = examine(seg.path)
-            if why and not seg.path.exists() and self._paths.finished(seg.number).exists():
-                return self._open(Segment(seg.number, self._paths.finished(seg.number), ""))  # finished meanwhile
-            if why:
+            if why and seg.path.exists():
                 self.notes.append(f"{seg.path}: skipped, {why}")
                 return None
         try:
             view = SegmentView(seg.path, live=seg.state == LIVE)
-        except FileNotFoundError:  # renamed by its writer between the listing and the open
+        except FileNotFoundError:  # renamed by its writer (or removed) between the listing and the open
             finished = self._paths.finished(seg.number)
-            return SegmentView(finished, live=False) if finished.exists() else None
+            if not finished.exists():
+                return None
+            view = SegmentView(finished, live=False)
         if view.damage:
             self.notes.append(view.damage)
         return view

@@ -23,6 +23,7 @@ import numpy as np
 from ..errors import ConfigError
 from ..record import Record
 from . import faults
+from .naming import os_reason
 from .schema import (
     BLOB_CHUNK_BYTES,
     BLOB_PARTS,
@@ -159,21 +160,36 @@ def _open_h5(path: Path, *, swmr: bool, source: BinaryIO | None = None) -> h5py.
     except FileNotFoundError:
         raise
     except OSError as exc:
-        reason = str(exc).split("(")[-1].rstrip(")") if "(" in str(exc) else str(exc)
-        raise ConfigError(str(path), "", f"not an acqd record file: HDF5 cannot open it ({reason})") from None
+        raise ConfigError(str(path), "", f"not an acqd record file: HDF5 cannot open it ({_hdf5_reason(exc)})") from None
+
+
+def _hdf5_reason(exc: OSError) -> str:
+    """The system's words for an errno (HDF5's report of one runs over lines); else HDF5's own reason, the text
+    inside its message's outer parentheses (a file name in it may hold parentheses too), or the whole message."""
+    if exc.errno:
+        return os_reason(exc)
+    text = str(exc)
+    return text.partition("(")[2].rstrip(")") or text
+
+
+def _root_attribute(h5: h5py.File, name: str) -> Any:
+    """A root attribute as a plain Python value (None if absent): h5py gives numpy scalars and arrays, whose
+    comparisons and conversions raise on a hostile file's values (an array, a string) instead of answering."""
+    value = h5.attrs.get(name)
+    return value.tolist() if isinstance(value, (np.generic, np.ndarray)) else value
 
 
 def _check_format(path: Path, h5: h5py.File) -> None:
     """Refuse any HDF5 file that is not a segment this version understands, naming what is wrong."""
-    fmt = h5.attrs.get("acqd_format")
-    if isinstance(fmt, bytes):
-        fmt = fmt.decode()
+    fmt = _root_attribute(h5, "acqd_format")
+    if isinstance(fmt, bytes):  # a fixed-length string attribute
+        fmt = fmt.decode("utf-8", errors="replace")
     if fmt != FORMAT_NAME:
         problem = f"not an acqd record file: root attribute acqd_format is {fmt!r}, not {FORMAT_NAME!r}"
         raise ConfigError(str(path), "", problem)
-    version = int(h5.attrs.get("format_version", -1))
-    if not 1 <= version <= FORMAT_VERSION:
-        raise ConfigError(str(path), "format_version", f"{version}; this acqd reads 1 to {FORMAT_VERSION}")
+    version = _root_attribute(h5, "format_version")
+    if isinstance(version, bool) or not isinstance(version, int) or not 1 <= version <= FORMAT_VERSION:
+        raise ConfigError(str(path), "format_version", f"{version!r}; this acqd reads the integers 1 to {FORMAT_VERSION}")
     for name in ("samples", "index", "blobs"):
         if not isinstance(h5.get(name), h5py.Dataset):
             raise ConfigError(str(path), name, "dataset missing: not an acqd record file")
@@ -238,10 +254,10 @@ class SegmentView:
     def sample_chunks(self) -> int:
         return self._samples.shape[0]
 
-    def raw_rows(self, start: int = 0) -> np.ndarray:
-        """Rows from ``start`` up to the shorter of index and samples, unchecked."""
-        stop = min(self.index_rows, self.sample_chunks)
-        return self._index[start:stop] if stop > start else np.zeros(0, dtype=self._index.dtype)
+    def raw_rows(self, start: int) -> np.ndarray:
+        """Rows from ``start`` up to the shorter of index and samples, unchecked (none, of the file's row
+        layout, when there is nothing new: h5py reads an empty slice as an empty array of the dataset's type)."""
+        return self._index[start:min(self.index_rows, self.sample_chunks)]
 
     def row_ok(self, rows: np.ndarray, first_position: int) -> np.ndarray:
         """Per row: CRC matches, blobs inside the blob dataset, index continues the previous row's."""

@@ -222,3 +222,24 @@ def test_one_degree_of_freedom_gives_the_ordinary_least_squares_covariance():
     assert lags == (0,)
     s2 = float(residuals @ residuals) / (3 - 2)
     assert cov == pytest.approx(s2 * np.linalg.inv(jac.T @ jac), rel=1e-12)
+
+
+def test_a_trial_point_the_model_refuses_is_a_refused_step_not_the_end_of_the_fit():
+    # r(p) = p² − 1/4 from p = 0.05: the Gauss–Newton step −r/r' = 0.2475/0.1 = 2.475 lands at 2.525, where this
+    # model cannot be evaluated (it raises, as a circuit with a negative or infinite part does). scipy's
+    # trust-region solvers shrink the step after a trial that gives no finite cost (scipy.optimize's
+    # least_squares 'trf'); acqd's loop must likewise damp the step and go on to the root p = 1/2
+    # (elementary algebra), not hand the error to the caller.
+    from acqd.compare.levmar import levenberg_marquardt
+
+    def evaluate(p):
+        if p[0] > 1:
+            raise ValueError("outside the model's range")
+        return np.array([p[0] ** 2 - 0.25]), np.array([[2 * p[0]]]), None
+
+    solution = levenberg_marquardt(evaluate, np.array([0.05]), tolerance=1e-12, max_evaluations=100,
+                                   damping_start=1e-6, refused=(ValueError,))
+    assert solution.converged
+    assert solution.p[0] == pytest.approx(0.5, rel=1e-6)
+    with pytest.raises(ValueError):  # only the caller's chosen exceptions are a refused step
+        levenberg_marquardt(evaluate, np.array([0.05]), tolerance=1e-12, max_evaluations=100, damping_start=1e-6)

@@ -144,6 +144,9 @@ def _cut_after_output_on(bench, proxy: CuttableProxy, outage_s: float) -> dict[s
     return times
 
 
+RECORDS = 30
+
+
 @pytest.mark.parametrize("linked", TRANSPORTS, indirect=True)
 def test_a_dropped_link_is_reconnected_and_the_output_switched_off_first(linked, capsys) -> None:
 
@@ -153,14 +156,16 @@ def test_a_dropped_link_is_reconnected_and_the_output_switched_off_first(linked,
     # the reply timeout, which outlasted a 3 s cut on a busy machine.
     outage_s = 7.0 if "vxi11" in bench.serving.transports else 3.0
     times = _cut_after_output_on(bench, proxy, outage_s=outage_s)
-    status = main(["run", str(profile), "-n", "6"])
+    # Enough records that the run is still going when the cut lands 0.2 s after the output went on (six
+    # records once took less than that).
+    status = main(["run", str(profile), "-n", str(RECORDS)])
     out, err = capsys.readouterr()
     log = bench.generator.command_log
-    assert "restored" in times
+    assert "restored" in times, out + err
     # The outage cost at most the step test it hit, not the rest of the run (before: all of them, in ms).
     not_acquired = out.count("not acquired:")
     assert status == 1 and 1 <= not_acquired <= 2, out
-    assert f"{6 - not_acquired} record(s) stored" in out
+    assert f"{RECORDS - not_acquired} record(s) stored" in out
     assert "lost the bench" in out and "generator output switched off first" in out
     # While the link was down the generator's output stayed on (nothing could reach it)...
     assert output_commands([e for e in log if e.monotonic_s < times["cut"]])[-1] == "OUTPUT ON"

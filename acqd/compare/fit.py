@@ -103,7 +103,9 @@ class _Coordinates:
                          for n, lg, s in zip(self.names, self.log, self.scale)])
 
     def decode(self, theta: np.ndarray) -> dict[str, float]:
-        return {n: float(np.exp(v) if lg else v * s) for n, v, lg, s in zip(self.names, theta, self.log, self.scale)}
+        with np.errstate(over="ignore"):  # a trial far out decodes to inf, which the model then refuses
+            return {n: float(np.exp(v) if lg else v * s)
+                    for n, v, lg, s in zip(self.names, theta, self.log, self.scale)}
 
     def subset(self, keep: Sequence[str]) -> _Coordinates:
         idx = [self.names.index(n) for n in keep]
@@ -350,7 +352,7 @@ def fit_parameters(residuals_of: Callable[[dict[str, float]], np.ndarray],
     solution = levenberg_marquardt(evaluate, theta0, tolerance=SOLVER_TOLERANCE,
                                    max_evaluations=SOLVER_EVALUATIONS_PER_UNKNOWN * len(keep),
                                    negligible=_negligible_for(max(jac0.shape[0] - len(keep), 1)),
-                                   damping_start=SOLVER_DAMPING_START)
+                                   damping_start=SOLVER_DAMPING_START, refused=(AcqdError,))
     errors, intervals, correlations, scale, lags = _uncertainty(solution.jacobian, solution.residual, solution.p,
                                                                sub, channels)
     return FitResult(tuple(keep), held, start, {n: free[n].unit for n in names},

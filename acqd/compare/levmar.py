@@ -76,7 +76,8 @@ def _norm(v: np.ndarray) -> float:
 
 def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float, max_evaluations: int,
                         negligible: Callable[[np.ndarray, np.ndarray, np.ndarray, float], bool] | None = None,
-                        damping_start: float = DAMPING_START) -> Solution:
+                        damping_start: float = DAMPING_START,
+                        refused: tuple[type[Exception], ...] = ()) -> Solution:
     """Minimise |r(p)|² from ``p0``; ``evaluate(p)`` returns (r, ∂r/∂p, extra) at p, or raises.
 
     ``negligible(p, step, JᵀJ, cost)``, if given, is asked about the Gauss–Newton step at each point before
@@ -84,6 +85,11 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
     the first μ; a caller that starts near its optimum (where the full Gauss–Newton step is right) gives
     less, and the first step refused raises it at once to at least the usual ``DAMPING_START``. The
     result says whether a stopping test was met (``converged``) and which.
+
+    An exception of a ``refused`` type raised at a trial point (a model that cannot be built there, values
+    that are not finite) refuses that step like a higher cost, as scipy's trust-region solvers treat a
+    non-finite trial: a long Gauss–Newton step on a record far from the model must not end the fit when a
+    shorter, damped one would have gone on. At the start point it is raised to the caller.
     """
     p = np.asarray(p0, dtype=float)
     residual, jac, extra = evaluate(p)
@@ -112,9 +118,12 @@ def levenberg_marquardt(evaluate: Evaluate, p0: np.ndarray, *, tolerance: float,
             return done(False, "the damped normal equations are singular")
         small_step = _norm(step) <= tolerance * (_norm(p) + tolerance)
         trial = p + step
-        trial_residual, trial_jac, trial_extra = evaluate(trial)
         evaluations += 1
-        trial_cost = float(trial_residual @ trial_residual)
+        try:
+            trial_residual, trial_jac, trial_extra = evaluate(trial)
+            trial_cost = float(trial_residual @ trial_residual)
+        except refused:
+            trial_cost = math.inf
         if not trial_cost < cost:  # also refuses a cost that is not a number
             if small_step:
                 return done(True, "no smaller step lowers the cost: the optimum, to the tolerance")
